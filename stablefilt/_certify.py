@@ -1,0 +1,565 @@
+"""Certified bounds, in float64, on how much a polynomial filter or filter bank
+can change under a relative perturbation of the graph.
+
+Model: ``P^T S_hat P = S + E S + S E`` with ``E`` symmetric, ``||E||_2 <= eps``
+and ``P`` a permutation (Gama, Bruna, Ribeiro, "Stability Properties of Graph
+Neural Networks", IEEE Trans. Signal Processing 68, 2020; this is the form
+without a factor 1/2). Bounds are on ``||H(S_hat) - P H(S) P^T||`` in the
+operator 2-norm over signals (for a bank: from ``N x F_in`` to ``N x F_out``
+signals, Frobenius norm on both). Every formula is in docs/theory.md,
+sections 3-6.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from math import comb
+
+import numpy as np
+from numpy.polynomial import Chebyshev
+
+from ._filters import Basis, basis_values, check_taps, frequency_response, response_derivative, run_filter
+from ._graph import ShiftOperator
+from ._interval import SpectralInterval, spectral_interval
+from ._kernel import ABS_ALLOW, REL_ALLOW, as_series, kernel_matrix, monomial_coefficients, shifted_coefficients
+
+#: Grid for the rigorous grid-plus-Markov suprema (docs/theory.md section 6).
+SUP_GRID = 4097
+#: Largest graph for which eigenvectors are used to build worst-pair
+#: perturbations for the ``lower`` figure.
+LOWER_EIG_LIMIT = 600
+#: Largest ``N * filters`` for the direct ``N x N`` PSD split of ``Gamma``.
+DIRECT_SPLIT_LIMIT = 20000
+
+MODEL = "relative: P^T S_hat P = S + E S + S E, E symmetric, ||E||_2 <= eps, P a permutation"
+NORM = "operator 2-norm over signals (Frobenius over N x F for a bank)"
+
+
+def _allow(x, scale=1.0):
+    return np.asarray(x) * (1 + REL_ALLOW) + ABS_ALLOW * scale
+
+
+def usable_interval(a: float, b: float) -> tuple[float, float]:
+    """``[a, b]``, widened around a single point so a Chebyshev basis of it
+    exists (a superset stays valid)."""
+    if a < b:
+        return float(a), float(b)
+    w = 1e-6 * max(1.0, abs(a))
+    return float(a) - w, float(b) + w
+
+
+# ---------------------------------------------------------------------------
+# Series on an interval, vectorised over the filters of a bank.
+
+
+def _unit_series(k: int, basis: Basis):
+    for j in range(k):
+        e = np.zeros(k)
+        e[j] = 1.0
+        yield as_series(e, basis)
+
+
+def _linear_map(k, basis, a, b, fn, deg):
+    """``(deg + 1, k)`` matrix taking taps to the Chebyshev-on-[a, b]
+    coefficients of ``fn(h)``; ``fn`` is linear in ``h`` and gets ``h`` as a
+    Chebyshev series of ``[a, b]``."""
+    out = np.zeros((deg + 1, k))
+    for j, q in enumerate(_unit_series(k, basis)):
+        c = fn(q.convert(kind=Chebyshev, domain=[a, b])).convert(kind=Chebyshev, domain=[a, b]).coef
+        out[: len(c), j] = c[: deg + 1]
+    return out
+
+
+def sup_grid_markov(coef: np.ndarray, grid: int = SUP_GRID) -> np.ndarray:
+    """Rigorous ``sup_{[a, b]} |q|`` for Chebyshev coefficients ``coef``
+    (last axis) of the interval: ``max_grid |q| + (h/2) sup |q'|`` with
+    ``sup |q'| <= (2/(b-a)) sum_k k^2 |c_k|`` (Markov's inequality per term;
+    docs/theory.md section 6), i.e. ``+ sum_k k^2 |c_k| / (grid - 1)``, plus a
+    round-off allowance."""
+    coef = np.asarray(coef, dtype=np.float64)
+    d = coef.shape[-1]
+    t = np.linspace(-1.0, 1.0, grid)
+    v = np.polynomial.chebyshev.chebvander(t, d - 1)  # (G, d)
+    vals = np.abs(np.tensordot(coef, v, axes=([-1], [1])))  # (..., G)
+    k2 = np.arange(d) ** 2
+    markov = np.sum(k2 * np.abs(coef), axis=-1) / (grid - 1)
+    l1 = np.sum(np.abs(coef), axis=-1)
+    return _allow(vals.max(axis=-1) + markov, l1)
+
+
+def _flat(taps):
+    """Taps ``(K, F...)`` as ``(K, F)`` columns and the bank shape."""
+    taps = np.asarray(taps, dtype=np.float64)
+    return taps.reshape(taps.shape[0], -1), taps.shape[1:]
+
+
+# ---------------------------------------------------------------------------
+# Constants.
+
+
+@dataclasses.dataclass(frozen=True)
+class FilterConstants:
+    """Rigorous frequency-response constants, one value per filter
+    (arrays of shape ``taps.shape[1:]``).
+
+    Attributes:
+      interval: ``(a, b)`` the suprema are over.
+      integral_lipschitz: ``C = sup |lam h'(lam)|``.
+      lipschitz: ``C0 = sup |h'|``.
+      sup: ``B = sup |h|``.
+      pairwise: ``C2 = (1/2) sup |Gamma(lam, mu)|`` (bounded by ``kappa / 2``).
+      kernel: ``kappa`` over the interval: bound on the first-order change
+        per unit ``eps`` for every graph with spectrum in the interval.
+      kernel_spectrum: ``kappa`` over the eigenvalues of one graph, or None.
+      aligned_spectrum: ``2 max_i |lam_i h'(lam_i)|``, or None.
+      bank_sup: ``sup ||H(lam)||_2`` over the interval (a bank), or ``sup``.
+      method: how suprema were made rigorous.
+    """
+
+    interval: tuple[float, float]
+    integral_lipschitz: np.ndarray
+    lipschitz: np.ndarray
+    sup: np.ndarray
+    pairwise: np.ndarray
+    kernel: np.ndarray
+    kernel_spectrum: np.ndarray | None
+    aligned_spectrum: np.ndarray | None
+    bank_sup: float
+    method: str = "grid of 4097 points + Markov remainder (theory s.6), float64"
+
+    def as_dict(self) -> dict:
+        def arr(x):
+            return None if x is None else np.asarray(x).tolist()
+
+        return {
+            "interval": list(self.interval),
+            "integral_lipschitz": arr(self.integral_lipschitz),
+            "lipschitz": arr(self.lipschitz),
+            "sup": arr(self.sup),
+            "bank_sup": float(self.bank_sup),
+            "pairwise": arr(self.pairwise),
+            "kernel": arr(self.kernel),
+            "kernel_spectrum": arr(self.kernel_spectrum),
+            "aligned_spectrum": arr(self.aligned_spectrum),
+            "method": self.method,
+        }
+
+
+def _product_tensor(k: int) -> np.ndarray:
+    """``P[a, b, n]``: ``T_a T_b = sum_n P[a, b, n] T_n``."""
+    p = np.zeros((k, k, max(2 * k - 1, 1)))
+    for a in range(k):
+        for b in range(k):
+            p[a, b, a + b] += 0.5
+            p[a, b, abs(a - b)] += 0.5
+    return p
+
+
+def _kernels(cols, basis, splits):
+    """Kernel matrices ``(F, K, K)`` of each column of taps, per split."""
+    k, f = cols.shape
+    out = []
+    for split in splits:
+        t = np.stack([kernel_matrix(q, k, split) for q in _unit_series(k, basis)], axis=-1)
+        out.append(np.einsum("abj,jf->fab", t, cols))
+    return out
+
+
+def _psd_parts(m):
+    w, v = np.linalg.eigh(0.5 * (m + np.swapaxes(m, -1, -2)))
+    plus = np.einsum("...ai,...i,...bi->...ab", v, np.maximum(w, 0), v)
+    minus = np.einsum("...ai,...i,...bi->...ab", v, np.maximum(-w, 0), v)
+    return plus, minus
+
+
+def _bank_sup(cols, shape, basis, a, b, grid=SUP_GRID):
+    """Rigorous ``sup_[a,b] ||H(lam)||_2`` for a bank: the spectral norm of
+    the matrix of per-filter grid values, plus the per-filter Markov terms
+    bound it (``||A + D||_2 <= ||A||_2 + ||D||_F``)."""
+    k = cols.shape[0]
+    hmap = _linear_map(k, basis, a, b, lambda q: q, k - 1)
+    coef = (hmap @ cols).T  # (F, K)
+    if len(shape) != 2:
+        return float(sup_grid_markov(coef).max())
+    t = np.linspace(-1.0, 1.0, grid)
+    v = np.polynomial.chebyshev.chebvander(t, k - 1)
+    vals = (v @ coef.T).reshape(grid, *shape)
+    top = float(np.max(np.linalg.norm(vals, ord=2, axis=(1, 2))))
+    k2 = np.arange(k) ** 2
+    markov = np.sum(k2 * np.abs(coef), axis=-1) / (grid - 1)
+    l1 = np.sum(np.abs(coef), axis=-1)
+    return float(_allow(top + np.linalg.norm(markov), np.linalg.norm(l1)))
+
+
+def filter_constants(taps, basis: Basis, interval, eigenvalues=None) -> FilterConstants:
+    """Rigorous constants of a filter or bank over ``interval`` (and, when
+    ``eigenvalues`` are given, the forms over them).
+
+    Args:
+      taps: ``(K,)`` or ``(K, F_in, F_out)``.
+      basis: the filter's :class:`Basis`.
+      interval: ``(a, b)``, ``a <= b``.
+      eigenvalues: optional array of the graph's eigenvalues.
+
+    Returns:
+      :class:`FilterConstants`.
+    """
+    taps = check_taps(taps)
+    cols, shape = _flat(taps)
+    k = cols.shape[0]
+    a, b = usable_interval(*interval)
+    lam_poly = Chebyshev([0.5 * (a + b), 0.5 * (b - a)], domain=[a, b])
+
+    def sup_of(fn, deg):
+        m = _linear_map(k, basis, a, b, fn, deg)
+        return sup_grid_markov((m @ cols).T)
+
+    sup_h = sup_of(lambda q: q, max(k - 1, 0))
+    sup_d = sup_of(lambda q: q.deriv(), max(k - 2, 0))
+    sup_c = sup_of(lambda q: lam_poly * q.deriv(), max(k - 1, 0))
+
+    splits = [Basis("chebyshev", (a, b)), Basis()]
+    kernels = _kernels(cols, basis, splits)
+    pk = _product_tensor(k)
+    kappa = None
+    kappa_spec = None
+    aligned = None
+    lam = None if eigenvalues is None else np.asarray(eigenvalues, dtype=np.float64)
+    for split, m in zip(splits, kernels):
+        plus, minus = _psd_parts(m)
+        absm = plus + minus  # |M|: Gamma_ij = <x_i, y_j> with ||x_i||^2 = phi^T |M| phi
+        if split.kind == "chebyshev":
+            # phi^T |M| phi as a Chebyshev series of [a, b].
+            kap = sup_grid_markov(np.einsum("fab,abn->fn", absm, pk))
+        else:
+            qmap = np.zeros((2 * k - 1 if k > 1 else 1, k, k))
+            for i in range(k):
+                for j in range(k):
+                    qmap[i + j, i, j] = 1.0
+            conv = _linear_map(qmap.shape[0], Basis(), a, b, lambda q: q, qmap.shape[0] - 1)
+            kap = sup_grid_markov(np.einsum("nm,mab,fab->fn", conv, qmap, absm))
+        kappa = kap if kappa is None else np.minimum(kappa, kap)
+        if lam is not None:
+            phi = basis_values(lam, k, split)
+            ks = np.einsum("ia,fab,ib->fi", phi, absm, phi).max(axis=1)
+            ks = _allow(np.maximum(ks, 0), np.abs(m).sum(axis=(1, 2)))
+            kappa_spec = ks if kappa_spec is None else np.minimum(kappa_spec, ks)
+    if lam is not None:
+        n, f = lam.size, cols.shape[1]
+        if n * f <= DIRECT_SPLIT_LIMIT and n <= 400:
+            phi = basis_values(lam, k, splits[1])
+            g = np.einsum("ia,fab,jb->fij", phi, kernels[1], phi)
+            gp, gm = _psd_parts(g)
+            direct = np.diagonal(gp + gm, axis1=1, axis2=2).max(axis=1)
+            direct = _allow(np.maximum(direct, 0), np.abs(g).max(axis=(1, 2)))
+            kappa_spec = np.minimum(kappa_spec, direct)
+        d = response_derivative(cols, lam, basis)  # (N, F)
+        aligned = _allow(2 * np.max(np.abs(lam[:, None] * d), axis=0), 1.0)
+        # Over the eigenvalues can never need more than over the interval.
+        kappa_spec = np.minimum(kappa_spec, kappa)
+
+    # C2 <= kappa / 2 (docs/theory.md section 5 item 2) and a 2-D grid bound.
+    m = kernels[0]
+    grid = 129
+    t = np.linspace(-1, 1, grid)
+    v = np.polynomial.chebyshev.chebvander(t, k - 1)
+    pair = np.empty(cols.shape[1])
+    k2 = (np.arange(k) ** 2)[:, None]
+    for f0 in range(0, cols.shape[1], 64):
+        g = np.einsum("ia,fab,jb->fij", v, m[f0:f0 + 64], v)
+        markov = (2.0 / (grid - 1)) * np.sum(k2 * np.abs(m[f0:f0 + 64]), axis=(1, 2))
+        pair[f0:f0 + 64] = np.abs(g).max(axis=(1, 2)) + markov
+    pair = np.minimum(_allow(pair, np.abs(m).sum(axis=(1, 2))), kappa) * 0.5
+
+    def shaped(x):
+        return None if x is None else np.asarray(x).reshape(shape) if shape else float(np.asarray(x).ravel()[0])
+
+    return FilterConstants(
+        interval=(a, b),
+        integral_lipschitz=shaped(sup_c),
+        lipschitz=shaped(sup_d),
+        sup=shaped(sup_h),
+        pairwise=shaped(pair),
+        kernel=shaped(kappa),
+        kernel_spectrum=shaped(kappa_spec),
+        aligned_spectrum=shaped(aligned),
+        bank_sup=_bank_sup(cols, shape, basis, a, b),
+    )
+
+
+# ---------------------------------------------------------------------------
+# Second-order remainder.
+
+
+def _tail(x: float, y: float, k: int) -> float:
+    """``(x + y)^k - x^k - k y x^(k-1) = sum_{j>=2} C(k, j) y^j x^(k-j)``,
+    summed term by term (no cancellation)."""
+    return float(sum(comb(k, j) * y**j * x ** (k - j) for j in range(2, k + 1)))
+
+
+def remainder(taps, basis: Basis, interval, eps: float) -> np.ndarray:
+    """Non-asymptotic bound on ``||H(S_hat) - H(S) - first-order term||``
+    per filter, for every ``S`` with spectrum in ``interval`` and
+    ``||E|| <= eps`` (docs/theory.md section 5 item 5). The smaller of
+
+    - origin form: ``sum_k |c_k| ((R + d)^k - R^k - k d R^(k-1))``, ``c`` the
+      monomial coefficients, ``R = max(|a|, |b|)``, ``d = 2 eps R``;
+    - centred form: the same with ``g_k``, coefficients in powers of
+      ``(lam - m)``, ``m`` the midpoint, and ``r = (b - a)/2`` for ``R``.
+
+    (For the origin form ``(R + d)^k - ... = R^k ((1 + 2 eps)^k - 1 - 2 k eps)``.)
+    """
+    taps = check_taps(taps)
+    cols, shape = _flat(taps)
+    a, b = float(interval[0]), float(interval[1])
+    big_r = max(abs(a), abs(b))
+    mid, half = 0.5 * (a + b), 0.5 * (b - a)
+    d = 2.0 * eps * big_r
+    out = np.empty(cols.shape[1])
+    for f in range(cols.shape[1]):
+        q = as_series(cols[:, f], basis)
+        c = monomial_coefficients(q)
+        g = shifted_coefficients(q, mid)
+        origin = sum(abs(c[j]) * _tail(big_r, d, j) for j in range(2, len(c)))
+        centred = sum(abs(g[j]) * _tail(half, d, j) for j in range(2, len(g)))
+        scale = sum(abs(g[j]) * (half + d) ** j for j in range(len(g)))
+        out[f] = _allow(min(origin, centred), scale)
+    return out.reshape(shape) if shape else float(out[0])
+
+
+# ---------------------------------------------------------------------------
+# Realised changes (the lower figure).
+
+
+def _bank_apply(matvec, taps, x, basis, transpose=False):
+    t = np.swapaxes(taps, 1, 2) if (transpose and taps.ndim == 3) else taps
+    return run_filter(matvec, t, x, basis)
+
+
+def realised_change(mv_a, mv_b, taps, basis: Basis, n: int, *, start=None, iters: int = 40, seed: int = 0) -> float:
+    """A realised lower bound on ``||H_a - H_b||`` (operator 2-norm) by power
+    iteration on ``D^T D`` with ``D = H_a - H_b``: every iterate gives
+    ``||D x|| / ||x||``, the change of an actual signal ``x``.
+
+    ``mv_a``, ``mv_b``: products with the two shift operators.
+    """
+    taps = np.asarray(taps, dtype=np.float64)
+    fin = taps.shape[1] if taps.ndim == 3 else 1
+    rng = np.random.default_rng(seed)
+    x = rng.standard_normal((n, fin)) if start is None else np.asarray(start, dtype=np.float64).reshape(n, fin)
+    if taps.ndim == 1:
+        x = x[:, 0]
+
+    def d(z, tr=False):
+        return _bank_apply(mv_a, taps, z, basis, tr) - _bank_apply(mv_b, taps, z, basis, tr)
+
+    best = 0.0
+    for _ in range(iters):
+        nx = np.linalg.norm(x)
+        if nx == 0 or not np.isfinite(nx):
+            break
+        x = x / nx
+        y = d(x)
+        best = max(best, float(np.linalg.norm(y)))
+        x = d(y, True)
+    return best
+
+
+def relative_matvec(s_mv, e_mv):
+    """Product with ``S + E S + S E`` given products with ``S`` and ``E``."""
+    return lambda x: s_mv(x) + e_mv(s_mv(x)) + s_mv(e_mv(x))
+
+
+def _worst_pairs(lam, vecs, taps, basis, count=3):
+    """Eigenpair indices ``(i, j)`` with the largest first-order change
+    ``|Gamma_ij|`` (Frobenius over the filters of a bank)."""
+    cols, _ = _flat(taps)
+    k = cols.shape[0]
+    split = Basis()
+    t = np.stack([kernel_matrix(q, k, split) for q in _unit_series(k, basis)], axis=-1)
+    m = np.einsum("abj,jf->fab", t, cols)
+    phi = basis_values(lam, k, split)
+    g = np.einsum("ia,fab,jb->ij", phi, m, phi) if cols.shape[1] == 1 else np.sqrt(
+        np.einsum("fij->ij", np.einsum("ia,fab,jb->fij", phi, m, phi) ** 2))
+    g = np.abs(g)
+    flat = np.argsort(g, axis=None)[::-1]
+    out = []
+    for idx in flat:
+        i, j = divmod(int(idx), g.shape[0])
+        if (j, i) not in out:
+            out.append((i, j))
+        if len(out) >= count:
+            break
+    return out
+
+
+def lower_change(op: ShiftOperator, taps, basis: Basis, eps: float, *, eig=None, iters: int = 40) -> tuple[float, str]:
+    """The largest change actually realised by perturbations built here:
+    ``E = +-eps I`` (scaling) and, when eigenvectors are at hand,
+    ``E = +-eps (v_i v_j^T + v_j v_i^T)`` (or ``+-eps v_i v_i^T``) for the
+    pairs with the largest ``|Gamma_ij|`` (docs/theory.md section 5 item 3).
+
+    Returns ``(value, description of the perturbation that attained it)``.
+    """
+    s = op.matrix
+    n = s.shape[0]
+
+    def s_mv(x):
+        return s @ x
+
+    best, how = 0.0, "none"
+    for sign in (1.0, -1.0):
+        e = sign * eps
+        v = realised_change(relative_matvec(s_mv, lambda x, e=e: e * x), s_mv, taps, basis, n, iters=iters)
+        if v > best:
+            best, how = v, f"scaling E = {sign * eps:+g} I"
+    if eig is not None:
+        lam, vecs = eig
+        for i, j in _worst_pairs(lam, vecs, taps, basis):
+            vi, vj = vecs[:, i], vecs[:, j]
+            for sign in (1.0, -1.0):
+                e = sign * eps
+                if i == j:
+                    def e_mv(x, vi=vi, e=e):
+                        return e * np.multiply.outer(vi, vi @ x)
+                else:
+                    def e_mv(x, vi=vi, vj=vj, e=e):
+                        return e * (np.multiply.outer(vi, vj @ x) + np.multiply.outer(vj, vi @ x))
+                fin = taps.shape[1] if np.ndim(taps) == 3 else 1
+                start = np.repeat(vj[:, None], fin, axis=1) + 1e-3 * np.repeat(vi[:, None], fin, axis=1)
+                v = realised_change(relative_matvec(s_mv, e_mv), s_mv, taps, basis, n, start=start, iters=iters)
+                if v > best:
+                    kind = f"v_{i} v_{i}^T" if i == j else f"(v_{i} v_{j}^T + v_{j} v_{i}^T)"
+                    best, how = v, f"E = {sign * eps:+g} {kind}"
+    return best, how
+
+
+# ---------------------------------------------------------------------------
+# The certificate.
+
+
+@dataclasses.dataclass(frozen=True)
+class EpsBound:
+    """Bounds at one ``eps``. ``certified = first_order + remainder`` is
+    rigorous; ``published`` and ``aligned`` are first-order figures (no
+    remainder); ``lower`` is a change actually realised."""
+
+    eps: float
+    certified: float
+    first_order: float
+    remainder: float
+    published: float
+    aligned: float
+    lower: float | None
+    lower_perturbation: str | None = None
+
+    def as_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+
+@dataclasses.dataclass(frozen=True)
+class Certificate:
+    """A filter's certificate on one graph, with its assumptions."""
+
+    nodes: int
+    interval: SpectralInterval
+    basis: Basis
+    delta: float
+    constants: FilterConstants
+    bounds: tuple[EpsBound, ...]
+    assumptions: dict
+
+    def as_dict(self) -> dict:
+        return {
+            "nodes": self.nodes,
+            "interval": [self.interval.lower, self.interval.upper],
+            "interval_method": self.interval.method,
+            "basis": {"kind": self.basis.kind, "interval": None if self.basis.interval is None else list(self.basis.interval)},
+            "constants": self.constants.as_dict(),
+            "bounds": [b.as_dict() for b in self.bounds],
+            "assumptions": self.assumptions,
+        }
+
+
+def combine(per_filter) -> float:
+    """Bank bound from per-filter bounds ``beta`` (``F_in x F_out``): the
+    spectral norm ``||beta||_2`` (docs/theory.md section 5 item 6); a single
+    filter's bound is returned as is."""
+    b = np.asarray(per_filter, dtype=np.float64)
+    if b.ndim == 0:
+        return float(b)
+    return float(np.linalg.norm(b, ord=2)) * (1 + REL_ALLOW)
+
+
+def filter_bounds(taps, basis: Basis, interval, eps: float, constants: FilterConstants | None = None,
+                  eigenvalues=None) -> tuple[np.ndarray, np.ndarray]:
+    """Per-filter ``(first_order, remainder)`` bounds at ``eps``; their sum
+    is the per-filter certificate. Uses the tighter of the kernel bound over
+    the interval and over the eigenvalues (when given)."""
+    if constants is None:
+        constants = filter_constants(taps, basis, interval, eigenvalues)
+    kap = np.asarray(constants.kernel)
+    if constants.kernel_spectrum is not None:
+        kap = np.minimum(kap, np.asarray(constants.kernel_spectrum))
+    first = _allow(kap * eps, 0.0)
+    rem = np.asarray(remainder(taps, basis, interval, eps))
+    return first, rem
+
+
+def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: float = 8.0,
+                   interval: SpectralInterval | None = None, use_eigenvalues: bool | None = None,
+                   lower: bool = True) -> Certificate:
+    """Certificate of a filter or bank on one graph for each ``eps``.
+
+    Args:
+      op: the shift operator ``S``.
+      taps: ``(K,)`` or ``(K, F_in, F_out)``.
+      basis: the filter's basis.
+      eps_list: sizes of the relative perturbation, each ``>= 0``.
+      delta: eigenvector misalignment in the published bound; 8 is the
+        largest possible value (docs/theory.md section 2).
+      interval: a certified spectral interval; computed when omitted.
+      use_eigenvalues: also bound over the graph's eigenvalues (default:
+        when the interval computed them).
+      lower: compute the realised ``lower`` figure.
+
+    Returns:
+      :class:`Certificate`.
+    """
+    taps = check_taps(taps).astype(np.float64)
+    if interval is None:
+        interval = spectral_interval(op)
+    lam = interval.eigenvalues if (use_eigenvalues or use_eigenvalues is None) else None
+    iv = (interval.lower, interval.upper)
+    consts = filter_constants(taps, basis, iv, lam)
+    n = op.nodes
+    eig = None
+    if lower and lam is not None and n <= LOWER_EIG_LIMIT:
+        w, v = np.linalg.eigh(op.dense())
+        eig = (w, v)
+    bounds = []
+    for eps in eps_list:
+        eps = float(eps)
+        first, rem = filter_bounds(taps, basis, iv, eps, consts, lam)
+        fo, rm = combine(first), combine(rem)
+        published = combine(2 * np.asarray(consts.integral_lipschitz) * (1 + delta * np.sqrt(n)) * eps)
+        al = consts.aligned_spectrum if consts.aligned_spectrum is not None else 2 * np.asarray(consts.integral_lipschitz)
+        aligned = combine(np.asarray(al) * eps)
+        low, how = (lower_change(op, taps, basis, eps, eig=eig) if lower else (None, None))
+        bounds.append(EpsBound(eps, fo + rm, fo, rm, published, aligned, low, how))
+    assumptions = {
+        "perturbation_model": MODEL,
+        "norm": NORM,
+        "spectral_interval": [interval.lower, interval.upper],
+        "interval_method": {"lower": interval.lower_method, "upper": interval.upper_method},
+        "first_order": "kernel (Schur) bound: PSD split of the Gamma kernel in Chebyshev and monomial bases, "
+                       + ("min over the interval and the graph's eigenvalues" if lam is not None else "over the interval"),
+        "remainder": "non-asymptotic second-order remainder, min of origin and centred forms (theory s.5 item 5)",
+        "certified": "first_order + remainder, with a round-off allowance; bank: spectral norm of per-filter bounds",
+        "published": f"2 C (1 + delta sqrt(N)) eps with delta = {delta:g}, first order only "
+                     "(Gama, Bruna, Ribeiro 2020, Thm 2; exact form from memory)",
+        "aligned": "2 max |lam h'(lam)| eps, first order, for E commuting with S",
+        "lower": "largest change realised by constructed perturbations (power iteration on the change)",
+        "suprema": consts.method,
+    }
+    return Certificate(n, interval, basis, float(delta), consts, tuple(bounds), assumptions)

@@ -1,0 +1,152 @@
+"""Frequency-response constants on a spectral grid, in JAX: differentiable in
+the taps, one value per filter of a bank. These are the training penalties;
+they are grid estimates, not bounds (the float64 certificates in
+:mod:`stablefilt._certify` make them rigorous).
+
+Every function takes taps ``(K,)`` or ``(K, F_in, F_out)``, a spectral
+interval ``(a, b)`` and a grid size, and returns an array of shape
+``taps.shape[1:]`` (a scalar for one filter). Definitions in
+docs/theory.md section 3.
+"""
+
+from __future__ import annotations
+
+import functools
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from ._filters import Basis, basis_derivatives, basis_values
+from ._kernel import as_series, kernel_matrix
+
+DEFAULT_GRID = 256
+PAIR_GRID = 64
+
+
+def spectral_grid(interval, grid: int = DEFAULT_GRID) -> np.ndarray:
+    """``grid`` evenly spaced points over ``[a, b]``, ends included."""
+    a, b = float(interval[0]), float(interval[1])
+    return np.linspace(a, b, max(int(grid), 2))
+
+
+def _response(taps, pts, basis, deriv=False):
+    taps = jnp.asarray(taps)
+    f = basis_derivatives if deriv else basis_values
+    phi = jnp.asarray(f(pts, taps.shape[0], basis), dtype=taps.dtype)
+    return jnp.tensordot(phi, taps, axes=([-1], [0]))
+
+
+def sup_norm(taps, interval, basis: Basis = Basis(), grid: int = DEFAULT_GRID):
+    """``max_grid |h(lam)|`` per filter."""
+    return jnp.max(jnp.abs(_response(taps, spectral_grid(interval, grid), basis)), axis=0)
+
+
+def lipschitz(taps, interval, basis: Basis = Basis(), grid: int = DEFAULT_GRID):
+    """``max_grid |h'(lam)|`` per filter (the Lipschitz constant ``C0``)."""
+    return jnp.max(jnp.abs(_response(taps, spectral_grid(interval, grid), basis, deriv=True)), axis=0)
+
+
+def integral_lipschitz(taps, interval, basis: Basis = Basis(), grid: int = DEFAULT_GRID):
+    """``max_grid |lam h'(lam)|`` per filter (the integral Lipschitz ``C``).
+
+    Source: Gama, Bruna, Ribeiro, "Stability Properties of Graph Neural
+    Networks", IEEE Trans. Signal Processing 68, 2020.
+    """
+    pts = spectral_grid(interval, grid)
+    d = _response(taps, pts, basis, deriv=True)
+    lam = jnp.asarray(pts, dtype=d.dtype).reshape((-1,) + (1,) * (d.ndim - 1))
+    return jnp.max(jnp.abs(lam * d), axis=0)
+
+
+def bank_sup_norm(taps, interval, basis: Basis = Basis(), grid: int = DEFAULT_GRID):
+    """``max_grid ||H(lam)||_2`` for a bank (spectral norm of the
+    ``F_in x F_out`` response matrix); a scalar."""
+    h = _response(taps, spectral_grid(interval, grid), basis)
+    if h.ndim == 1:
+        return jnp.max(jnp.abs(h))
+    return jnp.max(jnp.linalg.norm(h, ord=2, axis=(-2, -1)))
+
+
+@functools.lru_cache(maxsize=64)
+def kernel_transform(k: int, basis: Basis, split: Basis) -> np.ndarray:
+    """``T`` of shape ``(k, k, k)``: the kernel matrix of a filter with taps
+    ``c`` (in ``basis``) split in the basis ``split`` is ``T @ c``."""
+    out = np.zeros((k, k, k))
+    for j in range(k):
+        e = np.zeros(k)
+        e[j] = 1.0
+        out[:, :, j] = kernel_matrix(as_series(e, basis), k, split)
+    out.setflags(write=False)
+    return out
+
+
+def split_basis(interval) -> Basis:
+    """Chebyshev basis of the interval (monomials if it is a single point).
+    Splitting in it was clearly tighter than in monomials on random graphs."""
+    a, b = float(interval[0]), float(interval[1])
+    return Basis("chebyshev", (a, b)) if a < b else Basis()
+
+
+def _kernel(taps, interval, basis):
+    taps = jnp.asarray(taps)
+    split = split_basis(interval)
+    t = jnp.asarray(kernel_transform(taps.shape[0], basis, split), dtype=taps.dtype)
+    m = jnp.tensordot(t, taps, axes=([2], [0]))  # (K, K, ...)
+    return jnp.moveaxis(m, (0, 1), (-2, -1)), split
+
+
+def pairwise_constant(taps, interval, basis: Basis = Basis(), grid: int = PAIR_GRID):
+    """``C2 = (1/2) max_{grid x grid} |Gamma(lam, mu)|`` per filter, with
+    ``Gamma = (lam + mu)(h(lam) - h(mu))/(lam - mu)`` (docs/theory.md s. 3),
+    computed as ``Phi M Phi^T`` from the kernel matrix, so no division."""
+    m, split = _kernel(taps, interval, basis)
+    pts = spectral_grid(interval, grid)
+    phi = jnp.asarray(basis_values(pts, m.shape[-1], split), dtype=m.dtype)
+    g = jnp.einsum("ia,...ab,jb->...ij", phi, m, phi)
+    return 0.5 * jnp.max(jnp.abs(g), axis=(-2, -1))
+
+
+@jax.custom_jvp
+def psd_part(m):
+    """``Q max(w, 0) Q^T`` for symmetric ``m = Q diag(w) Q^T`` (batched).
+
+    Its derivative is the Daleckii-Krein formula with divided differences of
+    ``max(., 0)``, bounded and defined at repeated eigenvalues, where the
+    gradient of ``eigh`` itself is not (Bhatia, "Matrix Analysis", 1997, V.3).
+    """
+    w, q = jnp.linalg.eigh(m)
+    return (q * jnp.maximum(w, 0)[..., None, :]) @ jnp.swapaxes(q, -1, -2)
+
+
+@psd_part.defjvp
+def _psd_part_jvp(primals, tangents):
+    (m,), (dm,) = primals, tangents
+    w, q = jnp.linalg.eigh(m)
+    qt = jnp.swapaxes(q, -1, -2)
+    f = jnp.maximum(w, 0)
+    wi, wj = w[..., :, None], w[..., None, :]
+    gap = wi - wj
+    scale = jnp.max(jnp.abs(w), axis=-1, keepdims=True)[..., None] + 1e-30
+    close = jnp.abs(gap) <= 1e-9 * scale
+    mid = 0.5 * (wi + wj)
+    dd = jnp.where(close, (mid > 0).astype(m.dtype),
+                   (f[..., :, None] - f[..., None, :]) / jnp.where(close, 1.0, gap))
+    out = (q * f[..., None, :]) @ qt
+    dout = q @ (dd * (qt @ dm @ q)) @ qt
+    return out, dout
+
+
+def kernel_bound(taps, interval, basis: Basis = Basis(), grid: int = DEFAULT_GRID):
+    """``kappa = max_grid phi^T M_+ phi + max_grid phi^T M_- phi`` per filter
+    (docs/theory.md section 5 item 2): on the grid, an estimate of the
+    first-order worst-case change per unit ``eps``."""
+    m, split = _kernel(taps, interval, basis)
+    m = 0.5 * (m + jnp.swapaxes(m, -1, -2))
+    pts = spectral_grid(interval, grid)
+    phi = jnp.asarray(basis_values(pts, m.shape[-1], split), dtype=m.dtype)
+    total = 0.0
+    for part in (psd_part(m), psd_part(-m)):
+        quad = jnp.einsum("ga,...ab,gb->...g", phi, part, phi)
+        total = total + jnp.max(quad, axis=-1)
+    return total

@@ -1,0 +1,22 @@
+"""Exception types a user can trigger. The command line turns each into one
+sentence on stderr and exit status 2."""
+
+
+class StablefiltError(ValueError):
+    """Base class: bad input named in one sentence."""
+
+
+class GraphError(StablefiltError):
+    """A graph or shift operator is malformed."""
+
+
+class FilterError(StablefiltError):
+    """Filter taps, basis or interval are malformed."""
+
+
+class ConfigError(StablefiltError):
+    """A configuration file or option is malformed."""
+
+
+class RunError(StablefiltError):
+    """A run directory is missing, incomplete or unreadable."""
