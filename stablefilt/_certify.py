@@ -291,10 +291,19 @@ def filter_constants(taps, basis: Basis, interval, eigenvalues=None) -> FilterCo
 # Second-order remainder.
 
 
-def _tail(x: float, y: float, k: int) -> float:
-    """``(x + y)^k - x^k - k y x^(k-1) = sum_{j>=2} C(k, j) y^j x^(k-j)``,
-    summed term by term (no cancellation)."""
-    return float(sum(comb(k, j) * y**j * x ** (k - j) for j in range(2, k + 1)))
+def _coef_map(k: int, basis: Basis, fn) -> np.ndarray:
+    """``(k, k)`` matrix taking taps to ``fn(series)`` coefficients."""
+    out = np.zeros((k, k))
+    for j, q in enumerate(_unit_series(k, basis)):
+        c = fn(q)
+        out[: min(len(c), k), j] = c[:k]
+    return out
+
+
+def _tails(x: float, y: float, k: int) -> np.ndarray:
+    """``(x + y)^j - x^j - j y x^(j-1) = sum_{i>=2} C(j, i) y^i x^(j-i)`` for
+    ``j < k``, summed term by term (no cancellation)."""
+    return np.array([sum(comb(j, i) * y**i * x ** (j - i) for i in range(2, j + 1)) for j in range(k)])
 
 
 def remainder(taps, basis: Basis, interval, eps: float) -> np.ndarray:
@@ -311,19 +320,17 @@ def remainder(taps, basis: Basis, interval, eps: float) -> np.ndarray:
     """
     taps = check_taps(taps)
     cols, shape = _flat(taps)
+    k = cols.shape[0]
     a, b = float(interval[0]), float(interval[1])
     big_r = max(abs(a), abs(b))
     mid, half = 0.5 * (a + b), 0.5 * (b - a)
     d = 2.0 * eps * big_r
-    out = np.empty(cols.shape[1])
-    for f in range(cols.shape[1]):
-        q = as_series(cols[:, f], basis)
-        c = monomial_coefficients(q)
-        g = shifted_coefficients(q, mid)
-        origin = sum(abs(c[j]) * _tail(big_r, d, j) for j in range(2, len(c)))
-        centred = sum(abs(g[j]) * _tail(half, d, j) for j in range(2, len(g)))
-        scale = sum(abs(g[j]) * (half + d) ** j for j in range(len(g)))
-        out[f] = _allow(min(origin, centred), scale)
+    c = np.abs(_coef_map(k, basis, monomial_coefficients) @ cols)  # (K, F)
+    g = np.abs(_coef_map(k, basis, lambda q: shifted_coefficients(q, mid)) @ cols)
+    origin = _tails(big_r, d, k) @ c
+    centred = _tails(half, d, k) @ g
+    scale = ((half + d) ** np.arange(k)) @ g
+    out = _allow(np.minimum(origin, centred), scale)
     return out.reshape(shape) if shape else float(out[0])
 
 
