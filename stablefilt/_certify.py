@@ -18,7 +18,7 @@ from math import comb
 import numpy as np
 from numpy.polynomial import Chebyshev
 
-from ._filters import Basis, basis_values, check_taps, frequency_response, response_derivative, run_filter
+from ._filters import Basis, basis_values, check_taps, response_derivative, run_filter
 from ._graph import ShiftOperator
 from ._interval import SpectralInterval, spectral_interval
 from ._kernel import ABS_ALLOW, REL_ALLOW, as_series, kernel_matrix, monomial_coefficients, shifted_coefficients
@@ -191,7 +191,7 @@ def _bank_sup(cols, shape, basis, a, b, grid=SUP_GRID):
     return float(_allow(top + np.linalg.norm(markov), np.linalg.norm(l1)))
 
 
-def filter_constants(taps, basis: Basis, interval, eigenvalues=None) -> FilterConstants:
+def filter_constants(taps, basis: Basis, interval, eigenvalues=None, *, pairwise: bool = True) -> FilterConstants:
     """Rigorous constants of a filter or bank over ``interval`` (and, when
     ``eigenvalues`` are given, the forms over them).
 
@@ -200,6 +200,8 @@ def filter_constants(taps, basis: Basis, interval, eigenvalues=None) -> FilterCo
       basis: the filter's :class:`Basis`.
       interval: ``(a, b)``, ``a <= b``.
       eigenvalues: optional array of the graph's eigenvalues.
+      pairwise: compute ``C2`` (skipped, reported as ``kappa / 2``, when
+        false: the cheap form used every training epoch).
 
     Returns:
       :class:`FilterConstants`.
@@ -237,11 +239,11 @@ def filter_constants(taps, basis: Basis, interval, eigenvalues=None) -> FilterCo
                 for j in range(k):
                     qmap[i + j, i, j] = 1.0
             conv = _linear_map(qmap.shape[0], Basis(), a, b, lambda q: q, qmap.shape[0] - 1)
-            kap = sup_grid_markov(np.einsum("nm,mab,fab->fn", conv, qmap, absm))
+            kap = sup_grid_markov(np.einsum("nm,mab,fab->fn", conv, qmap, absm, optimize=True))
         kappa = kap if kappa is None else np.minimum(kappa, kap)
         if lam is not None:
             phi = basis_values(lam, k, split)
-            ks = np.einsum("ia,fab,ib->fi", phi, absm, phi).max(axis=1)
+            ks = np.einsum("ia,fab,ib->fi", phi, absm, phi, optimize=True).max(axis=1)
             ks = _allow(np.maximum(ks, 0), np.abs(m).sum(axis=(1, 2)))
             kappa_spec = ks if kappa_spec is None else np.minimum(kappa_spec, ks)
     if lam is not None:
@@ -263,10 +265,10 @@ def filter_constants(taps, basis: Basis, interval, eigenvalues=None) -> FilterCo
     grid = 129
     t = np.linspace(-1, 1, grid)
     v = np.polynomial.chebyshev.chebvander(t, k - 1)
-    pair = np.empty(cols.shape[1])
+    pair = np.full(cols.shape[1], np.inf)
     k2 = (np.arange(k) ** 2)[:, None]
-    for f0 in range(0, cols.shape[1], 64):
-        g = np.einsum("ia,fab,jb->fij", v, m[f0:f0 + 64], v)
+    for f0 in range(0, cols.shape[1] if pairwise else 0, 64):
+        g = np.einsum("ia,fab,jb->fij", v, m[f0:f0 + 64], v, optimize=True)
         markov = (2.0 / (grid - 1)) * np.sum(k2 * np.abs(m[f0:f0 + 64]), axis=(1, 2))
         pair[f0:f0 + 64] = np.abs(g).max(axis=(1, 2)) + markov
     pair = np.minimum(_allow(pair, np.abs(m).sum(axis=(1, 2))), kappa) * 0.5
@@ -557,7 +559,7 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
     assumptions = {
         "perturbation_model": MODEL,
         "norm": NORM,
-        "spectral_interval": [interval.lower, interval.upper],
+        "spectral_interval": [float(interval.lower), float(interval.upper)],
         "interval_method": {"lower": interval.lower_method, "upper": interval.upper_method},
         "first_order": "kernel (Schur) bound: PSD split of the Gamma kernel in Chebyshev and monomial bases, "
                        + ("min over the interval and the graph's eigenvalues" if lam is not None else "over the interval"),

@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 from numpy.polynomial import Chebyshev, Polynomial
 
-from ._filters import Basis, basis_values
+from ._filters import Basis
 
 #: Relative and absolute allowance added to every rigorous supremum, far above
 #: the float64 round-off in evaluating a short series (common practice).

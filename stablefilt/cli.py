@@ -8,7 +8,10 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import sys
+
+import numpy as np
 
 from ._errors import StablefiltError
 
@@ -98,6 +101,142 @@ def cmd_bound(args) -> int:
     return 0
 
 
+def cmd_train(args) -> int:
+    from ._config import load_config
+    from ._train import train
+
+    config = load_config(args.config)
+    if args.epochs is not None and args.epochs < 1:
+        raise UsageError(f"--epochs must be at least 1; got {args.epochs}")
+    if args.seed is not None and args.seed < 0:
+        raise UsageError(f"--seed must be non-negative; got {args.seed}")
+    out = args.out or os.path.join("runs", config.name)
+    summary = train(config, out, epochs=args.epochs, seed=args.seed, resume=args.resume, force=args.force,
+                    progress=lambda m: print(m, flush=True))
+    m = summary["metric"]
+    cert = summary["certificate"]["certified"]
+    print(f"run written to {out}: test {m} {summary['metrics'][f'test_{m}']:.4f}; certified "
+          + ", ".join(f"{v:.4g} at eps {k}" for k, v in cert.items())
+          + f" (inputs with ||x|| <= {summary['certificate']['rho']:.4g})")
+    return 0
+
+
+def certify_run(run, eps_list):
+    """Float64 certificate of a run: over the eigenvalues when the graph is
+    small enough to decompose, else over its interval; plus the
+    input-specific bound on the run's test signals."""
+    from ._interval import spectral_interval
+    from ._modelcert import certify_inputs, certify_model
+
+    iv = spectral_interval(run.op)
+    lam = iv.eigenvalues
+    rho = float(run.manifest.get("rho") or np.max(np.linalg.norm(run.test_x.reshape(len(run.test_x), -1), axis=1)))
+    cert = certify_model(run.params, run.spec, iv, run.op.nodes, eps_list, rho=rho, eigenvalues=lam)
+    inputs = {}
+    for e in eps_list:
+        per = certify_inputs(run.params, run.spec, run.op.matrix, iv, run.test_x, e, lam)
+        inputs[f"{e:g}"] = float(per.max())
+    return cert, iv, inputs
+
+
+def cmd_certify(args) -> int:
+    from ._train import open_run
+
+    run = open_run(args.run)
+    eps = _eps_list(args.eps) or [float(e) for e in run.config["certify"]["eps"]]
+    cert, iv, inputs = certify_run(run, eps)
+    if args.json:
+        d = cert.as_dict()
+        d.update({"run": args.run, "nodes": run.op.nodes, "interval": [iv.lower, iv.upper],
+                  "interval_method": iv.method, "input_specific_test_max": inputs})
+        json.dump(d, sys.stdout)
+        sys.stdout.write("\n")
+        return 0
+    print(f"run {args.run}: {run.op.nodes} nodes, spectral interval [{iv.lower:.6g}, {iv.upper:.6g}] ({iv.method}), "
+          f"model {list(run.spec.features)} with K = {run.spec.taps} ({run.spec.basis.kind})")
+    rows = [[str(i + 1), _fmt(lr.integral_lipschitz), _fmt(lr.kernel), _fmt(lr.sup)]
+            + [_fmt(lr.change[f"{e:g}"]) for e in eps] for i, lr in enumerate(cert.layers)]
+    print(_table(rows, ["layer", "integral Lipschitz", "kernel", "sup ||H||"] + [f"change@{e:g}" for e in eps]))
+    rows = [[f"{e:g}", _fmt(cert.certified[f"{e:g}"]), _fmt(cert.per_unit[f"{e:g}"]), _fmt(inputs[f"{e:g}"]),
+             _fmt(cert.published[f"{e:g}"])] for e in eps]
+    print(_table(rows, ["eps", "certified", "per unit eps", "input-specific (test max)", "published"]))
+    print("assumptions:")
+    for k, v in cert.assumptions.items():
+        print(f"  {k}: {v}")
+    print("A certificate covers only the stated perturbation model and eps; it is no assurance of real-world safety.")
+    return 0
+
+
+def compare_rows(paths) -> list[dict]:
+    from ._runs import read_json
+
+    rows = []
+    for p in paths:
+        if not os.path.isdir(p):
+            raise UsageError(f"run directory {p!r} does not exist")
+        s = read_json(os.path.join(p, "summary.json"), "run summary")
+        try:
+            m = s["metric"]
+            cert = s["certificate"]
+            rows.append({
+                "run": p,
+                "name": s.get("name"),
+                "penalty_mode": s["penalty"]["mode"],
+                "penalty_weight": s["penalty"]["weight"],
+                "model": s["model"],
+                "metric": m,
+                f"test_{m}": s["metrics"][f"test_{m}"],
+                "layers": [{"integral_lipschitz": lr["integral_lipschitz"], "kernel": lr["kernel"], "sup": lr["sup"]}
+                           for lr in cert["layers"]],
+                "certified": cert["certified"],
+                "published": cert["published"],
+                "rho": cert["rho"],
+            })
+        except (KeyError, TypeError):
+            from ._errors import RunError
+
+            raise RunError(f"run summary in {p!r} lacks the fields compare needs; is it from this version?") from None
+    first = lambda r: min(r["certified"].items(), key=lambda kv: float(kv[0]))[1]  # noqa: E731
+    rows.sort(key=lambda r: (first(r), -r.get("test_acc", 0.0), r.get("test_rmse", 0.0)))
+    return rows
+
+
+def cmd_compare(args) -> int:
+    rows = compare_rows(args.runs)
+    if args.csv and os.path.exists(args.csv):
+        raise UsageError(f"--csv {args.csv!r} already exists; choose a new file name")
+    eps = sorted({k for r in rows for k in r["certified"]}, key=float)
+    header = ["run", "penalty", "test metric"] + [f"IL layer {i + 1}" for i in range(max(len(r["layers"]) for r in rows))]
+    header += [f"certified@{e}" for e in eps] + [f"published@{e}" for e in eps]
+    table = []
+    for r in rows:
+        m = r["metric"]
+        w = r["penalty_weight"]
+        line = [r["name"] or r["run"], f"{r['penalty_mode']} x {w}", f"{m} {r[f'test_{m}']:.4f}"]
+        line += [_fmt(lr["integral_lipschitz"]) for lr in r["layers"]] + ["-"] * (len(header) - 3 - 2 * len(eps) - len(r["layers"]))
+        line += [_fmt(r["certified"].get(e)) for e in eps] + [_fmt(r["published"].get(e)) for e in eps]
+        table.append(line)
+    if args.json:
+        json.dump(rows, sys.stdout)
+        sys.stdout.write("\n")
+    else:
+        print(_table(table, header))
+    if args.csv:
+        import csv
+
+        with open(args.csv, "x", newline="") as fh:
+            w = csv.writer(fh)
+            w.writerow(header)
+            w.writerows(table)
+    return 0
+
+
+def cmd_demo(args) -> int:
+    from .demo import run_demo
+
+    return run_demo(args.out)
+
+
 def build_parser() -> argparse.ArgumentParser:
     from ._graph import KINDS
 
@@ -111,15 +250,28 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--delta", type=float, default=None, help="eigenvector misalignment for the published bound (default 8)")
     b.add_argument("--json", action="store_true", help="print one JSON object")
     b.set_defaults(func=cmd_bound)
-    d = sub.add_parser("demo", help="run the demonstration")
+    t = sub.add_parser("train", help="train a model from a TOML config")
+    t.add_argument("config")
+    t.add_argument("--out", help="run directory (default runs/<name>)")
+    t.add_argument("--epochs", type=int)
+    t.add_argument("--seed", type=int)
+    t.add_argument("--resume", action="store_true", help="continue from the run's last checkpoint")
+    t.add_argument("--force", action="store_true", help="write into an existing run directory")
+    t.set_defaults(func=cmd_train)
+    c = sub.add_parser("certify", help="recompute a trained model's certificate in float64")
+    c.add_argument("run")
+    c.add_argument("--eps", action="append")
+    c.add_argument("--json", action="store_true")
+    c.set_defaults(func=cmd_certify)
+    m = sub.add_parser("compare", help="compare runs on accuracy and certified bound")
+    m.add_argument("runs", nargs="+")
+    m.add_argument("--json", action="store_true")
+    m.add_argument("--csv", help="also write the table to this new CSV file")
+    m.set_defaults(func=cmd_compare)
+    d = sub.add_parser("demo", help="train the orchard demo with and without the penalty and compare")
+    d.add_argument("--out", help="folder for the two runs (default runs/demo-<time>)")
     d.set_defaults(func=cmd_demo)
     return p
-
-
-def cmd_demo(args) -> int:
-    from .demo import run_demo
-
-    return run_demo()
 
 
 def main(argv=None) -> int:

@@ -57,24 +57,35 @@ def season_drift(orchard: Orchard, eps: float, seed: int) -> ShiftOperator:
 
 
 def leak_snapshots(orchard: Orchard, op: ShiftOperator, count: int, seed: int, spread: float = 0.6,
-                   steps: int = 3, noise: float = 0.3):
-    """``count`` moisture snapshots ``(count, N)`` and the leaking block of
-    each: a leak wets a few sensors of its block, the wetting diffuses by
-    ``steps`` applications of ``(1 - spread) I + spread * S_n`` with ``S_n``
-    the row-normalised adjacency, then sensor noise is added."""
+                   steps: int = 4, noise: float = 0.35):
+    """``count`` moisture snapshots and the soil state of every sensor.
+
+    A leak in a random block wets a few of its sensors; the wetting diffuses
+    by ``steps`` applications of ``(1 - spread) I + spread * D^-1 A``. Each
+    sensor's soil state is 0 (dry), 1 (damp) or 2 (waterlogged) from the
+    clean moisture (thresholds at its 60th and 90th percentiles over all
+    snapshots); the reading adds noise of ``noise`` times the clean spread.
+
+    Returns:
+      ``(readings (count, N), states (count, N) int, leaking block (count,))``.
+    """
     rng = np.random.default_rng(seed)
     a = op.matrix
     deg = np.asarray(a.sum(axis=1)).ravel()
     deg[deg == 0] = 1
     walk = sp.diags_array(1 / deg) @ a
     n = a.shape[0]
-    labels = rng.integers(0, orchard.blocks, count)
+    blocks = rng.integers(0, orchard.blocks, count)
     x = np.zeros((count, n))
-    for t, lab in enumerate(labels):
+    for t, lab in enumerate(blocks):
         members = np.flatnonzero(orchard.block == lab)
+        if len(members) == 0:
+            members = np.arange(n)
         wet = rng.choice(members, size=min(3, len(members)), replace=False)
         x[t, wet] = rng.uniform(1, 2, len(wet))
     for _ in range(steps):
-        x = (1 - spread) * x + spread * (walk @ x.T).T
-    x += noise * rng.standard_normal(x.shape) * x.std()
-    return x, labels
+        x = (1 - spread) * x + spread * np.asarray(walk @ x.T).T
+    lo, hi = np.quantile(x, [0.6, 0.9])
+    states = (x > lo).astype(np.int64) + (x > hi).astype(np.int64)
+    readings = x + noise * x.std() * rng.standard_normal(x.shape)
+    return readings, states, blocks

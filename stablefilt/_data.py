@@ -1,0 +1,106 @@
+"""Training data from a config: the demo orchard or the user's files."""
+
+from __future__ import annotations
+
+import dataclasses
+import zipfile
+
+import numpy as np
+
+from ._config import Config, resolve_path
+from ._errors import ConfigError
+from ._graph import ShiftOperator, shift_operator
+from ._io import load_matrix
+
+
+@dataclasses.dataclass(frozen=True)
+class Dataset:
+    """Signals on one graph and their targets, split by signal.
+
+    Attributes:
+      op: the shift operator (original node order).
+      x: ``(S, N, F)`` float32 signals.
+      y: ``(S, N)`` node targets or ``(S,)`` graph targets; int labels for
+        classification, float for regression.
+      task: ``classify`` or ``regress``.
+      classes: number of classes (1 for regression).
+      node_task: targets per node.
+      train, val, test: index arrays into the signals.
+    """
+
+    op: ShiftOperator
+    x: np.ndarray
+    y: np.ndarray
+    task: str
+    classes: int
+    node_task: bool
+    train: np.ndarray
+    val: np.ndarray
+    test: np.ndarray
+
+
+def _split(count: int, d: dict, seed: int):
+    rng = np.random.default_rng(seed + 7919)
+    order = rng.permutation(count)
+    n_tr = int(round(d["train_fraction"] * count))
+    n_va = int(round(d["val_fraction"] * count))
+    if n_tr < 1 or n_va < 1 or count - n_tr - n_va < 1:
+        raise ConfigError(f"{count} signals are too few to split into train, validation and test sets.")
+    return np.sort(order[:n_tr]), np.sort(order[n_tr:n_tr + n_va]), np.sort(order[n_tr + n_va:])
+
+
+def _orchard(d: dict) -> tuple[ShiftOperator, np.ndarray, np.ndarray]:
+    from .scenario import leak_snapshots, make_orchard
+
+    orchard = make_orchard(d["sensors"], d["block_rows"], d["block_cols"], d["neighbours"], seed=d["seed"])
+    op = shift_operator(orchard.adjacency, d["shift"])
+    raw = shift_operator(orchard.adjacency)
+    x, states, _ = leak_snapshots(orchard, raw, d["samples"], seed=d["seed"] + 1, noise=d["noise"])
+    return op, x[:, :, None].astype(np.float32), states
+
+
+def _files(config: Config, d: dict):
+    gpath = resolve_path(config, d["graph"], "data.graph")
+    spath = resolve_path(config, d["signals"], "data.signals")
+    op = shift_operator(load_matrix(gpath), d["shift"], name=f"graph file {d['graph']!r}")
+    try:
+        with np.load(spath, allow_pickle=False) as z:
+            if "x" not in z.files or "y" not in z.files:
+                raise ConfigError(f"signals file {d['signals']!r} needs arrays 'x' and 'y'.")
+            x, y = np.asarray(z["x"]), np.asarray(z["y"])
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
+        raise ConfigError(f"signals file {d['signals']!r} could not be read as a numpy .npz archive "
+                          f"({type(exc).__name__}).") from None
+    n = op.nodes
+    if x.ndim == 2:
+        x = x[:, :, None]
+    if x.ndim != 3 or x.shape[1] != n:
+        raise ConfigError(f"signals file {d['signals']!r}: x must have shape (S, {n}) or (S, {n}, F); got {x.shape}.")
+    if not np.issubdtype(x.dtype, np.number) or not np.all(np.isfinite(x)):
+        raise ConfigError(f"signals file {d['signals']!r}: x must be finite numbers.")
+    if y.shape not in ((x.shape[0],), (x.shape[0], n)):
+        raise ConfigError(f"signals file {d['signals']!r}: y must have shape ({x.shape[0]},) or "
+                          f"({x.shape[0]}, {n}); got {y.shape}.")
+    if d["task"] == "classify":
+        if not np.issubdtype(y.dtype, np.integer) or y.min() < 0:
+            raise ConfigError(f"signals file {d['signals']!r}: y must be non-negative integer labels to classify.")
+    elif not np.issubdtype(y.dtype, np.number) or not np.all(np.isfinite(y)):
+        raise ConfigError(f"signals file {d['signals']!r}: y must be finite numbers to regress.")
+    return op, x.astype(np.float32), y
+
+
+def build_dataset(config: Config) -> Dataset:
+    """The dataset a config describes."""
+    d = config["data"]
+    if d["source"] == "orchard":
+        op, x, y = _orchard(d)
+        task = "classify"
+    else:
+        op, x, y = _files(config, d)
+        task = d["task"]
+    tr, va, te = _split(x.shape[0], d, d["seed"])
+    classes = int(y.max()) + 1 if task == "classify" else 1
+    if task == "classify" and classes < 2:
+        raise ConfigError("the targets hold a single class; classification needs at least two.")
+    y = y.astype(np.int32) if task == "classify" else y.astype(np.float32)
+    return Dataset(op, x, y, task, classes, y.ndim == 2, tr, va, te)

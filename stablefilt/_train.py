@@ -1,0 +1,412 @@
+"""The trainer: task loss plus stability penalty, optax, early stopping, a
+float64 certificate every epoch, atomic checkpoints and resume."""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime
+import os
+import platform
+import sys
+import time
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import optax
+import scipy
+
+from ._config import Config
+from ._data import Dataset, build_dataset
+from ._errors import RunError
+from ._filters import Basis
+from ._graph import reorder
+from ._interval import SpectralInterval, spectral_interval
+from ._model import ModelSpec, forward, init_params
+from ._modelcert import certify_model
+from ._penalty import model_penalty, penalty
+from ._runs import (
+    FORMAT,
+    append_log,
+    atomic_write,
+    load_checkpoint,
+    npz_bytes,
+    read_log,
+    rewrite_log,
+    save_checkpoint,
+    save_graph,
+    save_params,
+    write_json,
+)
+from ._sparse import jax_operator
+
+
+def model_spec(config: Config, interval: SpectralInterval, in_features: int, outputs: int) -> ModelSpec:
+    m = config["model"]
+    if m["basis"] == "chebyshev":
+        iv = tuple(m["basis_interval"]) if m["basis_interval"] else (interval.lower, interval.upper)
+        if not iv[0] < iv[1]:
+            iv = (iv[0] - 1.0, iv[1] + 1.0)
+        basis = Basis("chebyshev", (float(iv[0]), float(iv[1])))
+    else:
+        basis = Basis()
+    return ModelSpec(tuple([in_features] + list(m["features"])), taps=m["taps"], basis=basis,
+                     nonlinearity=m["nonlinearity"], bias=m["bias"], readout=m["readout"], outputs=outputs,
+                     final_nonlinearity=True)
+
+
+def task_loss(out, y, task: str):
+    if task == "classify":
+        return jnp.mean(optax.softmax_cross_entropy_with_integer_labels(out, y))
+    return jnp.mean((out[..., 0] - y) ** 2)
+
+
+def metric(out, y, task: str):
+    """Accuracy (classify) or RMSE (regress)."""
+    if task == "classify":
+        return jnp.mean((jnp.argmax(out, axis=-1) == y).astype(jnp.float32))
+    return jnp.sqrt(jnp.mean((out[..., 0] - y) ** 2))
+
+
+def make_penalty_fn(config: Config, spec: ModelSpec, interval):
+    p = config["penalty"]
+    iv = (float(interval.lower), float(interval.upper))
+    weight = p["weight"]
+    if p["mode"] == "model":
+        w = float(weight if not isinstance(weight, list) else max(weight))
+
+        def fn(params):
+            return w * model_penalty(params, iv, basis=spec.basis, grid=p["grid"], readout=spec.readout,
+                                     reduce=p["reduce"] if p["reduce"] == "hinge" else "max", target=p["target"])
+    else:
+        def fn(params):
+            return penalty(params["layers"], iv, mode=p["mode"], reduce=p["reduce"], target=p["target"],
+                           weights=weight, basis=spec.basis, grid=p["grid"])
+    active = (max(weight) if isinstance(weight, list) else weight) > 0
+    return fn, active
+
+
+def make_optimizer(config: Config, steps_per_epoch: int):
+    t = config["train"]
+    lr = t["learning_rate"]
+    if t["schedule"] == "cosine":
+        lr = optax.cosine_decay_schedule(lr, max(1, t["epochs"] * steps_per_epoch))
+    parts = []
+    if t["clip"] > 0:
+        parts.append(optax.clip_by_global_norm(t["clip"]))
+    parts.append(optax.adamw(lr, weight_decay=t["weight_decay"]) if t["weight_decay"] > 0 else optax.adam(lr))
+    return optax.chain(*parts)
+
+
+@dataclasses.dataclass
+class Trainer:
+    """Everything a run needs, built once from a config."""
+
+    config: Config
+    data: Dataset
+    interval: SpectralInterval
+    spec: ModelSpec
+    perm: np.ndarray
+    op: object  # JaxShift in RCM order
+    x: jnp.ndarray  # signals in RCM order
+    y: jnp.ndarray
+    rho: float
+    eps: list
+    seed: int
+
+    @classmethod
+    def from_config(cls, config: Config, seed: int | None = None) -> "Trainer":
+        data = build_dataset(config)
+        interval = spectral_interval(data.op)
+        spec = model_spec(config, interval, data.x.shape[2], data.classes)
+        ordered, perm = reorder(data.op)
+        x = data.x[:, perm, :]
+        y = data.y[:, perm] if data.node_task else data.y
+        rho = float(np.max(np.linalg.norm(data.x.reshape(data.x.shape[0], -1).astype(np.float64), axis=1)))
+        return cls(config, data, interval, spec, perm, jax_operator(ordered), jnp.asarray(x), jnp.asarray(y), rho,
+                   [float(e) for e in config["certify"]["eps"]],
+                   config["train"]["seed"] if seed is None else int(seed))
+
+    def batches(self, epoch: int) -> list[np.ndarray]:
+        """Equal-size mini-batches of training signals for ``epoch``,
+        shuffled by ``(seed, epoch)``; the remainder rotates between epochs.
+        Equal sizes keep the step compiled once."""
+        tr = self.data.train
+        bs = self.config["train"]["batch_size"]
+        if bs == 0 or bs >= len(tr):
+            return [tr]
+        rng = np.random.default_rng([self.seed, epoch])
+        order = rng.permutation(tr)
+        return [order[i * bs:(i + 1) * bs] for i in range(len(tr) // bs)]
+
+    def certificate(self, params, eigen: bool = False):
+        lam = self.interval.eigenvalues if eigen else None
+        return certify_model(params, self.spec, self.interval, self.data.op.nodes, self.eps, rho=self.rho,
+                             eigenvalues=lam)
+
+
+def build_step(trainer: Trainer, tx):
+    spec, task = trainer.spec, trainer.data.task
+    pen_fn, active = make_penalty_fn(trainer.config, spec, trainer.interval)
+
+    def loss_fn(params, op, xb, yb):
+        out = forward(params, op, xb, spec)
+        tl = task_loss(out, yb, task)
+        pen = pen_fn(params) if active else jnp.float32(0.0)
+        return tl + pen, (tl, pen)
+
+    @jax.jit
+    def step(params, opt_state, op, xb, yb):
+        (loss, (tl, pen)), grads = jax.value_and_grad(loss_fn, has_aux=True)(params, op, xb, yb)
+        updates, opt_state = tx.update(grads, opt_state, params)
+        params = optax.apply_updates(params, updates)
+        return params, opt_state, loss, tl, pen
+
+    @jax.jit
+    def evaluate(params, op, xb, yb):
+        out = forward(params, op, xb, spec)
+        return task_loss(out, yb, task), metric(out, yb, task)
+
+    return step, evaluate
+
+
+def _versions() -> dict:
+    import optax as _o
+
+    from . import __version__
+
+    return {"stablefilt": __version__, "python": sys.version.split()[0], "jax": jax.__version__,
+            "optax": _o.__version__, "numpy": np.__version__, "scipy": scipy.__version__,
+            "platform": platform.platform()}
+
+
+def _now() -> str:
+    return datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")
+
+
+def prepare_out_dir(out: str, resume: bool, force: bool) -> None:
+    """Check the output directory before any training work."""
+    if os.path.exists(out) and not os.path.isdir(out):
+        raise RunError(f"output {out!r} is a file; expected a directory for the run.")
+    if resume:
+        if not os.path.isfile(os.path.join(out, "checkpoint.npz")):
+            raise RunError(f"cannot resume: {out!r} holds no checkpoint.npz.")
+        return
+    if os.path.isdir(out) and os.listdir(out) and not force:
+        raise RunError(f"run directory {out!r} already exists and is not empty; pass --force to write into it "
+                       "or --resume to continue it.")
+    try:
+        os.makedirs(out, exist_ok=True)
+        probe = os.path.join(out, ".write-test")
+        with open(probe, "wb") as fh:
+            fh.write(b"x" * 4096)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.unlink(probe)
+    except OSError as exc:
+        raise RunError(f"cannot write to run directory {out!r} ({exc.strerror or type(exc).__name__}).") from None
+
+
+def _fmt_metric(task: str) -> str:
+    return "acc" if task == "classify" else "rmse"
+
+
+def train(config: Config, out: str, *, epochs: int | None = None, seed: int | None = None, resume: bool = False,
+          force: bool = False, progress=print) -> dict:
+    """Train the model a config describes and write the run directory.
+
+    Returns the summary dictionary (also written to ``summary.json``).
+    """
+    prepare_out_dir(out, resume, force)
+    trainer = Trainer.from_config(config, seed)
+    t = config["train"]
+    n_epochs = int(epochs if epochs is not None else t["epochs"])
+    steps = len(trainer.batches(0))
+    tx = make_optimizer(config, steps)
+    step, evaluate = build_step(trainer, tx)
+    params = init_params(trainer.spec, trainer.seed)
+    opt_state = tx.init(params)
+    best = params
+    best_val, bad, start_epoch = None, 0, 1
+    paths = {k: os.path.join(out, f) for k, f in (("log", "log.jsonl"), ("ckpt", "checkpoint.npz"),
+                                                   ("manifest", "manifest.json"), ("params", "params.npz"),
+                                                   ("summary", "summary.json"))}
+    if resume:
+        state, meta = load_checkpoint(paths["ckpt"], {"params": params, "opt_state": opt_state, "best": best})
+        if meta.get("fingerprint") != trainer.data.op.fingerprint() or meta.get("seed") != trainer.seed:
+            raise RunError(f"checkpoint in {out!r} was made from another graph or seed than this config gives.")
+        params, opt_state, best = state["params"], state["opt_state"], state["best"]
+        best_val, bad, start_epoch = meta["best_val"], meta["bad"], meta["epoch"] + 1
+        n_epochs = max(n_epochs, meta.get("epochs", n_epochs))
+        rewrite_log(paths["log"], [r for r in read_log(paths["log"]) if r.get("epoch", 0) <= meta["epoch"]])
+        manifest = dict(read_manifest_or_empty(paths["manifest"]))
+    else:
+        atomic_write(os.path.join(out, "config.toml"), config.text.encode())
+        save_graph(os.path.join(out, "graph.npz"), trainer.data.op.matrix)
+        te = trainer.data.test
+        atomic_write(os.path.join(out, "test.npz"), npz_bytes({"x": trainer.data.x[te], "y": trainer.data.y[te]}))
+        if os.path.exists(paths["log"]):
+            os.replace(paths["log"], paths["log"] + ".previous")
+        manifest = {
+            "format": FORMAT,
+            "name": config.name,
+            "versions": _versions(),
+            "seed": trainer.seed,
+            "graph": {"fingerprint": trainer.data.op.fingerprint(), "nodes": trainer.data.op.nodes,
+                      "edges": trainer.data.op.edges, "kind": trainer.data.op.kind},
+            "spectral_interval": [trainer.interval.lower, trainer.interval.upper],
+            "interval_method": {"lower": trainer.interval.lower_method, "upper": trainer.interval.upper_method},
+            "basis": {"kind": trainer.spec.basis.kind, "interval": trainer.spec.basis.interval},
+            "task": trainer.data.task, "classes": trainer.data.classes,
+            "signals": {"train": len(trainer.data.train), "val": len(trainer.data.val), "test": len(trainer.data.test)},
+            "rho": trainer.rho,
+            "started": _now(),
+            "finished": None,
+        }
+        write_json(paths["manifest"], manifest)
+    x, y, op = trainer.x, trainer.y, trainer.op
+    tr, va = jnp.asarray(trainer.data.train), jnp.asarray(trainer.data.val)
+    mname = _fmt_metric(trainer.data.task)
+    higher_better = trainer.data.task == "classify"
+    patience = t["patience"]
+    epoch = start_epoch - 1
+    for epoch in range(start_epoch, n_epochs + 1):
+        t0 = time.perf_counter()
+        losses, tls, pens = [], [], []
+        for b in trainer.batches(epoch):
+            params, opt_state, loss, tl, pen = step(params, opt_state, op, x[b], y[b])
+            losses.append(loss)
+            tls.append(tl)
+            pens.append(pen)
+        loss, tl, pen = (float(np.mean(jax.device_get(v))) for v in (losses, tls, pens))
+        if not np.isfinite(loss) or not all(np.all(np.isfinite(np.asarray(a))) for a in jax.tree_util.tree_leaves(params)):
+            append_log(paths["log"], {"epoch": epoch, "stopped": "non-finite loss or parameters", "loss": None})
+            raise RunError(f"training diverged at epoch {epoch} (loss {loss}); the last good checkpoint is kept "
+                           f"in {out!r}. Lower the learning rate or raise clipping.")
+        _, tr_m = evaluate(params, op, x[tr], y[tr])
+        va_l, va_m = evaluate(params, op, x[va], y[va])
+        tr_m, va_m, va_l = float(tr_m), float(va_m), float(va_l)
+        cert = trainer.certificate(params)
+        seconds = time.perf_counter() - t0
+        record = {
+            "epoch": epoch, "loss": loss, "task_loss": tl, "penalty": pen,
+            f"train_{mname}": tr_m, f"val_{mname}": va_m, "val_loss": va_l,
+            "certified": cert.certified, "published": cert.published,
+            "layers": [{"integral_lipschitz": lr.integral_lipschitz, "kernel": lr.kernel, "sup": lr.sup}
+                       for lr in cert.layers],
+            "seconds": seconds,
+        }
+        improved = best_val is None or (va_m > best_val if higher_better else va_m < best_val)
+        if improved:
+            best_val, bad, best = va_m, 0, params
+        else:
+            bad += 1
+        append_log(paths["log"], record)
+        save_checkpoint(paths["ckpt"], {"params": params, "opt_state": opt_state, "best": best},
+                        {"format": FORMAT, "epoch": epoch, "epochs": n_epochs, "best_val": best_val, "bad": bad,
+                         "seed": trainer.seed, "fingerprint": trainer.data.op.fingerprint()})
+        e0 = f"{trainer.eps[0]:g}"
+        progress(f"epoch {epoch:3d}/{n_epochs}  loss {loss:.4f} (task {tl:.4f}, penalty {pen:.4f})  "
+                 f"train {mname} {tr_m:.4f}  val {mname} {va_m:.4f}  certified@{e0} {cert.certified[e0]:.4g}  "
+                 f"{seconds:.2f}s")
+        if patience and bad >= patience:
+            progress(f"early stop: validation {mname} did not improve for {patience} epochs")
+            break
+    return finish(trainer, best, evaluate, out, manifest, paths, epoch)
+
+
+def read_manifest_or_empty(path: str) -> dict:
+    from ._runs import read_json
+
+    return read_json(path, "manifest") if os.path.exists(path) else {}
+
+
+def finish(trainer: Trainer, params, evaluate, out: str, manifest: dict, paths: dict, last_epoch: int) -> dict:
+    save_params(paths["params"], params)
+    mname = _fmt_metric(trainer.data.task)
+    x, y, op = trainer.x, trainer.y, trainer.op
+    metrics = {}
+    for split, idx in (("train", trainer.data.train), ("val", trainer.data.val), ("test", trainer.data.test)):
+        loss, m = evaluate(params, op, x[jnp.asarray(idx)], y[jnp.asarray(idx)])
+        metrics[f"{split}_{mname}"] = float(m)
+        metrics[f"{split}_loss"] = float(loss)
+    use_eig = trainer.interval.eigenvalues is not None
+    cert = trainer.certificate(params, eigen=use_eig)
+    summary = {
+        "name": trainer.config.name,
+        "epochs": last_epoch,
+        "metric": mname,
+        "metrics": metrics,
+        "penalty": trainer.config["penalty"],
+        "model": {"features": list(trainer.spec.features), "taps": trainer.spec.taps,
+                  "basis": trainer.spec.basis.kind, "nonlinearity": trainer.spec.nonlinearity,
+                  "readout": trainer.spec.readout},
+        "certificate": cert.as_dict(),
+    }
+    write_json(paths["summary"], summary)
+    manifest["finished"] = _now()
+    write_json(paths["manifest"], manifest)
+    return summary
+
+
+@dataclasses.dataclass(frozen=True)
+class Run:
+    """A finished run directory, loaded."""
+
+    path: str
+    config: Config
+    manifest: dict
+    summary: dict | None
+    op: object  # ShiftOperator
+    spec: ModelSpec
+    params: dict
+    test_x: np.ndarray
+    test_y: np.ndarray
+
+
+def open_run(path: str) -> Run:
+    """Load a run directory written by :func:`train`.
+
+    Raises:
+      RunError: missing, half-written, or from a newer format.
+    """
+    from ._config import parse_config
+    from ._graph import ShiftOperator, shift_operator
+    from ._runs import arrays_to_params, load_graph_npz, load_npz, read_json
+
+    if not os.path.isdir(path):
+        raise RunError(f"run directory {path!r} does not exist." if not os.path.exists(path)
+                       else f"run {path!r} is a file; expected a run directory.")
+    manifest = read_json(os.path.join(path, "manifest.json"), "run manifest")
+    if not isinstance(manifest, dict) or "format" not in manifest:
+        raise RunError(f"run manifest in {path!r} has no format field; is it a run directory?")
+    if manifest["format"] != FORMAT:
+        raise RunError(f"run {path!r} is format {manifest['format']}; this version reads format {FORMAT}.")
+    cpath = os.path.join(path, "config.toml")
+    if not os.path.isfile(cpath):
+        raise RunError(f"run {path!r} has no config.toml.")
+    with open(cpath, encoding="utf-8") as fh:
+        config = parse_config(fh.read(), path, f"run config {cpath!r}")
+    matrix = load_graph_npz(os.path.join(path, "graph.npz"))
+    op = shift_operator(matrix, name=f"run graph in {path!r}")
+    op = ShiftOperator(op.matrix, manifest.get("graph", {}).get("kind", "as-is"))
+    if op.fingerprint() != manifest.get("graph", {}).get("fingerprint"):
+        raise RunError(f"run graph in {path!r} does not match the fingerprint in its manifest.")
+    test = load_npz(os.path.join(path, "test.npz"), "run test data")
+    if "x" not in test or "y" not in test:
+        raise RunError(f"run test data in {path!r} lacks x or y.")
+    iv = manifest.get("spectral_interval")
+    b = manifest.get("basis", {})
+    basis = Basis("chebyshev", tuple(b["interval"])) if b.get("kind") == "chebyshev" else Basis()
+    m = config["model"]
+    spec = ModelSpec(tuple([int(test["x"].shape[2])] + list(m["features"])), taps=m["taps"], basis=basis,
+                     nonlinearity=m["nonlinearity"], bias=m["bias"], readout=m["readout"],
+                     outputs=int(manifest.get("classes", 1)))
+    del iv
+    ppath = os.path.join(path, "params.npz")
+    if not os.path.isfile(ppath):
+        raise RunError(f"run {path!r} has no params.npz; it did not finish (resume it with --resume).")
+    params = arrays_to_params(load_npz(ppath, "run parameters"), init_params(spec, 0), f"parameters in {path!r}")
+    spath = os.path.join(path, "summary.json")
+    summary = read_json(spath, "run summary") if os.path.exists(spath) else None
+    return Run(path, config, manifest, summary, op, spec, params, test["x"], test["y"])
