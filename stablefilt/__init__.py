@@ -37,9 +37,28 @@ from ._graph import reorder as reorder
 from ._graph import shift_operator as shift_operator
 from ._interval import SpectralInterval as SpectralInterval
 from ._interval import spectral_interval as spectral_interval
+from ._config import Config as Config
+from ._config import load_config as load_config
+from ._config import parse_config as parse_config
+from ._model import ModelSpec as ModelSpec
+from ._model import forward as forward
+from ._model import forward_np as forward_np
+from ._model import init_params as init_params
+from ._modelcert import ModelCertificate as ModelCertificate
+from ._modelcert import certify_inputs as certify_inputs
+from ._modelcert import certify_model as certify_model
+from ._penalty import find_taps as find_taps
+from ._penalty import model_penalty as model_penalty
+from ._penalty import penalty as penalty
+from ._penalty import stability_penalty as stability_penalty
+from ._search import SearchResult as SearchResult
+from ._search import worst_perturbation as worst_perturbation
 from ._sparse import JaxShift as JaxShift
 from ._sparse import apply_filter as apply_filter
 from ._sparse import jax_operator as jax_operator
 from ._sparse import shift_product as shift_product
+
+from ._train import open_run as open_run
+from ._train import train as train
 
 __version__ = "0.1.0"
