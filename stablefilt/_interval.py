@@ -74,10 +74,15 @@ class SpectralInterval:
 
 
 def gershgorin(m: sp.csr_array) -> tuple[float, float]:
-    """Row-sum bounds ``min_i (S_ii - r_i)`` and ``max_i (S_ii + r_i)``."""
+    """Row-sum bounds ``min_i (S_ii - r_i)`` and ``max_i (S_ii + r_i)``,
+    widened outward by ``PAD`` times the largest absolute row sum: the sums
+    are rounded in float64 and may land inside the true bound, which a
+    regular graph attains with an eigenvalue."""
     d = m.diagonal()
-    r = np.asarray(abs(m).sum(axis=1)).ravel() - np.abs(d)
-    return float(np.min(d - r)), float(np.max(d + r))
+    rows = np.asarray(abs(m).sum(axis=1)).ravel()
+    r = rows - np.abs(d)
+    pad = PAD * float(rows.max()) if rows.size else 0.0
+    return float(np.min(d - r)) - pad, float(np.max(d + r)) + pad
 
 
 def _pad(x: float, scale: float) -> float:
@@ -117,6 +122,8 @@ def count_above(m: sp.csr_array, sigma: float) -> int | None:
 def _lanczos_end(m: sp.csr_array, which: str, scale: float) -> float | None:
     """A proved end (upper for ``'LA'``, lower for ``'SA'``), or None."""
     n = m.shape[0]
+    if n < 2:  # ARPACK needs k < N; scipy would hand a 1 x 1 sparse matrix to a dense solver and fail
+        return None
     try:
         vals, vecs = spla.eigsh(m, k=1, which=which, tol=1e-6, maxiter=max(1000, 20 * n),
                                 v0=np.ones(n) / np.sqrt(n) + np.linspace(0, 1e-3, n))
@@ -163,7 +170,7 @@ def spectral_interval(op: ShiftOperator, *, exact_limit: int = 2000) -> Spectral
         hi = float(lam[-1]) + _pad(lam[-1], s)
         # Never looser than what is known without computing.
         lo, hi = max(lo, g_lo), min(hi, g_hi)
-        return SpectralInterval(lo, hi, "exact", "exact", lam)
+        return SpectralInterval(float(lo), float(hi), "exact", "exact", lam)
     known = {
         "normalized-laplacian": (0.0, 2.0),
         "scaled-adjacency": (-1.0, 1.0),
