@@ -115,13 +115,15 @@ def init_params(spec: ModelSpec, seed: int | jax.Array) -> dict:
 
 def hidden(params: dict, op: JaxShift, x, spec: ModelSpec):
     """Node features after the last layer, ``(B, N, F_L)`` for ``x`` of shape
-    ``(B, N, F_0)``. The batch is folded into the feature axis of the sparse
+    ``(B, N, F_0)``. ``op`` is a :class:`JaxShift` or any function
+    ``v -> S v`` on ``(N, M)`` arrays (a perturbed operator, say). The batch is folded into the feature axis of the sparse
     products (vmap would fall back to a slow kernel)."""
     z = jnp.swapaxes(jnp.asarray(x), 0, 1)  # (N, B, F)
     n = z.shape[0]
+    prod = op if (callable(op) and not isinstance(op, JaxShift)) else (lambda v: shift_product(op, v))
 
     def mv(v):
-        return shift_product(op, v.reshape(n, -1)).reshape(v.shape)
+        return prod(v.reshape(n, -1)).reshape(v.shape)
 
     last = spec.depth - 1
     for i, layer in enumerate(params["layers"]):

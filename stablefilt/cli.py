@@ -231,6 +231,76 @@ def cmd_compare(args) -> int:
     return 0
 
 
+def cmd_distance(args) -> int:
+    from ._distance import distance
+    from ._io import load_graph
+
+    a = load_graph(args.graph_a, args.shift)
+    b = load_graph(args.graph_b, args.shift)
+    d = distance(a, b, align_nodes=args.align)
+    out = d.as_dict()
+    out.update({"nodes": a.nodes, "graph_a": args.graph_a, "graph_b": args.graph_b})
+    if args.json:
+        json.dump(out, sys.stdout)
+        sys.stdout.write("\n")
+        return 0
+    print(f"{args.graph_a} -> {args.graph_b}: {a.nodes} nodes" + (", nodes aligned by quadratic assignment" if args.align else ""))
+    bound = " (an upper bound)" if out["upper_bound"] else ""
+    print(f"  relative distance ||E||_2: {_fmt(d.relative)}{bound}")
+    print(f"  residual ||S E + E S - (S_hat - S)||_2: {_fmt(d.residual)} -> "
+          + ("expressible as a relative perturbation" if d.expressible else
+             "NOT expressible as a relative perturbation; the relative distance covers only part of the change"))
+    if d.singular_pairs:
+        print(f"  {d.singular_pairs} eigenvalue pairs with lam_i + lam_j = 0: E is not determined there (set to 0)")
+    print(f"  eigenvector misalignment delta: {_fmt(d.delta)}")
+    print(f"  additive distance ||S_hat - S||_2: {_fmt(d.additive)}")
+    return 0
+
+
+def cmd_stress(args) -> int:
+    from ._stress import KINDS, stress
+    from ._train import open_run
+
+    kinds = [k.strip() for k in args.kinds.split(",") if k.strip()]
+    bad = [k for k in kinds if k not in KINDS]
+    if bad or not kinds:
+        raise UsageError(f"--kinds takes a comma-separated list of {', '.join(KINDS)}; got {args.kinds!r}")
+    if args.samples < 1:
+        raise UsageError(f"--samples must be at least 1; got {args.samples}")
+    run = open_run(args.run)
+    eps = _eps_list(args.eps) or [float(e) for e in run.config["certify"]["eps"]]
+    if any(e <= 0 for e in eps):
+        raise UsageError("--eps must be > 0 for a stress test")
+    show = None if args.json else (lambda m: print(m, flush=True))
+    rows = stress(run, eps, kinds=kinds, samples=args.samples, attack_signals=2 if args.attack else 0, progress=show)
+    violations = sum(r.violations for r in rows)
+    if args.json:
+        import dataclasses
+
+        json.dump({"run": args.run, "nodes": run.op.nodes, "rho": run.manifest.get("rho"),
+                   "rows": [dataclasses.asdict(r) for r in rows], "violations": violations}, sys.stdout)
+        sys.stdout.write("\n")
+    else:
+        m = "acc" if run.manifest.get("task", "classify") == "classify" else "rmse"
+        table = [[_fmt(r.eps), r.kind, f"{r.covered}/{r.samples}", _fmt(r.certified), _fmt(r.published),
+                  _fmt(r.mean_change), _fmt(r.max_change), _fmt(r.ratio),
+                  "-" if r.kind == "attack" else f"{r.metric_perturbed:.4f}", str(r.violations)] for r in rows]
+        print(_table(table, ["eps", "kind", "covered", "certified", "published", "mean change", "max change",
+                             "cert/max", f"test {m}", "violations"]))
+        print(f"clean test {m}: {rows[0].metric_clean:.4f}; certified bounds hold for inputs with "
+              f"||x||_F <= {run.manifest.get('rho'):.4g}")
+        for r in rows:
+            if r.kind == "attack":
+                print(f"eps {r.eps:g}: attack {r.attack_change:.4g} <= true worst case <= {r.attack_certified:.4g} "
+                      f"(input-specific; ratio {r.attack_ratio:.3g}); free input {r.attack_free_change:.4g} <= "
+                      f"{r.certified:.4g} (ratio {r.attack_free_ratio:.3g})")
+    if violations:
+        print(f"stablefilt stress: SOUNDNESS FAILURE: {violations} measured changes exceed their certificate.",
+              file=sys.stderr)
+        return 3
+    return 0
+
+
 def cmd_demo(args) -> int:
     from .demo import run_demo
 
@@ -268,6 +338,21 @@ def build_parser() -> argparse.ArgumentParser:
     m.add_argument("--json", action="store_true")
     m.add_argument("--csv", help="also write the table to this new CSV file")
     m.set_defaults(func=cmd_compare)
+    g = sub.add_parser("distance", help="relative distance between two graphs")
+    g.add_argument("graph_a")
+    g.add_argument("graph_b")
+    g.add_argument("--align", action="store_true", help="align node order first (the result is an upper bound)")
+    g.add_argument("--shift", choices=KINDS, default="as-is")
+    g.add_argument("--json", action="store_true")
+    g.set_defaults(func=cmd_distance)
+    st = sub.add_parser("stress", help="hold a run's certificates against perturbed graphs and attacks")
+    st.add_argument("run")
+    st.add_argument("--eps", action="append")
+    st.add_argument("--samples", type=int, default=5)
+    st.add_argument("--attack", action="store_true", help="also search for the worst perturbation")
+    st.add_argument("--kinds", default="relative,diagonal,scaling,edges")
+    st.add_argument("--json", action="store_true")
+    st.set_defaults(func=cmd_stress)
     d = sub.add_parser("demo", help="train the orchard demo with and without the penalty and compare")
     d.add_argument("--out", help="folder for the two runs (default runs/demo-<time>)")
     d.set_defaults(func=cmd_demo)

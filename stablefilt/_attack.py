@@ -1,0 +1,176 @@
+"""Adversarial search for the relative perturbation that moves a trained
+model's output the most.
+
+Projected gradient ascent in JAX over ``E`` in the ball ``||E||_2 <= eps``
+(projection: clip the eigenvalues of ``E``), dense up to a few thousand nodes;
+over diagonal ``E = diag(e)``, ``|e_i| <= eps`` (projection: clip entries),
+matrix-free, beyond. Optionally the input moves too, on the sphere
+``||x||_F = rho``. Restarts from scaling, the worst eigenvector pair of the
+first layer's kernel, and random points. Every figure returned is measured in
+float64 on an actually perturbed operator, so it brackets the true worst case
+from below.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from ._graph import ShiftOperator
+from ._model import ModelSpec, forward, forward_np
+from ._perturb import apply_relative
+from ._sparse import JaxShift, jax_operator, shift_product
+
+#: Largest graph attacked with a dense ``E``.
+DENSE_ATTACK_LIMIT = 2000
+
+
+@dataclasses.dataclass(frozen=True)
+class AttackResult:
+    """The strongest perturbation found.
+
+    Attributes:
+      change: measured ``||Phi(S_hat) x - Phi(S) x||_F`` (float64).
+      e: the perturbation (dense ``(N, N)`` or diagonal ``(N,)``).
+      x: the input it was measured on ``(N, F)``.
+      mode: ``dense`` or ``diagonal``; ``free_input`` whether ``x`` moved.
+      start: the restart that won.
+      history: objective per iteration of the winning restart (float32).
+    """
+
+    change: float
+    e: np.ndarray
+    x: np.ndarray
+    mode: str
+    free_input: bool
+    start: str
+    history: tuple
+
+
+def _project_dense(e, eps):
+    e = 0.5 * (e + e.T)
+    w, q = jnp.linalg.eigh(e)
+    return (q * jnp.clip(w, -eps, eps)) @ q.T
+
+
+def measure(params, spec: ModelSpec, op: ShiftOperator, e: np.ndarray, x: np.ndarray) -> float:
+    """``||Phi(S + E S + S E) x - Phi(S) x||_F`` in float64 (``x``: ``(N, F)``)."""
+    s = op.matrix
+    e = np.asarray(e, dtype=np.float64)
+
+    class _Hat:
+        shape = s.shape
+
+        def __matmul__(self, v):
+            return apply_relative(s, e, v)
+
+    xb = np.asarray(x, dtype=np.float64)[None]
+    y0 = forward_np(params, s, xb, spec)
+    y1 = forward_np(params, _Hat(), xb, spec)
+    return float(np.linalg.norm(y1 - y0))
+
+
+@functools.partial(jax.jit, static_argnames=("spec", "dense"))
+def _objective_grad(params, sop: JaxShift, e, x, y0, spec: ModelSpec, dense: bool):
+    def obj(e, x):
+        if dense:
+            def mv(v):
+                sv = shift_product(sop, v)
+                return sv + e @ sv + shift_product(sop, e @ v)
+        else:
+            def mv(v):
+                sv = shift_product(sop, v)
+                return sv + e[:, None] * sv + shift_product(sop, e[:, None] * v)
+        y = forward(params, mv, x[None], spec)
+        return jnp.sum((y - y0) ** 2)
+
+    return jax.value_and_grad(obj, argnums=(0, 1))(e, x)
+
+
+def _starts(op: ShiftOperator, params, spec: ModelSpec, eps: float, dense: bool, restarts: int, rng):
+    n = op.nodes
+    out = [("scaling+", np.full(n, eps)), ("scaling-", np.full(n, -eps))]
+    if dense and n <= 600:
+        from ._search import _divided
+
+        w, v = np.linalg.eigh(op.dense())
+        taps = np.asarray(params["layers"][0]["taps"], dtype=np.float64)
+        cols = taps.reshape(taps.shape[0], -1)
+        g = np.sqrt(np.sum(((w[:, None] + w[None, :]) * _divided(cols, w, spec.basis)) ** 2, axis=0))
+        for idx in np.argsort(g, axis=None)[::-1][:2]:
+            i, j = divmod(int(idx), n)
+            e = np.outer(v[:, i], v[:, j])
+            out.append((f"pair {i},{j}", eps * (e + e.T) / max(np.linalg.norm(e + e.T, 2), 1e-300)))
+    while len(out) < restarts:
+        if dense:
+            e = rng.standard_normal((n, n))
+            e = 0.5 * (e + e.T)
+            out.append(("random", eps * e / np.max(np.abs(np.linalg.eigvalsh(e)))))
+        else:
+            out.append(("random", rng.uniform(-eps, eps, n)))
+    return out
+
+
+def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: str = "auto", free_input: bool = False,
+           rho: float | None = None, restarts: int = 5, iters: int = 40, seed: int = 0) -> AttackResult:
+    """Strongest relative perturbation found for one input ``x`` (``(N, F)``).
+
+    Args:
+      params, spec: the model.
+      op: the unperturbed shift operator.
+      x: the input signal; with ``free_input`` the starting point, rescaled
+        to ``||x||_F = rho``.
+      eps: radius of the ball.
+      mode: ``dense``, ``diagonal``, or ``auto`` (dense up to
+        ``DENSE_ATTACK_LIMIT`` nodes).
+    """
+    n = op.nodes
+    dense = mode == "dense" or (mode == "auto" and n <= DENSE_ATTACK_LIMIT)
+    rng = np.random.default_rng(seed)
+    sop = jax_operator(op)
+    x0 = jnp.asarray(x, jnp.float32)
+    if free_input:
+        rho = float(rho if rho is not None else np.linalg.norm(x))
+        x0 = x0 * (rho / jnp.maximum(jnp.linalg.norm(x0), 1e-30))
+    y0 = forward(params, sop, x0[None], spec)
+    best = None
+    for name, e0 in _starts(op, params, spec, eps, dense, restarts, rng):
+        e = jnp.asarray(np.diag(e0) if (dense and e0.ndim == 1) else e0, jnp.float32)
+        xc = x0
+        hist = []
+        step = 0.5 * eps
+        for it in range(iters):
+            y_ref = forward(params, sop, xc[None], spec) if free_input else y0
+            val, (ge, gx) = _objective_grad(params, sop, e, xc, y_ref, spec, dense)
+            hist.append(float(val))
+            gn = jnp.linalg.norm(ge)
+            if not np.isfinite(float(gn)) or float(gn) == 0.0:
+                break
+            lr = step / (1 + 0.1 * it)
+            if dense:
+                e = _project_dense(e + lr * ge / gn * np.sqrt(n), eps)
+            else:
+                e = jnp.clip(e + lr * ge / gn * np.sqrt(n), -eps, eps)
+            if free_input:
+                gxn = jnp.linalg.norm(gx)
+                if float(gxn) > 0:
+                    xc = xc + 0.2 * rho * gx / gxn
+                    xc = xc * (rho / jnp.linalg.norm(xc))
+        e_np = np.asarray(e, dtype=np.float64)
+        if dense:
+            e_np = 0.5 * (e_np + e_np.T)
+            w, q = np.linalg.eigh(e_np)
+            e_np = (q * np.clip(w, -eps, eps)) @ q.T
+        else:
+            e_np = np.clip(e_np, -eps, eps)
+        x_np = np.asarray(xc, dtype=np.float64)
+        if free_input:
+            x_np = x_np * (rho / np.linalg.norm(x_np))
+        val = measure(params, spec, op, e_np, x_np)
+        if best is None or val > best.change:
+            best = AttackResult(val, e_np, x_np, "dense" if dense else "diagonal", free_input, name, tuple(hist))
+    return best

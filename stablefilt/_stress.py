@@ -1,0 +1,161 @@
+"""Stress tests of a trained run: hold its certificates against real and
+adversarial changes of the graph.
+
+For each eps and kind of perturbation, samples are drawn, the model is run in
+float64 on the perturbed graph, and every measured output change is compared
+with the certificates: the operator-level one (inputs with ``||x||_F <= rho``)
+and the input-specific one for that signal. Edge changes are not relative
+perturbations by construction: their relative distance is measured (Sylvester
+equation) and the certificate at that distance applies, when the change is
+expressible at all.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from ._attack import DENSE_ATTACK_LIMIT, attack
+from ._distance import DISTANCE_LIMIT, sylvester_relative
+from ._interval import spectral_interval
+from ._model import forward_np
+from ._modelcert import certify_inputs, certify_model
+from ._perturb import DENSE_LIMIT, diagonal, jitter, relabel, relative, scaling
+from ._train import Run
+
+KINDS = ("relative", "diagonal", "scaling", "edges", "relabel")
+
+
+@dataclasses.dataclass
+class StressRow:
+    eps: float
+    kind: str
+    certified: float
+    published: float
+    input_certified_max: float
+    samples: int
+    covered: int
+    mean_change: float
+    max_change: float
+    ratio: float | None
+    metric_perturbed: float
+    metric_clean: float
+    violations: int
+    distance_max: float | None = None
+    attack_change: float | None = None
+    attack_certified: float | None = None
+    attack_ratio: float | None = None
+    attack_free_change: float | None = None
+    attack_free_ratio: float | None = None
+    attack_mode: str | None = None
+
+
+def _metric(out, y, task):
+    if task == "classify":
+        return float(np.mean(np.argmax(out, axis=-1) == y))
+    return float(np.sqrt(np.mean((out[..., 0] - y) ** 2)))
+
+
+def _draw(run: Run, kind: str, eps: float, seed: int):
+    """``(S_hat ShiftOperator, relative distance or None, perm or None)``."""
+    op = run.op
+    if kind == "relative":
+        p = relative(op, eps, seed) if op.nodes <= DENSE_LIMIT else diagonal(op, eps, seed)
+        return p.op, eps, None
+    if kind == "diagonal":
+        return diagonal(op, eps, seed).op, eps, None
+    if kind == "scaling":
+        return scaling(op, eps, seed).op, eps, None
+    if kind == "relabel":
+        p = relabel(op, seed)
+        return p.op, 0.0, p.perm
+    if kind == "edges":
+        p = jitter(op, 2 * eps, seed)
+        if op.nodes > DISTANCE_LIMIT:
+            return p.op, None, None
+        e, resid, _, _ = sylvester_relative(op.dense(), p.op.dense())
+        add = np.linalg.norm(p.op.dense() - op.dense(), 2)
+        if resid > 1e-8 * max(add, 1e-300):
+            return p.op, None, None
+        return p.op, float(np.linalg.norm(e, 2)), None
+    raise ValueError(kind)
+
+
+def stress(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_signals: int = 0, seed: int = 0,
+           attack_iters: int = 30, progress=None) -> list[StressRow]:
+    """Stress a run; see the module docstring. ``attack_signals > 0`` also
+    attacks that many test signals (and one free input) per eps."""
+    iv = spectral_interval(run.op)
+    lam = iv.eigenvalues
+    rho = float(run.manifest.get("rho"))
+    x = np.asarray(run.test_x, dtype=np.float64)
+    y = run.test_y
+    task = run.manifest.get("task", "classify")
+    s = run.op.matrix
+    y0 = forward_np(run.params, s, x, run.spec)
+    clean = _metric(y0, y, task)
+    rows = []
+    for eps in eps_list:
+        cert = certify_model(run.params, run.spec, iv, run.op.nodes, [eps], rho=rho, eigenvalues=lam)
+        c_op = cert.certified[f"{eps:g}"]
+        c_in_at = {}
+
+        def input_bound(e_used):
+            key = round(float(e_used), 15)
+            if key not in c_in_at:
+                c_in_at[key] = certify_inputs(run.params, run.spec, s, iv, x, e_used, lam)
+            return c_in_at[key]
+
+        c_in = input_bound(eps)
+        for kind in kinds:
+            changes, metrics, viol, covered, dists = [], [], 0, 0, []
+            for k in range(samples):
+                op_hat, dist, perm = _draw(run, kind, eps, seed + 1000 * k + 17)
+                xin = x if perm is None else x[:, perm, :]
+                out = forward_np(run.params, op_hat.matrix, xin, run.spec)
+                if perm is not None and run.spec.readout in ("node", "none"):
+                    inv = np.argsort(perm)
+                    out = out[:, inv]
+                diff = np.sqrt(np.sum((out - y0).reshape(len(x), -1) ** 2, axis=1))
+                metrics.append(_metric(out, y, task))
+                changes.append(diff)
+                if dist is None:
+                    continue
+                covered += 1
+                dists.append(dist)
+                per = input_bound(dist)
+                opb = certify_model(run.params, run.spec, iv, run.op.nodes, [dist], rho=rho,
+                                    eigenvalues=lam).certified[f"{dist:g}"] if dist != eps else c_op
+                viol += int(np.sum(diff > per)) + int(np.sum(diff > opb))
+            ch = np.concatenate(changes)
+            row = StressRow(eps, kind, c_op, cert.published[f"{eps:g}"], float(c_in.max()), samples, covered,
+                            float(ch.mean()), float(ch.max()),
+                            (c_op / float(ch.max())) if ch.max() > 0 else None,
+                            float(np.mean(metrics)), clean, viol, max(dists) if dists else None)
+            rows.append(row)
+            if progress:
+                progress(f"eps {eps:g} {kind}: max change {row.max_change:.4g}, certified {c_op:.4g}, "
+                         f"violations {viol}")
+        if attack_signals:
+            n = run.op.nodes
+            mode = "dense" if n <= DENSE_ATTACK_LIMIT else "diagonal"
+            best, best_c = None, None
+            order = np.argsort(-c_in)[:attack_signals]
+            for i in order:
+                r = attack(run.params, run.spec, run.op, x[i], eps, mode=mode, iters=attack_iters, seed=seed)
+                if best is None or r.change / c_in[i] > best.change / best_c:
+                    best, best_c = r, float(c_in[i])
+            free = attack(run.params, run.spec, run.op, x[order[0]], eps, mode=mode, free_input=True, rho=rho,
+                          iters=attack_iters, seed=seed)
+            viol = int(best.change > best_c) + int(free.change > c_op)
+            row = StressRow(eps, "attack", c_op, cert.published[f"{eps:g}"], float(c_in.max()), 1, 1,
+                            best.change, max(best.change, free.change), c_op / max(best.change, free.change),
+                            float("nan"), clean, viol, eps, best.change, best_c, best_c / best.change,
+                            free.change, c_op / free.change, mode)
+            rows.append(row)
+            if progress:
+                progress(f"eps {eps:g} attack ({mode}): {best.change:.4g} <= true worst case <= {best_c:.4g} "
+                         f"(input-specific, ratio {best_c / best.change:.3g}); free input {free.change:.4g} <= "
+                         f"{c_op:.4g} (ratio {c_op / free.change:.3g})")
+    return rows
