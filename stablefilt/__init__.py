@@ -12,6 +12,9 @@ from ._certify import filter_bounds as filter_bounds
 from ._certify import filter_constants as filter_constants
 from ._certify import lower_change as lower_change
 from ._certify import remainder as remainder
+from ._config import Config as Config
+from ._config import load_config as load_config
+from ._config import parse_config as parse_config
 from ._constants import bank_sup_norm as bank_sup_norm
 from ._constants import integral_lipschitz as integral_lipschitz
 from ._constants import kernel_bound as kernel_bound
@@ -37,9 +40,6 @@ from ._graph import reorder as reorder
 from ._graph import shift_operator as shift_operator
 from ._interval import SpectralInterval as SpectralInterval
 from ._interval import spectral_interval as spectral_interval
-from ._config import Config as Config
-from ._config import load_config as load_config
-from ._config import parse_config as parse_config
 from ._model import ModelSpec as ModelSpec
 from ._model import forward as forward
 from ._model import forward_np as forward_np
@@ -57,7 +57,6 @@ from ._sparse import JaxShift as JaxShift
 from ._sparse import apply_filter as apply_filter
 from ._sparse import jax_operator as jax_operator
 from ._sparse import shift_product as shift_product
-
 from ._train import open_run as open_run
 from ._train import train as train
 

@@ -96,17 +96,18 @@ def stress(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_sign
     y0 = forward_np(run.params, s, x, run.spec)
     clean = _metric(y0, y, task)
     rows = []
+    cache = {}
+
+    def input_bound(e_used):
+        """Input-specific bounds of the test signals at ``e_used`` (cached)."""
+        key = round(float(e_used), 15)
+        if key not in cache:
+            cache[key] = certify_inputs(run.params, run.spec, s, iv, x, e_used, lam)
+        return cache[key]
+
     for eps in eps_list:
         cert = certify_model(run.params, run.spec, iv, run.op.nodes, [eps], rho=rho, eigenvalues=lam)
         c_op = cert.certified[f"{eps:g}"]
-        c_in_at = {}
-
-        def input_bound(e_used):
-            key = round(float(e_used), 15)
-            if key not in c_in_at:
-                c_in_at[key] = certify_inputs(run.params, run.spec, s, iv, x, e_used, lam)
-            return c_in_at[key]
-
         c_in = input_bound(eps)
         for kind in kinds:
             changes, metrics, viol, covered, dists = [], [], 0, 0, []
