@@ -27,6 +27,7 @@ from ._errors import FilterError as FilterError
 from ._errors import GraphError as GraphError
 from ._errors import RunError as RunError
 from ._errors import StablefiltError as StablefiltError
+from ._errors import TrainingDiverged as TrainingDiverged
 from ._filters import Basis as Basis
 from ._filters import basis_values as basis_values
 from ._filters import frequency_response as frequency_response

@@ -20,3 +20,8 @@ class ConfigError(StablefiltError):
 
 class RunError(StablefiltError):
     """A run directory is missing, incomplete or unreadable."""
+
+
+class TrainingDiverged(RunError):
+    """Training stopped on a non-finite loss or exploding parameters; the
+    last good checkpoint is kept. The command line exits with status 1."""

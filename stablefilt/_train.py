@@ -5,8 +5,11 @@ from __future__ import annotations
 
 import dataclasses
 import datetime
+import functools
+import json
 import os
 import platform
+import shutil
 import sys
 import time
 
@@ -18,7 +21,7 @@ import scipy
 
 from ._config import Config
 from ._data import Dataset, build_dataset
-from ._errors import RunError
+from ._errors import RunError, TrainingDiverged
 from ._filters import Basis
 from ._graph import reorder
 from ._interval import SpectralInterval, spectral_interval
@@ -68,9 +71,11 @@ def metric(out, y, task: str):
     return jnp.sqrt(jnp.mean((out[..., 0] - y) ** 2))
 
 
-def make_penalty_fn(config: Config, spec: ModelSpec, interval):
+def make_penalty_fn(config, spec: ModelSpec, interval):
+    """``(penalty(params), active)`` from the config's ``[penalty]``;
+    ``interval`` is ``(a, b)``."""
     p = config["penalty"]
-    iv = (float(interval.lower), float(interval.upper))
+    iv = (float(interval[0]), float(interval[1]))
     weight = p["weight"]
     if p["mode"] == "model":
         w = float(weight if not isinstance(weight, list) else max(weight))
@@ -86,7 +91,7 @@ def make_penalty_fn(config: Config, spec: ModelSpec, interval):
     return fn, active
 
 
-def make_optimizer(config: Config, steps_per_epoch: int):
+def make_optimizer(config, steps_per_epoch: int):
     t = config["train"]
     lr = t["learning_rate"]
     if t["schedule"] == "cosine":
@@ -145,9 +150,23 @@ class Trainer:
                              eigenvalues=lam)
 
 
-def build_step(trainer: Trainer, tx):
-    spec, task = trainer.spec, trainer.data.task
-    pen_fn, active = make_penalty_fn(trainer.config, spec, trainer.interval)
+def build_step(trainer: Trainer, steps: int):
+    """``(tx, step, evaluate)`` for a trainer. Cached on everything they
+    depend on, so a process training many runs of the same shapes compiles
+    each step once (see the soak test)."""
+    c = trainer.config
+    key = (trainer.spec, trainer.data.task, json.dumps(c["penalty"], sort_keys=True),
+           json.dumps(c["train"], sort_keys=True), int(steps),
+           (float(trainer.interval.lower), float(trainer.interval.upper)))
+    return _build_step_cached(key)
+
+
+@functools.lru_cache(maxsize=16)
+def _build_step_cached(key):
+    spec, task, pen_json, train_json, steps, iv = key
+    cfg = {"penalty": json.loads(pen_json), "train": json.loads(train_json)}
+    tx = make_optimizer(cfg, steps)
+    pen_fn, active = make_penalty_fn(cfg, spec, iv)
 
     def loss_fn(params, op, xb, yb):
         out = forward(params, op, xb, spec)
@@ -167,7 +186,7 @@ def build_step(trainer: Trainer, tx):
         out = forward(params, op, xb, spec)
         return task_loss(out, yb, task), metric(out, yb, task)
 
-    return step, evaluate
+    return tx, step, evaluate
 
 
 def _versions() -> dict:
@@ -184,8 +203,8 @@ def _now() -> str:
     return datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")
 
 
-def prepare_out_dir(out: str, resume: bool, force: bool) -> None:
-    """Check the output directory before any training work."""
+def check_out_dir(out: str, resume: bool, force: bool) -> None:
+    """Refuse an output path that cannot hold this run; changes nothing."""
     if os.path.exists(out) and not os.path.isdir(out):
         raise RunError(f"output {out!r} is a file; expected a directory for the run.")
     if resume:
@@ -195,8 +214,17 @@ def prepare_out_dir(out: str, resume: bool, force: bool) -> None:
     if os.path.isdir(out) and os.listdir(out) and not force:
         raise RunError(f"run directory {out!r} already exists and is not empty; pass --force to write into it "
                        "or --resume to continue it.")
+
+
+def prepare_out_dir(out: str, need_bytes: int) -> None:
+    """Create the run directory and prove it takes writes of the run's size,
+    before any training work."""
     try:
         os.makedirs(out, exist_ok=True)
+        free = shutil.disk_usage(out).free
+        if free < need_bytes:
+            raise RunError(f"run directory {out!r} has {free / 2**20:.1f} MiB free; the run needs about "
+                           f"{need_bytes / 2**20:.1f} MiB.")
         probe = os.path.join(out, ".write-test")
         with open(probe, "wb") as fh:
             fh.write(b"x" * 4096)
@@ -205,6 +233,32 @@ def prepare_out_dir(out: str, resume: bool, force: bool) -> None:
         os.unlink(probe)
     except OSError as exc:
         raise RunError(f"cannot write to run directory {out!r} ({exc.strerror or type(exc).__name__}).") from None
+
+
+def _run_bytes(trainer: Trainer, params) -> int:
+    """Rough upper estimate of a run's files: three copies of the params and
+    Adam's two moments in the checkpoint, the graph, the test data, logs."""
+    p = sum(np.asarray(a).nbytes for a in jax.tree_util.tree_leaves(params))
+    m = trainer.data.op.matrix
+    g = m.data.nbytes + m.indices.nbytes + m.indptr.nbytes
+    t = trainer.data.x[trainer.data.test].nbytes + trainer.data.y[trainer.data.test].nbytes
+    return 2 * (6 * p + g + t) + (1 << 20)
+
+
+#: Taps or weights beyond this size count as exploding.
+EXPLODED = 1e6
+
+
+def _diverged(loss: float, params) -> str | None:
+    """Why training must stop, or None."""
+    if not np.isfinite(loss):
+        return f"the loss became {loss}"
+    biggest = max(float(np.max(np.abs(np.asarray(a)))) for a in jax.tree_util.tree_leaves(params))
+    if not np.isfinite(biggest):
+        return "a parameter became NaN or infinite"
+    if biggest > EXPLODED:
+        return f"the parameters exploded (largest |value| {biggest:.3g} > {EXPLODED:g})"
+    return None
 
 
 def _fmt_metric(task: str) -> str:
@@ -217,14 +271,14 @@ def train(config: Config, out: str, *, epochs: int | None = None, seed: int | No
 
     Returns the summary dictionary (also written to ``summary.json``).
     """
-    prepare_out_dir(out, resume, force)
+    check_out_dir(out, resume, force)
     trainer = Trainer.from_config(config, seed)
     t = config["train"]
     n_epochs = int(epochs if epochs is not None else t["epochs"])
     steps = len(trainer.batches(0))
-    tx = make_optimizer(config, steps)
-    step, evaluate = build_step(trainer, tx)
+    tx, step, evaluate = build_step(trainer, steps)
     params = init_params(trainer.spec, trainer.seed)
+    prepare_out_dir(out, _run_bytes(trainer, params))
     opt_state = tx.init(params)
     best = params
     best_val, bad, start_epoch = None, 0, 1
@@ -279,10 +333,13 @@ def train(config: Config, out: str, *, epochs: int | None = None, seed: int | No
             tls.append(tl)
             pens.append(pen)
         loss, tl, pen = (float(np.mean(jax.device_get(v))) for v in (losses, tls, pens))
-        if not np.isfinite(loss) or not all(np.all(np.isfinite(np.asarray(a))) for a in jax.tree_util.tree_leaves(params)):
-            append_log(paths["log"], {"epoch": epoch, "stopped": "non-finite loss or parameters", "loss": None})
-            raise RunError(f"training diverged at epoch {epoch} (loss {loss}); the last good checkpoint is kept "
-                           f"in {out!r}. Lower the learning rate or raise clipping.")
+        why = _diverged(loss, params)
+        if why:
+            append_log(paths["log"], {"epoch": epoch, "stopped": why, "loss": loss if np.isfinite(loss) else None})
+            kept = (f"the last good checkpoint (epoch {epoch - 1}) is kept in {out!r}" if epoch > 1
+                    else f"no epoch completed, so {out!r} holds no checkpoint")
+            raise TrainingDiverged(f"training stopped at epoch {epoch}: {why}; {kept}. "
+                                   "Lower the learning rate or clip harder.")
         _, tr_m = evaluate(params, op, x[tr], y[tr])
         va_l, va_m = evaluate(params, op, x[va], y[va])
         tr_m, va_m, va_l = float(tr_m), float(va_m), float(va_l)

@@ -13,7 +13,7 @@ import sys
 
 import numpy as np
 
-from ._errors import StablefiltError
+from ._errors import StablefiltError, TrainingDiverged
 
 
 class _Parser(argparse.ArgumentParser):
@@ -364,6 +364,9 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     try:
         return int(args.func(args) or 0)
+    except TrainingDiverged as exc:
+        print(f"stablefilt {args.command}: {str(exc).rstrip('.')}.", file=sys.stderr)
+        return 1
     except StablefiltError as exc:
         msg = str(exc).rstrip(".")
         print(f"stablefilt {args.command}: {msg}.", file=sys.stderr)
