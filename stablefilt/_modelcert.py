@@ -17,7 +17,7 @@ import dataclasses
 
 import numpy as np
 
-from ._certify import MODEL, NORM, _allow, combine, filter_bounds, filter_constants
+from ._certify import MODEL, NORM, _allow, combine, filter_bounds, filter_constants, gain_constants
 from ._filters import frequency_response
 from ._interval import SpectralInterval
 from ._model import ModelSpec, forward_np
@@ -110,12 +110,11 @@ def layer_bounds(params, spec: ModelSpec, interval: SpectralInterval, eps: float
         c = consts[i] if consts is not None else filter_constants(taps, spec.basis, (a, b), eigenvalues, pairwise=False)
         first, rem = filter_bounds(taps, spec.basis, (a, b), eps, c, eigenvalues)
         beta = first + rem
-        wide = filter_constants(taps, spec.basis, (a - w, b + w), None, pairwise=False) if w > 0 else c
-        b_hat = wide.bank_sup
+        b_hat, c0_wide = gain_constants(taps, spec.basis, (a - w, b + w)) if w > 0 else (c.bank_sup, c.lipschitz)
         if eigenvalues is not None:
             b_now = min(c.bank_sup, _bank_sup_eig(taps, spec.basis, eigenvalues))
             # ||H(mu) - H(lam_i)||_2 <= |mu - lam_i| ||C0||_F over the widened interval.
-            b_hat = min(b_hat, b_now + w * float(np.linalg.norm(np.asarray(wide.lipschitz))) * (1 + 1e-9))
+            b_hat = min(b_hat, b_now + w * float(np.linalg.norm(np.asarray(c0_wide))) * (1 + 1e-9))
         else:
             b_now = c.bank_sup
         out.append((np.asarray(beta), b_now, b_hat))
