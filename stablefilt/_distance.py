@@ -97,7 +97,10 @@ def misalignment(s: np.ndarray, e: np.ndarray, vs=None) -> float:
     signs = np.sign(np.sum(vs * um, axis=0))
     signs[signs == 0] = 1.0
     um = um * signs
-    return float((np.linalg.norm(um - vs, 2) + 1) ** 2 - 1)
+    # ||U - V||_2 <= 2 for orthogonal U, V; round-off can put the computed
+    # norm a few ulps above, which would put delta above its range [0, 8].
+    gap = min(float(np.linalg.norm(um - vs, 2)), 2.0)
+    return float((gap + 1) ** 2 - 1)
 
 
 def sylvester_relative(s: np.ndarray, s_hat: np.ndarray):
