@@ -96,7 +96,7 @@ def _bank_sup_eig(taps, basis, lam):
 
 
 def layer_bounds(params, spec: ModelSpec, interval: SpectralInterval, eps: float, eigenvalues=None,
-                 consts=None):
+                 consts=None, with_parts: bool = False):
     """Per layer: ``(beta_l, B_l, B_hat_l)``: the ``F_in x F_out`` matrix of
     per-filter change bounds, a bound on ``||H_l(S)||`` and on
     ``||H_l(S_hat)||`` (spectrum of ``S_hat`` within ``2 eps R`` of that of
@@ -117,7 +117,7 @@ def layer_bounds(params, spec: ModelSpec, interval: SpectralInterval, eps: float
             b_hat = min(b_hat, b_now + w * float(np.linalg.norm(np.asarray(c0_wide))) * (1 + 1e-9))
         else:
             b_now = c.bank_sup
-        out.append((np.asarray(beta), b_now, b_hat))
+        out.append((np.asarray(beta), b_now, b_hat) + ((np.asarray(rem),) if with_parts else ()))
     return out
 
 
@@ -178,22 +178,61 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
     return ModelCertificate(certified, published, per_unit, layers, float(rho), assumptions)
 
 
+def spectral_first_order(taps, basis, eigenvalues, eigenvectors, z, eps: float) -> np.ndarray:
+    """Input-specific first-order bounds ``(B, F_in, F_out)`` per signal and
+    filter: ``eps sqrt(max_i q(lam_i)) sqrt(sum_j q(lam_j) xt_j^2)`` with
+    ``q = phi^T |M| phi`` and ``xt = V^T x_f`` the signal's spectrum.
+
+    Derived (docs/theory.md section 8): with ``Gamma_ij = <a_i, b_j>`` and
+    ``||a_i||^2 = ||b_i||^2 = q(lam_i)``, ``(Et o Gamma) xt =
+    sum_r D(a^r) Et D(b^r) xt``, whose norm is at most
+    ``||[D(a^1) .. D(a^R)]|| ||Et|| ||[D(b^r) xt]_r||``. The smaller value over
+    the Chebyshev and monomial splits is kept.
+    """
+    from ._certify import _flat, _kernels, _psd_parts
+    from ._filters import Basis, basis_values
+
+    taps = np.asarray(taps, dtype=np.float64)
+    k, fin, fout = taps.shape
+    cols, _ = _flat(taps)
+    lam = np.asarray(eigenvalues, dtype=np.float64)
+    lo, hi = float(lam.min()), float(lam.max())
+    splits = [Basis("chebyshev", (lo, hi))] if hi > lo else []
+    splits.append(Basis())
+    zt2 = np.einsum("ni,bnf->bif", eigenvectors, z) ** 2  # (B, N, F_in)
+    best = None
+    for split, m in zip(splits, _kernels(cols, basis, splits)):
+        plus, minus = _psd_parts(m)
+        phi = basis_values(lam, k, split)
+        q = np.maximum(np.einsum("ia,fab,ib->fi", phi, plus + minus, phi, optimize=True), 0).reshape(fin, fout, -1)
+        val = np.sqrt(q.max(axis=2))[None] * np.sqrt(np.einsum("fgi,bif->bfg", q, zt2, optimize=True))
+        best = val if best is None else np.minimum(best, val)
+    return eps * best * (1 + 1e-9)
+
+
 def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterval, x, eps: float,
-                   eigenvalues=None) -> np.ndarray:
+                   eigenvalues=None, eigenvectors=None) -> np.ndarray:
     """Input-specific certificate per signal: for ``x`` of shape
     ``(B, N, F_0)``, a bound on ``||Phi(S) x_b - Phi(S_hat) x_b||_F`` for each
     ``b``, using the measured per-feature norms of the unperturbed path
-    (``||beta_l^T n_{l-1}||_2`` in place of ``||beta_l||_2 ||x_{l-1}||``)."""
+    (``||beta_l^T n_{l-1}||_2`` in place of ``||beta_l||_2 ||x_{l-1}||``) and,
+    when ``eigenvectors`` of ``S`` are given (with ``eigenvalues``), the
+    spectrum of each feature (:func:`spectral_first_order`)."""
     p = _np(params)
     n = op_matrix.shape[0]
-    lb = layer_bounds(p, spec, interval, eps, eigenvalues)
+    lb = layer_bounds(p, spec, interval, eps, eigenvalues, with_parts=True)
     rf = readout_factor(p, spec, n)
     z = np.asarray(x, dtype=np.float64)
     diff = np.zeros(z.shape[0])
     no_readout = dataclasses.replace(spec, readout="none", final_nonlinearity=True)
-    for i, (beta, b_now, b_hat) in enumerate(lb):
+    use_spec = eigenvalues is not None and eigenvectors is not None
+    for i, (beta, b_now, b_hat, rem) in enumerate(lb):
         feat = np.sqrt(np.sum(z**2, axis=1))  # (B, F_in) per-feature norms
-        contrib = np.linalg.norm(feat @ beta, axis=1)  # ||beta^T n||_2 per signal
+        per = feat[:, :, None] * beta[None]  # (B, F_in, F_out): beta_fg ||x_f||
+        if use_spec:
+            spec_first = spectral_first_order(p["layers"][i]["taps"], spec.basis, eigenvalues, eigenvectors, z, eps)
+            per = np.minimum(per, spec_first + feat[:, :, None] * rem[None])
+        contrib = np.linalg.norm(per.sum(axis=1), axis=1)  # ||sum_f beta_fg n_f||_2 over g
         diff = contrib * (1 + 1e-9) + b_hat * diff
         sub = dataclasses.replace(no_readout, features=spec.features[i:i + 2],
                                   final_nonlinearity=(i < spec.depth - 1) or spec.final_nonlinearity)

@@ -88,6 +88,9 @@ def stress(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_sign
     attacks that many test signals (and one free input) per eps."""
     iv = spectral_interval(run.op)
     lam = iv.eigenvalues
+    vecs = None
+    if lam is not None:
+        lam, vecs = np.linalg.eigh(run.op.dense())
     rho = float(run.manifest.get("rho"))
     x = np.asarray(run.test_x, dtype=np.float64)
     y = run.test_y
@@ -102,7 +105,7 @@ def stress(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_sign
         """Input-specific bounds of the test signals at ``e_used`` (cached)."""
         key = round(float(e_used), 15)
         if key not in cache:
-            cache[key] = certify_inputs(run.params, run.spec, s, iv, x, e_used, lam)
+            cache[key] = certify_inputs(run.params, run.spec, s, iv, x, e_used, lam, vecs)
         return cache[key]
 
     for eps in eps_list:

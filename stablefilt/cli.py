@@ -130,11 +130,14 @@ def certify_run(run, eps_list):
 
     iv = spectral_interval(run.op)
     lam = iv.eigenvalues
+    vecs = None
+    if lam is not None:
+        lam, vecs = np.linalg.eigh(run.op.dense())
     rho = float(run.manifest.get("rho") or np.max(np.linalg.norm(run.test_x.reshape(len(run.test_x), -1), axis=1)))
     cert = certify_model(run.params, run.spec, iv, run.op.nodes, eps_list, rho=rho, eigenvalues=lam)
     inputs = {}
     for e in eps_list:
-        per = certify_inputs(run.params, run.spec, run.op.matrix, iv, run.test_x, e, lam)
+        per = certify_inputs(run.params, run.spec, run.op.matrix, iv, run.test_x, e, lam, vecs)
         inputs[f"{e:g}"] = float(per.max())
     return cert, iv, inputs
 
