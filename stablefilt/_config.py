@@ -180,6 +180,10 @@ def parse_config(text: str, base: str = ".", name: str = "the config") -> Config
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{name} is not valid TOML ({exc}).") from None
     sections = _check(table, SCHEMA, "")
+    nm = sections["name"]
+    # The name becomes a folder (runs/<name>): keep it one plain component.
+    if nm is not None and (nm in (".", "..") or "\0" in nm or any(c in nm for c in "/\\")):
+        raise ConfigError(f"name = {nm!r} is invalid; expected a plain folder name without '/', '\\' or '..'.")
     d = sections["data"]
     if d["source"] == "files":
         for key in ("graph", "signals"):
@@ -211,6 +215,8 @@ def load_config(path: str) -> Config:
 
 def resolve_path(config: Config, rel: str, what: str) -> str:
     """``rel`` resolved against the config's directory and confined to it."""
+    if "\0" in rel:
+        raise ConfigError(f"{what} {rel!r} contains a NUL character; expected a file path.")
     base = os.path.realpath(config.base)
     full = os.path.realpath(os.path.join(base, rel))
     if os.path.commonpath([base, full]) != base:

@@ -12,6 +12,9 @@ from ._errors import ConfigError
 from ._graph import ShiftOperator, shift_operator
 from ._io import load_matrix
 
+#: Signals and targets are trained in float32.
+F32_MAX = float(np.finfo(np.float32).max)
+
 
 @dataclasses.dataclass(frozen=True)
 class Dataset:
@@ -39,13 +42,13 @@ class Dataset:
     test: np.ndarray
 
 
-def _split(count: int, d: dict, seed: int):
+def _split(count: int, d: dict, seed: int, what: str = "the data"):
     rng = np.random.default_rng(seed + 7919)
     order = rng.permutation(count)
     n_tr = int(round(d["train_fraction"] * count))
     n_va = int(round(d["val_fraction"] * count))
     if n_tr < 1 or n_va < 1 or count - n_tr - n_va < 1:
-        raise ConfigError(f"{count} signals are too few to split into train, validation and test sets.")
+        raise ConfigError(f"{what}: {count} signals are too few to split into train, validation and test sets.")
     return np.sort(order[:n_tr]), np.sort(order[n_tr:n_tr + n_va]), np.sort(order[n_tr + n_va:])
 
 
@@ -64,28 +67,43 @@ def _files(config: Config, d: dict):
     spath = resolve_path(config, d["signals"], "data.signals")
     op = shift_operator(load_matrix(gpath), d["shift"], name=f"graph file {d['graph']!r}")
     try:
-        with np.load(spath, allow_pickle=False) as z:
-            if "x" not in z.files or "y" not in z.files:
-                raise ConfigError(f"signals file {d['signals']!r} needs arrays 'x' and 'y'.")
-            x, y = np.asarray(z["x"]), np.asarray(z["y"])
+        z = np.load(spath, allow_pickle=False)
+        if not isinstance(z, np.lib.npyio.NpzFile):  # a single .npy array
+            raise ValueError("not an .npz archive")
+        with z:
+            arrays = {k: np.asarray(z[k]) for k in ("x", "y") if k in z.files}
     except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
         raise ConfigError(f"signals file {d['signals']!r} could not be read as a numpy .npz archive "
                           f"({type(exc).__name__}).") from None
     n = op.nodes
     if x.ndim == 2:
         x = x[:, :, None]
-    if x.ndim != 3 or x.shape[1] != n:
-        raise ConfigError(f"signals file {d['signals']!r}: x must have shape (S, {n}) or (S, {n}, F); got {x.shape}.")
+    if len(arrays) != 2:  # outside the try: ConfigError is a ValueError
+        raise ConfigError(f"signals file {d['signals']!r} needs arrays 'x' and 'y'.")
+    x, y = arrays["x"], arrays["y"]
+    if x.ndim != 3 or x.shape[1] != n or x.shape[0] < 1 or x.shape[2] < 1:
+        raise ConfigError(f"signals file {d['signals']!r}: x must have shape (S, {n}) or (S, {n}, F) with S, F >= 1; "
+                          f"got {x.shape}.")
     if not np.issubdtype(x.dtype, np.number) or not np.all(np.isfinite(x)):
         raise ConfigError(f"signals file {d['signals']!r}: x must be finite numbers.")
     if y.shape not in ((x.shape[0],), (x.shape[0], n)):
         raise ConfigError(f"signals file {d['signals']!r}: y must have shape ({x.shape[0]},) or "
                           f"({x.shape[0]}, {n}); got {y.shape}.")
+    if np.iscomplexobj(x) or (x.size and np.max(np.abs(x)) > F32_MAX):
+        raise ConfigError(f"signals file {d['signals']!r}: x must be real and within the float32 range "
+                          f"(|x| <= {F32_MAX:.3g}) that training uses.")
     if d["task"] == "classify":
         if not np.issubdtype(y.dtype, np.integer) or y.min() < 0:
             raise ConfigError(f"signals file {d['signals']!r}: y must be non-negative integer labels to classify.")
-    elif not np.issubdtype(y.dtype, np.number) or not np.all(np.isfinite(y)):
-        raise ConfigError(f"signals file {d['signals']!r}: y must be finite numbers to regress.")
+        # One output per class id up to the largest: an id beyond the number
+        # of targets would size the readout by it (and overflow int32).
+        if int(y.max()) >= y.size:
+            raise ConfigError(f"signals file {d['signals']!r}: y holds class {int(y.max())}; labels must be "
+                              f"numbered 0 to C - 1 with C at most the {y.size} targets.")
+    elif (not np.issubdtype(y.dtype, np.number) or np.iscomplexobj(y) or not np.all(np.isfinite(y))
+          or np.max(np.abs(y)) > F32_MAX):
+        raise ConfigError(f"signals file {d['signals']!r}: y must be finite real numbers within the float32 "
+                          "range to regress.")
     return op, x.astype(np.float32), y
 
 
@@ -98,9 +116,10 @@ def build_dataset(config: Config) -> Dataset:
     else:
         op, x, y = _files(config, d)
         task = d["task"]
-    tr, va, te = _split(x.shape[0], d, d["seed"])
+    what = "the orchard data" if d["source"] == "orchard" else f"signals file {d['signals']!r}"
+    tr, va, te = _split(x.shape[0], d, d["seed"], what)
     classes = int(y.max()) + 1 if task == "classify" else 1
     if task == "classify" and classes < 2:
-        raise ConfigError("the targets hold a single class; classification needs at least two.")
+        raise ConfigError(f"{what}: the targets hold a single class; classification needs at least two.")
     y = y.astype(np.int32) if task == "classify" else y.astype(np.float32)
     return Dataset(op, x, y, task, classes, y.ndim == 2, tr, va, te)

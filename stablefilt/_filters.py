@@ -55,7 +55,10 @@ def make_basis(kind: str = "monomial", interval=None) -> Basis:
         return Basis("monomial", None)
     if interval is None:
         raise FilterError("a Chebyshev basis needs an interval [a, b] to map onto [-1, 1].")
-    iv = np.asarray(interval, dtype=np.float64).ravel()
+    try:
+        iv = np.asarray(interval, dtype=np.float64).ravel()
+    except (TypeError, ValueError):
+        iv = np.full(1, np.nan)  # not numbers: reported below
     if iv.shape != (2,) or not np.all(np.isfinite(iv)):
         raise FilterError(f"the Chebyshev interval must be two finite numbers [a, b]; got {np.asarray(interval).tolist()}.")
     if not iv[0] < iv[1]:

@@ -23,6 +23,10 @@ KINDS = ("as-is", "scaled-adjacency", "laplacian", "normalized-laplacian")
 #: Symmetry tolerance, relative to the largest absolute entry.
 SYMMETRY_TOL = 1e-10
 
+#: Node ids in an edge list must lie below this: the sparse products index
+#: nodes with int32 (scipy's CSR and the JAX path).
+MAX_NODES = 2**31 - 1
+
 
 @dataclasses.dataclass(frozen=True)
 class ShiftOperator:
@@ -106,7 +110,11 @@ def _check_matrix(m: sp.csr_array, name: str, tol: float) -> sp.csr_array:
 def as_matrix(source, name: str = "the graph") -> sp.csr_array:
     """Turn a dense array or scipy sparse matrix into float64 CSR, unchecked."""
     if sp.issparse(source):
+        if np.iscomplexobj(source.data):
+            raise GraphError(f"{name} has complex entries; a shift operator needs real weights.")
         return _canonical(source)
+    if np.iscomplexobj(source):  # a cast to float64 would drop the imaginary parts
+        raise GraphError(f"{name} has complex entries; a shift operator needs real weights.")
     try:
         arr = np.asarray(source, dtype=np.float64)
     except (TypeError, ValueError) as exc:
@@ -148,6 +156,8 @@ def from_edges(src, dst, weight=None, nodes: int | None = None, name: str = "the
         raise GraphError(f"{name} has no nodes; a graph needs at least one.")
     if top > nodes:
         raise GraphError(f"{name} names node {top - 1}, out of range for a graph of {nodes} nodes.")
+    if nodes > MAX_NODES:
+        raise GraphError(f"{name} names node {top - 1}; node ids must be below {MAX_NODES} (int32 sparse indices).")
     lo = np.minimum(src, dst)
     hi = np.maximum(src, dst)
     key = lo * nodes + hi
@@ -165,7 +175,10 @@ def from_edges(src, dst, weight=None, nodes: int | None = None, name: str = "the
     rows = np.concatenate([a, b[off]])
     cols = np.concatenate([b, a[off]])
     vals = np.concatenate([ws, ws[off]])
-    return _canonical(sp.coo_array((vals, (rows, cols)), shape=(nodes, nodes)))
+    try:
+        return _canonical(sp.coo_array((vals, (rows, cols)), shape=(nodes, nodes)))
+    except MemoryError:
+        raise GraphError(f"{name} names node {top - 1}: a graph of {nodes} nodes does not fit in memory.") from None
 
 
 def shift_operator(source, kind: str = "as-is", *, tol: float = SYMMETRY_TOL, name: str = "the graph") -> ShiftOperator:

@@ -27,8 +27,17 @@ def _exists(path: str, what: str, err):
 def read_csv_edges(path: str):
     """``(src, dst, weight)`` arrays from a CSV with header ``src,dst,weight``
     (``weight`` optional: 1.0 when the column is absent)."""
+    try:
+        return _read_csv_edges(path)
+    except UnicodeDecodeError:
+        raise GraphError(f"edge list {path!r} is not UTF-8 text.") from None
+    except csv.Error as exc:
+        raise GraphError(f"edge list {path!r} is not a readable CSV file ({exc}).") from None
+
+
+def _read_csv_edges(path: str):
     src, dst, w = [], [], []
-    with open(path, newline="") as fh:
+    with open(path, newline="", encoding="utf-8") as fh:
         reader = csv.reader(fh)
         try:
             header = next(reader)
@@ -91,7 +100,10 @@ def load_filter(path: str) -> tuple[np.ndarray, Basis]:
     (``monomial`` or ``chebyshev``) and, for Chebyshev, ``interval``."""
     _exists(path, "filter file", FilterError)
     try:
-        with np.load(path, allow_pickle=False) as z:
+        z = np.load(path, allow_pickle=False)
+        if not isinstance(z, np.lib.npyio.NpzFile):  # a single .npy array
+            raise ValueError("not an .npz archive")
+        with z:
             data = {k: z[k] for k in z.files}
     except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
         raise FilterError(f"filter file {path!r} could not be read as a numpy .npz archive ({type(exc).__name__}).") from None

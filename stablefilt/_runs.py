@@ -93,6 +93,8 @@ def arrays_to_params(arrays: dict, template: dict, what: str) -> dict:
     for k, v in flat.items():
         if arrays[k].shape != v.shape:
             raise RunError(f"{what}: {k} has shape {arrays[k].shape}; the model needs {v.shape}.")
+        if not np.issubdtype(arrays[k].dtype, np.floating) or not np.all(np.isfinite(arrays[k])):
+            raise RunError(f"{what}: {k} must hold finite real numbers.")
     layers = []
     for i, layer in enumerate(template["layers"]):
         layers.append({k: jax.numpy.asarray(arrays[f"layers/{i}/{k}"]) for k in layer})
