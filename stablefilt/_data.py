@@ -75,23 +75,23 @@ def _files(config: Config, d: dict):
     except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
         raise ConfigError(f"signals file {d['signals']!r} could not be read as a numpy .npz archive "
                           f"({type(exc).__name__}).") from None
-    n = op.nodes
-    if x.ndim == 2:
-        x = x[:, :, None]
     if len(arrays) != 2:  # outside the try: ConfigError is a ValueError
         raise ConfigError(f"signals file {d['signals']!r} needs arrays 'x' and 'y'.")
     x, y = arrays["x"], arrays["y"]
+    n = op.nodes
+    if x.ndim == 2:
+        x = x[:, :, None]
     if x.ndim != 3 or x.shape[1] != n or x.shape[0] < 1 or x.shape[2] < 1:
         raise ConfigError(f"signals file {d['signals']!r}: x must have shape (S, {n}) or (S, {n}, F) with S, F >= 1; "
                           f"got {x.shape}.")
     if not np.issubdtype(x.dtype, np.number) or not np.all(np.isfinite(x)):
         raise ConfigError(f"signals file {d['signals']!r}: x must be finite numbers.")
-    if y.shape not in ((x.shape[0],), (x.shape[0], n)):
-        raise ConfigError(f"signals file {d['signals']!r}: y must have shape ({x.shape[0]},) or "
-                          f"({x.shape[0]}, {n}); got {y.shape}.")
     if np.iscomplexobj(x) or (x.size and np.max(np.abs(x)) > F32_MAX):
         raise ConfigError(f"signals file {d['signals']!r}: x must be real and within the float32 range "
                           f"(|x| <= {F32_MAX:.3g}) that training uses.")
+    if y.shape not in ((x.shape[0],), (x.shape[0], n)):
+        raise ConfigError(f"signals file {d['signals']!r}: y must have shape ({x.shape[0]},) or "
+                          f"({x.shape[0]}, {n}); got {y.shape}.")
     if d["task"] == "classify":
         if not np.issubdtype(y.dtype, np.integer) or y.min() < 0:
             raise ConfigError(f"signals file {d['signals']!r}: y must be non-negative integer labels to classify.")
