@@ -107,7 +107,7 @@ SCHEMA = {
         "basis_interval": (_interval, None),
         "nonlinearity": (_choice(NONLINEARITIES), "relu"),
         "bias": (_bool, True),
-        "readout": (_choice(READOUTS[:3]), "node"),
+        "readout": (_choice(READOUTS), "node"),
     },
     "penalty": {
         "mode": (_choice(MODES), "integral_lipschitz"),

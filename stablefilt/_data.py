@@ -58,8 +58,11 @@ def _orchard(d: dict) -> tuple[ShiftOperator, np.ndarray, np.ndarray]:
     orchard = make_orchard(d["sensors"], d["block_rows"], d["block_cols"], d["neighbours"], seed=d["seed"])
     op = shift_operator(orchard.adjacency, d["shift"])
     raw = shift_operator(orchard.adjacency)
-    x, states, _ = leak_snapshots(orchard, raw, d["samples"], seed=d["seed"] + 1, noise=d["noise"])
-    return op, x[:, :, None].astype(np.float32), states
+    x, states, _, clean = leak_snapshots(orchard, raw, d["samples"], seed=d["seed"] + 1, noise=d["noise"],
+                                         return_clean=True)
+    # classify: each sensor's soil state; regress: its clean moisture (denoising).
+    y = states if d["task"] == "classify" else clean
+    return op, x[:, :, None].astype(np.float32), y
 
 
 def _files(config: Config, d: dict):
@@ -112,7 +115,7 @@ def build_dataset(config: Config) -> Dataset:
     d = config["data"]
     if d["source"] == "orchard":
         op, x, y = _orchard(d)
-        task = "classify"
+        task = d["task"]
     else:
         op, x, y = _files(config, d)
         task = d["task"]

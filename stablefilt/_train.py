@@ -21,7 +21,7 @@ import scipy
 
 from ._config import Config
 from ._data import Dataset, build_dataset
-from ._errors import RunError, TrainingDiverged
+from ._errors import ConfigError, RunError, TrainingDiverged
 from ._filters import Basis
 from ._graph import reorder
 from ._interval import SpectralInterval, spectral_interval
@@ -53,9 +53,18 @@ def model_spec(config: Config, interval: SpectralInterval, in_features: int, out
         basis = Basis("chebyshev", (float(iv[0]), float(iv[1])))
     else:
         basis = Basis()
+    if m["readout"] == "none" and m["features"][-1] != outputs:
+        raise ConfigError(f"model.readout = 'none' needs the last of model.features to be {outputs} "
+                          f"(the outputs of the task); got {m['features'][-1]}.")
+    return spec_from(m, basis, in_features, outputs)
+
+
+def spec_from(m: dict, basis: Basis, in_features: int, outputs: int) -> ModelSpec:
+    """The :class:`ModelSpec` of a config's ``[model]`` table. Without a
+    readout the last layer is linear (no nonlinearity on the output)."""
     return ModelSpec(tuple([in_features] + list(m["features"])), taps=m["taps"], basis=basis,
                      nonlinearity=m["nonlinearity"], bias=m["bias"], readout=m["readout"], outputs=outputs,
-                     final_nonlinearity=True)
+                     final_nonlinearity=m["readout"] != "none")
 
 
 def task_loss(out, y, task: str):
@@ -456,9 +465,7 @@ def open_run(path: str) -> Run:
     b = manifest.get("basis", {})
     basis = Basis("chebyshev", tuple(b["interval"])) if b.get("kind") == "chebyshev" else Basis()
     m = config["model"]
-    spec = ModelSpec(tuple([int(test["x"].shape[2])] + list(m["features"])), taps=m["taps"], basis=basis,
-                     nonlinearity=m["nonlinearity"], bias=m["bias"], readout=m["readout"],
-                     outputs=int(manifest.get("classes", 1)))
+    spec = spec_from(m, basis, int(test["x"].shape[2]), int(manifest.get("classes", 1)))
     del iv
     ppath = os.path.join(path, "params.npz")
     if not os.path.isfile(ppath):

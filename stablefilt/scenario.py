@@ -57,7 +57,7 @@ def season_drift(orchard: Orchard, eps: float, seed: int) -> ShiftOperator:
 
 
 def leak_snapshots(orchard: Orchard, op: ShiftOperator, count: int, seed: int, spread: float = 0.6,
-                   steps: int = 4, noise: float = 0.35):
+                   steps: int = 4, noise: float = 0.35, return_clean: bool = False):
     """``count`` moisture snapshots and the soil state of every sensor.
 
     A leak in a random block wets a few of its sensors; the wetting diffuses
@@ -67,7 +67,8 @@ def leak_snapshots(orchard: Orchard, op: ShiftOperator, count: int, seed: int, s
     snapshots); the reading adds noise of ``noise`` times the clean spread.
 
     Returns:
-      ``(readings (count, N), states (count, N) int, leaking block (count,))``.
+      ``(readings (count, N), states (count, N) int, leaking block (count,))``,
+      and the clean moisture ``(count, N)`` last when ``return_clean``.
     """
     rng = np.random.default_rng(seed)
     a = op.matrix
@@ -88,4 +89,6 @@ def leak_snapshots(orchard: Orchard, op: ShiftOperator, count: int, seed: int, s
     lo, hi = np.quantile(x, [0.6, 0.9])
     states = (x > lo).astype(np.int64) + (x > hi).astype(np.int64)
     readings = x + noise * x.std() * rng.standard_normal(x.shape)
+    if return_clean:
+        return readings, states, blocks, x
     return readings, states, blocks
