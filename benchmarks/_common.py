@@ -1,15 +1,18 @@
 """Shared pieces of the benchmarks: graph generators and interleaved timing.
 
 The machine these run on is shared and noisy, so methods are never timed in
-separate blocks. Each round times every method once (a few calls each, in a
-rotating order) and the figures quoted are medians over rounds of the
-per-round times and of the per-round ratios against a reference.
+separate blocks. Each round cycles through every method a few times (in a
+rotating order, fast methods repeated to a sample of about 20 ms), keeps each
+method's best sample of the round, and the figures quoted are medians over
+rounds of these per-round times and of the per-round ratios against a
+reference.
 """
 
 from __future__ import annotations
 
 import os
 import resource
+import sys
 import time
 
 import numpy as np
@@ -52,13 +55,17 @@ def calibrate(fn, target: float = 0.02, cap: int = 200) -> int:
     return int(max(1, min(cap, round(target / max(t, 1e-7)))))
 
 
-def interleaved(methods: dict, rounds: int, *, target: float = 0.02) -> dict:
+def interleaved(methods: dict, rounds: int, *, samples: int = 3, target: float = 0.02) -> dict:
     """Per-round times (seconds per call) of each method, interleaved.
 
     Args:
       methods: name -> zero-argument callable that blocks until done.
         Every callable is run once before timing (warm-up, compilation).
-      rounds: number of rounds; in each, every method is timed once.
+      rounds: number of rounds.
+      samples: in each round the methods are cycled this many times (the
+        order rotating) and each method's time for the round is the smallest
+        of its samples: a sample hit by another process's time slice is
+        dropped, while all methods still see the same stretch of load.
       target: wall time of one sample; fast methods are repeated to reach it.
 
     Returns:
@@ -68,12 +75,15 @@ def interleaved(methods: dict, rounds: int, *, target: float = 0.02) -> dict:
     for name in names:
         methods[name]()
     reps = {name: calibrate(methods[name], target) for name in names}
-    out = {name: np.empty(rounds) for name in names}
+    out = {name: np.full(rounds, np.inf) for name in names}
+    turn = 0
     for r in range(rounds):
-        # Rotate the order so no method always runs right after another.
-        order = names[r % len(names):] + names[: r % len(names)]
-        for name in order:
-            out[name][r] = _clock(methods[name], reps[name])
+        for _ in range(samples):
+            # Rotate the order so no method always runs right after another.
+            order = names[turn % len(names):] + names[: turn % len(names)]
+            turn += 1
+            for name in order:
+                out[name][r] = min(out[name][r], _clock(methods[name], reps[name]))
     return out
 
 
@@ -130,6 +140,20 @@ def faults_per_call(fn, reps: int = 3) -> float:
     for _ in range(reps):
         fn()
     return (resource.getrusage(resource.RUSAGE_SELF).ru_minflt - before) / reps
+
+
+HUGEPAGES_HELP = ("re-run this script with GLIBC_TUNABLES=glibc.malloc.hugetlb=1 (transparent huge pages for "
+                  "malloc) to measure what fresh page mappings cost")
+
+
+def rerun_with_hugepages(script: str) -> None:
+    """Replace this process by ``script`` run again with malloc's huge-page
+    tunable set (glibc reads tunables only at start-up). No return."""
+    env = dict(os.environ)
+    if "glibc.malloc.hugetlb" in env.get("GLIBC_TUNABLES", ""):
+        return
+    env["GLIBC_TUNABLES"] = ":".join(filter(None, [env.get("GLIBC_TUNABLES"), "glibc.malloc.hugetlb=1"]))
+    os.execve(sys.executable, [sys.executable, os.path.abspath(script), *sys.argv[1:]], env)
 
 
 def machine_note() -> str:

@@ -25,7 +25,6 @@ scipy's forward. Also: one product with and without the reordering.
 from __future__ import annotations
 
 import argparse
-import os
 import sys
 import time
 
@@ -33,6 +32,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 from _common import (
+    HUGEPAGES_HELP,
     blas_threads,
     faults_per_call,
     geometric_adjacency,
@@ -41,6 +41,7 @@ from _common import (
     ms,
     parse_sizes,
     ratio,
+    rerun_with_hugepages,
     spread,
     verdict,
 )
@@ -204,14 +205,10 @@ def main(argv=None) -> int:
     p.add_argument("--sizes", default="1e4,1e5", help="comma-separated node counts (default 1e4,1e5)")
     p.add_argument("--rounds", type=int, default=21, help="interleaved rounds per size (default 21)")
     p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--malloc-hugepages", action="store_true",
-                   help="re-run this script with GLIBC_TUNABLES=glibc.malloc.hugetlb=1 (transparent huge pages for "
-                        "malloc), to measure what fresh page mappings cost")
+    p.add_argument("--malloc-hugepages", action="store_true", help=HUGEPAGES_HELP)
     args = p.parse_args(argv)
-    if args.malloc_hugepages and "glibc.malloc.hugetlb" not in os.environ.get("GLIBC_TUNABLES", ""):
-        env = dict(os.environ)
-        env["GLIBC_TUNABLES"] = ":".join(filter(None, [env.get("GLIBC_TUNABLES"), "glibc.malloc.hugetlb=1"]))
-        os.execve(sys.executable, [sys.executable, os.path.abspath(__file__), *sys.argv[1:]], env)
+    if args.malloc_hugepages:
+        rerun_with_hugepages(__file__)
     print(f"bench_filter: jax {jax.__version__} on {jax.devices()[0].platform}; {machine_note()}")
     print("figures are medians over rounds; ratios are medians of per-round ratios [quartiles]")
     summary, ok = [], True
