@@ -1,0 +1,370 @@
+"""Adversarial search over relative perturbations, and the soundness sweep:
+no measured or attacked change ever exceeds its certificate.
+
+Sources of the check values:
+- every change is re-measured here in float64 by an independent dense
+  forward pass on ``S + E S + S E`` (Gama, Bruna, Ribeiro, "Stability
+  Properties of Graph Neural Networks", IEEE TSP 2020, for the model; the GNN
+  ``x_l = sigma(H_l(S) x_{l-1} + b_l)`` from docs/theory.md s. 1), with the
+  filters applied by their polynomial recurrences on dense numpy matrices;
+- the worst-pair construction ``E = eps (v_i v_j^T + v_j v_i^T)`` (or
+  ``eps v_i v_i^T``) with ``(i, j)`` maximising ``|Gamma_ij|``, ``Gamma`` from
+  ``numpy.polynomial`` divided differences and filters on the graph as
+  ``V h(Lambda) V^T`` from ``numpy.linalg.eigh`` (docs/theory.md s. 5 item 3,
+  derived from the Daleckii-Krein formula, Bhatia, "Matrix Analysis", 1997);
+- ``||E||_2`` by ``numpy.linalg.norm(., 2)``.
+Tolerances: the search runs in float32, so comparisons of a found change with
+a constructed one allow 1e-5 relative; re-measurements are float64 (1e-10).
+"""
+
+from __future__ import annotations
+
+import jax
+import jax.numpy as jnp
+import networkx as nx
+import numpy as np
+import pytest
+from numpy.polynomial import chebyshev as npcheb
+from numpy.polynomial import polynomial as nppoly
+
+import stablefilt as sf
+from stablefilt import _attack as atk
+from stablefilt import _perturb as pt
+
+# ---------------------------------------------------------------------------
+# Independent float64 reference.
+
+
+def _f64(params):
+    return jax.tree_util.tree_map(lambda a: np.asarray(a, dtype=np.float64), params)
+
+
+def _act(name, z):
+    if name == "relu":
+        return np.maximum(z, 0.0)
+    if name == "leaky_relu":
+        return np.where(z >= 0, z, 0.1 * z)
+    if name == "tanh":
+        return np.tanh(z)
+    return z
+
+
+def ref_forward(params, spec, s, x):
+    """Model output on the dense shift ``s`` for one signal ``x`` (``(N, F_0)``):
+    each bank ``sum_k p_k(S) X c_k`` by the monomial or Chebyshev three-term
+    recurrence on dense matrices, then bias, nonlinearity and readout."""
+    p = _f64(params)
+    n = s.shape[0]
+    if spec.basis.kind == "chebyshev":
+        a, b = spec.basis.interval
+        m = (2.0 * s - (a + b) * np.eye(n)) / (b - a)
+    else:
+        m = s
+    z = np.asarray(x, dtype=np.float64)
+    for li, layer in enumerate(p["layers"]):
+        taps = layer["taps"]
+        terms = [z]
+        if taps.shape[0] > 1:
+            terms.append(m @ z)
+        for _ in range(2, taps.shape[0]):
+            nxt = m @ terms[-1]
+            terms.append(2 * nxt - terms[-2] if spec.basis.kind == "chebyshev" else nxt)
+        z = sum(t @ c for t, c in zip(terms, taps))
+        if "bias" in layer:
+            z = z + layer["bias"]
+        if li < spec.depth - 1 or spec.final_nonlinearity:
+            z = _act(spec.nonlinearity, z)
+    if spec.readout == "none":
+        return z
+    r = p["readout"]
+    if spec.readout == "mean":
+        z = z.mean(axis=0)
+    elif spec.readout == "sum":
+        z = z.sum(axis=0)
+    return z @ r["weight"] + r["bias"]
+
+
+def ref_change(params, spec, s, e, x):
+    """``||Phi(S + E S + S E) x - Phi(S) x||_F``, ``E`` dense or its diagonal."""
+    e = np.diag(e) if np.ndim(e) == 1 else np.asarray(e)
+    s_hat = s + e @ s + s @ e
+    return float(np.linalg.norm(ref_forward(params, spec, s_hat, x) - ref_forward(params, spec, s, x)))
+
+
+def _response(c, lam, basis):
+    if basis.kind == "monomial":
+        return nppoly.polyval(lam, c)
+    a, b = basis.interval
+    return npcheb.chebval((2 * lam - a - b) / (b - a), c)
+
+
+def _derivative(c, lam, basis):
+    if basis.kind == "monomial":
+        return nppoly.polyval(lam, nppoly.polyder(c))
+    a, b = basis.interval
+    return (2 / (b - a)) * npcheb.chebval((2 * lam - a - b) / (b - a), npcheb.chebder(c))
+
+
+def _filter(m, c, basis):
+    """``H(M) = V h(Lambda) V^T`` (numpy.linalg.eigh)."""
+    w, v = np.linalg.eigh(m)
+    return (v * _response(c, w, basis)) @ v.T
+
+
+def _gamma(c, w, basis):
+    """``Gamma_ij = (w_i + w_j)(h(w_i) - h(w_j)) / (w_i - w_j)``, ``2 w h'(w)``
+    on (near) ties (theory.md s. 3)."""
+    li, lj = np.meshgrid(w, w, indexing="ij")
+    close = np.abs(li - lj) <= 1e-9 * max(1.0, np.max(np.abs(w)))
+    dd = (_response(c, li, basis) - _response(c, lj, basis)) / np.where(close, 1.0, li - lj)
+    return (li + lj) * np.where(close, _derivative(c, 0.5 * (li + lj), basis), dd)
+
+
+# ---------------------------------------------------------------------------
+# Graphs and models.
+
+
+def _weighted(g, seed):
+    rng = np.random.default_rng(seed)
+    a = nx.to_numpy_array(g, weight=None)
+    w = np.triu(rng.uniform(0.2, 2.0, a.shape), 1)
+    return a * (w + w.T)
+
+
+KARATE = nx.to_numpy_array(nx.karate_club_graph(), weight=None)  # Zachary 1977, bundled with networkx
+
+FAMILIES = {
+    "karate-normalized": lambda: sf.shift_operator(KARATE, "normalized-laplacian"),
+    "geometric-laplacian": lambda: sf.shift_operator(_weighted(nx.random_geometric_graph(24, 0.35, seed=3), 4),
+                                                     "laplacian"),
+    "path-scaled": lambda: sf.shift_operator(nx.to_numpy_array(nx.path_graph(12)), "scaled-adjacency"),
+    "bipartite-adjacency": lambda: sf.shift_operator(_weighted(nx.bipartite.random_graph(6, 8, 0.5, seed=5), 6)),
+}
+OPS = {k: f() for k, f in FAMILIES.items()}
+
+
+def _basis(kind, op):
+    if kind == "monomial":
+        return sf.Basis()
+    lam = np.linalg.eigvalsh(op.dense())
+    return sf.make_basis("chebyshev", (float(lam[0]) - 0.05, float(lam[-1]) + 0.05))
+
+
+def _model(op, basis_kind, depth, seed):
+    """Depth 1: a linear bank (no bias, no nonlinearity, no readout);
+    depth 2: relu, node readout; depth 3: tanh, mean readout. Non-zero biases."""
+    basis = _basis(basis_kind, op)
+    feats = (2,) + (3,) * depth
+    if depth == 1:
+        spec = sf.ModelSpec(feats, taps=4, basis=basis, nonlinearity="none", bias=False, readout="none")
+    elif depth == 2:
+        spec = sf.ModelSpec(feats, taps=4, basis=basis, nonlinearity="relu", readout="node", outputs=2)
+    else:
+        spec = sf.ModelSpec(feats, taps=4, basis=basis, nonlinearity="tanh", readout="mean", outputs=2)
+    params = sf.init_params(spec, seed)
+    rng = np.random.default_rng(seed)
+    if spec.bias:
+        for layer in params["layers"]:
+            layer["bias"] = jnp.asarray(rng.uniform(-0.3, 0.3, layer["bias"].shape), jnp.float32)
+        params["readout"]["bias"] = jnp.asarray(rng.uniform(-0.3, 0.3, params["readout"]["bias"].shape),
+                                                jnp.float32)
+    return spec, params
+
+
+def _signals(n, f, count, seed):
+    return np.random.default_rng(seed).standard_normal((count, n, f))
+
+
+def test_reference_forward_agrees_with_library():
+    """The test's dense reference and ``forward_np`` compute the same model
+    (otherwise the checks below would compare different things)."""
+    for basis_kind in ("monomial", "chebyshev"):
+        for depth in (1, 2, 3):
+            op = OPS["karate-normalized"]
+            spec, params = _model(op, basis_kind, depth, 1)
+            x = _signals(op.nodes, 2, 2, 0)
+            got = sf.forward_np(params, op.matrix, x, spec)
+            for b in range(2):
+                want = ref_forward(params, spec, op.dense(), x[b])
+                assert np.max(np.abs(got[b] - want)) <= 1e-10 * max(1.0, np.max(np.abs(want)))
+
+
+# ---------------------------------------------------------------------------
+# The attack's result.
+
+
+@pytest.fixture(scope="module")
+def small_case():
+    op = OPS["karate-normalized"]
+    spec, params = _model(op, "chebyshev", 2, 3)
+    x = _signals(op.nodes, 2, 1, 4)[0]
+    return op, spec, params, x
+
+
+@pytest.mark.parametrize("mode", ["dense", "diagonal"])
+@pytest.mark.parametrize("free", [False, True])
+def test_attack_change_is_remeasured_and_in_the_ball(small_case, mode, free):
+    op, spec, params, x = small_case
+    eps = 0.02
+    rho = 1.7
+    r = atk.attack(params, spec, op, x, eps, mode=mode, free_input=free, rho=rho if free else None, restarts=3,
+                   iters=15, seed=0)
+    assert r.mode == mode and r.free_input == free and len(r.history) > 0
+    if mode == "dense":
+        assert r.e.shape == (op.nodes, op.nodes)
+        assert np.array_equal(r.e, r.e.T)
+        assert np.linalg.norm(r.e, 2) <= eps * (1 + 1e-9)
+    else:
+        assert r.e.shape == (op.nodes,)
+        assert np.max(np.abs(r.e)) <= eps * (1 + 1e-9)
+    if free:
+        assert np.linalg.norm(r.x) == pytest.approx(rho, rel=1e-12)
+    else:
+        assert np.array_equal(r.x, x)
+    want = ref_change(params, spec, op.dense(), r.e, r.x)
+    assert r.change == pytest.approx(want, rel=1e-10)
+    assert r.change > 0
+
+
+def test_attack_is_seeded(small_case):
+    op, spec, params, x = small_case
+    for mode in ("dense", "diagonal"):
+        a = atk.attack(params, spec, op, x, 0.01, mode=mode, restarts=3, iters=8, seed=5)
+        b = atk.attack(params, spec, op, x, 0.01, mode=mode, restarts=3, iters=8, seed=5)
+        assert a.change == b.change and a.start == b.start
+        assert np.array_equal(a.e, b.e)
+
+
+def test_attack_beats_random_perturbations(small_case):
+    """The search does at least as well as random points of the ball."""
+    op, spec, params, x = small_case
+    eps = 0.02
+    r = atk.attack(params, spec, op, x, eps, mode="dense", restarts=3, iters=15, seed=0)
+    s = op.dense()
+    rnd = max(ref_change(params, spec, s, pt.relative(op, eps, k).e, x) for k in range(5))
+    assert r.change >= rnd
+
+
+def test_auto_mode_picks_diagonal_above_the_limit(small_case, monkeypatch):
+    op, spec, params, x = small_case
+    monkeypatch.setattr(atk, "DENSE_ATTACK_LIMIT", 10)
+    r = atk.attack(params, spec, op, x, 0.01, restarts=2, iters=3, seed=0)
+    assert r.mode == "diagonal" and r.e.shape == (op.nodes,)
+
+
+# ---------------------------------------------------------------------------
+# Worst-pair construction for one linear filter.
+
+
+def _linear_filter(c, basis):
+    k = len(c)
+    spec = sf.ModelSpec((1, 1), taps=k, basis=basis, nonlinearity="none", bias=False, readout="none")
+    params = {"layers": [{"taps": jnp.asarray(np.reshape(c, (k, 1, 1)), jnp.float32)}]}
+    return spec, params, np.asarray(params["layers"][0]["taps"], dtype=np.float64).ravel()
+
+
+def _pair_cases():
+    n = 8
+    # Complete graph K_8, Laplacian eigenvalues {0, 8}; h the cubic smoothstep
+    # from 0 to 8 (h' = 0 at both eigenvalues): Gamma vanishes on the diagonal,
+    # so scaling moves the output only at second order and the worst pair is
+    # (0-eigenvector, 8-eigenvector) with Gamma = 1.
+    yield ("complete-smoothstep", sf.shift_operator(nx.to_numpy_array(nx.complete_graph(n)), "laplacian"),
+           np.array([0.0, 0.0, 3.0 / n**2, -2.0 / n**3]), sf.Basis())
+    op = sf.shift_operator(KARATE, "normalized-laplacian")
+    rng = np.random.default_rng(2)
+    yield ("karate-chebyshev", op, rng.standard_normal(5) / np.arange(1, 6), sf.make_basis("chebyshev", (-0.1, 2.1)))
+    op = sf.shift_operator(_weighted(nx.gnp_random_graph(20, 0.3, seed=4), 1), "laplacian")
+    lam = np.linalg.eigvalsh(op.dense())
+    yield ("random-laplacian-chebyshev", op, rng.standard_normal(5) / np.arange(1, 6),
+           sf.make_basis("chebyshev", (lam[0] - 0.1, lam[-1] + 0.1)))
+
+
+PAIR_CASES = {name: (op, c, basis) for name, op, c, basis in _pair_cases()}
+
+
+@pytest.mark.parametrize("name", sorted(PAIR_CASES))
+@pytest.mark.parametrize("eps", [1e-3, 1e-2])
+def test_attack_at_least_worst_pair(name, eps):
+    """For one linear filter, the attack's change is at least the change of the
+    worst-pair construction ``E = eps (v_i v_j^T + v_j v_i^T)`` on ``x = v_j``
+    (theory.md s. 5 item 3), with the input fixed at ``v_j`` and with the input
+    free on the sphere ``||x|| = 1`` from a random start."""
+    op, c, basis = PAIR_CASES[name]
+    spec, params, c = _linear_filter(c, basis)
+    s = op.dense()
+    w, v = np.linalg.eigh(s)
+    g = np.abs(_gamma(c, w, basis))
+    i, j = np.unravel_index(np.argmax(g), g.shape)
+    if name == "complete-smoothstep":
+        assert w[i] != pytest.approx(w[j])  # the worst pair is off-diagonal here
+    if i == j:
+        e = eps * np.outer(v[:, i], v[:, i])
+    else:
+        e = eps * (np.outer(v[:, i], v[:, j]) + np.outer(v[:, j], v[:, i]))
+    assert np.linalg.norm(e, 2) == pytest.approx(eps, rel=1e-12)
+    d = _filter(s + e @ s + s @ e, c, basis) - _filter(s, c, basis)
+    pair = float(np.linalg.norm(d @ v[:, j]))
+    # The construction realises the first-order value eps |Gamma_ij| (theory s. 5 item 3).
+    assert pair == pytest.approx(eps * g[i, j], rel=20 * eps)
+    fixed = atk.attack(params, spec, op, v[:, [j]], eps, mode="dense", restarts=4, iters=20, seed=0)
+    assert fixed.change >= pair * (1 - 1e-5)
+    x0 = np.random.default_rng(9).standard_normal((op.nodes, 1))
+    free = atk.attack(params, spec, op, x0, eps, mode="dense", free_input=True, rho=1.0, restarts=4, iters=20,
+                      seed=0)
+    assert free.change >= pair * (1 - 1e-5)
+    for r in (fixed, free):
+        assert r.change == pytest.approx(ref_change(params, spec, s, r.e, r.x), rel=1e-10)
+
+
+# ---------------------------------------------------------------------------
+# Soundness sweep: every measured and attacked change below its certificate.
+
+EPS = [1e-3, 1e-2, 0.1]
+
+
+@pytest.mark.parametrize("depth", [1, 2, 3])
+@pytest.mark.parametrize("basis_kind", ["monomial", "chebyshev"])
+@pytest.mark.parametrize("family", sorted(FAMILIES))
+def test_soundness_sweep(family, basis_kind, depth):
+    """Random relative, diagonal and scaling perturbations and the attack
+    (fixed and free input, dense and diagonal ``E``), each re-measured here in
+    float64, never exceed ``certify_model(...).certified`` (inputs with
+    ``||x||_F <= rho``) nor ``certify_inputs`` for their own signal."""
+    op = OPS[family]
+    seed = 10 * depth + (basis_kind == "chebyshev")
+    spec, params = _model(op, basis_kind, depth, seed)
+    s = op.dense()
+    n = op.nodes
+    xs = _signals(n, 2, 3, seed)
+    rho = float(np.max(np.linalg.norm(xs.reshape(3, -1), axis=1)))
+    iv = sf.spectral_interval(op)
+    lam = iv.eigenvalues
+    cert = sf.certify_model(params, spec, iv, n, EPS, rho=rho, eigenvalues=lam)
+    worst = 0.0
+    for eps in EPS:
+        c_op = cert.certified[f"{eps:g}"]
+        c_in = sf.certify_inputs(params, spec, op.matrix, iv, xs, eps, lam)
+        assert np.all(np.isfinite(c_in)) and np.isfinite(c_op)
+        assert np.all(c_in <= c_op * (1 + 1e-9))  # every signal has ||x|| <= rho
+        es = [pt.relative(op, eps, k).e for k in range(2)] + [pt.diagonal(op, eps, k).e for k in range(2)]
+        es += [pt.scaling(op, eps, k).e for k in range(2)]
+        for e in es:
+            for b in range(len(xs)):
+                ch = ref_change(params, spec, s, e, xs[b])
+                assert ch <= c_in[b], (eps, b, ch, c_in[b])
+                assert ch <= c_op, (eps, b, ch, c_op)
+                worst = max(worst, ch / c_in[b])
+        b = int(np.argmax(c_in))
+        # Few iterations keep the sweep fast; dense starts include the worst pairs.
+        for mode, restarts in (("dense", 4), ("diagonal", 2)):
+            r = atk.attack(params, spec, op, xs[b], eps, mode=mode, restarts=restarts, iters=6, seed=0)
+            ch = ref_change(params, spec, s, r.e, xs[b])
+            assert ch == pytest.approx(r.change, rel=1e-9)
+            assert ch <= c_in[b], (eps, mode, ch, c_in[b])
+            assert ch <= c_op
+        r = atk.attack(params, spec, op, xs[b], eps, mode="dense", free_input=True, rho=rho, restarts=4, iters=6)
+        ch = ref_change(params, spec, s, r.e, r.x)
+        assert ch == pytest.approx(r.change, rel=1e-9)
+        assert ch <= c_op, (eps, "free", ch, c_op)
+    assert worst > 0
