@@ -39,7 +39,7 @@ class StressRow:
     mean_change: float
     max_change: float
     ratio: float | None
-    metric_perturbed: float
+    metric_perturbed: float | None
     metric_clean: float
     violations: int
     distance_max: float | None = None
@@ -57,8 +57,9 @@ def _metric(out, y, task):
     return float(np.sqrt(np.mean((out[..., 0] - y) ** 2)))
 
 
-def _draw(run: Run, kind: str, eps: float, seed: int):
-    """``(S_hat ShiftOperator, relative distance or None, perm or None)``."""
+def _draw(run: Run, kind: str, eps: float, seed: int, sample: int = 0):
+    """``(S_hat ShiftOperator, relative distance or None, perm or None)``;
+    scaling alternates ``(1 + 2 eps) S`` and ``(1 - 2 eps) S`` with ``sample``."""
     op = run.op
     if kind == "relative":
         p = relative(op, eps, seed) if op.nodes <= DENSE_LIMIT else diagonal(op, eps, seed)
@@ -66,7 +67,7 @@ def _draw(run: Run, kind: str, eps: float, seed: int):
     if kind == "diagonal":
         return diagonal(op, eps, seed).op, eps, None
     if kind == "scaling":
-        return scaling(op, eps, seed).op, eps, None
+        return scaling(op, eps, sample).op, eps, None
     if kind == "relabel":
         p = relabel(op, seed)
         return p.op, 0.0, p.perm
@@ -115,7 +116,7 @@ def stress(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_sign
         for kind in kinds:
             changes, metrics, viol, covered, dists = [], [], 0, 0, []
             for k in range(samples):
-                op_hat, dist, perm = _draw(run, kind, eps, seed + 1000 * k + 17)
+                op_hat, dist, perm = _draw(run, kind, eps, seed + 1000 * k + 17, k)
                 xin = x if perm is None else x[:, perm, :]
                 out = forward_np(run.params, op_hat.matrix, xin, run.spec)
                 if perm is not None and run.spec.readout in ("node", "none"):
@@ -155,7 +156,7 @@ def stress(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_sign
             viol = int(best.change > best_c) + int(free.change > c_op)
             row = StressRow(eps, "attack", c_op, cert.published[f"{eps:g}"], float(c_in.max()), 1, 1,
                             best.change, max(best.change, free.change), c_op / max(best.change, free.change),
-                            float("nan"), clean, viol, eps, best.change, best_c, best_c / best.change,
+                            None, clean, viol, eps, best.change, best_c, best_c / best.change,
                             free.change, c_op / free.change, mode)
             rows.append(row)
             if progress:
