@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 from numpy.polynomial import chebyshev as npcheb
 from numpy.polynomial import polynomial as nppoly
+from reference import bank_response, derivative, filter_matrices, response
 
 import stablefilt as sf
-from reference import bank_response, derivative, filter_matrices, response
 
 BASES = [("monomial", None), ("chebyshev", (-0.5, 2.5)), ("chebyshev", (-3.0, -1.0))]
 

@@ -9,9 +9,9 @@ import networkx as nx
 import numpy as np
 import pytest
 from numpy.polynomial import Chebyshev, Polynomial
+from reference import gamma
 
 import stablefilt as sf
-from reference import gamma
 from stablefilt._kernel import as_series, kernel_matrix
 
 
