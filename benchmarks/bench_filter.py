@@ -19,7 +19,7 @@ independently of the library. Timed, interleaved round by round:
 Targets (issue 2): forward <= 1.0x scipy's forward, forward+backward <= 2.0x
 scipy's forward. Also: one product with and without the reordering.
 
-    python benchmarks/bench_filter.py [--sizes 1e4,1e5] [--rounds 21]
+    python benchmarks/bench_filter.py [--sizes 1e4,1e5] [--rounds 15]
 """
 
 from __future__ import annotations
@@ -203,7 +203,7 @@ def bench_size(n: int, rounds: int, seed: int) -> tuple[list[str], bool]:
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--sizes", default="1e4,1e5", help="comma-separated node counts (default 1e4,1e5)")
-    p.add_argument("--rounds", type=int, default=21, help="interleaved rounds per size (default 21)")
+    p.add_argument("--rounds", type=int, default=15, help="interleaved rounds per size (default 15)")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--malloc-hugepages", action="store_true", help=HUGEPAGES_HELP)
     args = p.parse_args(argv)

@@ -12,7 +12,7 @@ N >= 10^4. Also printed: the penalty alone and ``stablefilt.kernel_bound``
 alone (value and gradient, 32 x 32 bank), and the step with ``kernel_bound``
 as the penalty, for reference.
 
-    python benchmarks/bench_penalty.py [--sizes 1e3,1e4,1e5] [--rounds 21]
+    python benchmarks/bench_penalty.py [--sizes 1e3,1e4,1e5] [--rounds 15]
 """
 
 from __future__ import annotations
@@ -125,7 +125,7 @@ def alone(fn, taps, rounds):
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--sizes", default="1e3,1e4,1e5", help="comma-separated node counts (default 1e3,1e4,1e5)")
-    p.add_argument("--rounds", type=int, default=21, help="interleaved rounds per size (default 21)")
+    p.add_argument("--rounds", type=int, default=15, help="interleaved rounds per size (default 15)")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--malloc-hugepages", action="store_true", help=HUGEPAGES_HELP)
     args = p.parse_args(argv)
