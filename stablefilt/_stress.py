@@ -51,6 +51,16 @@ class StressRow:
     attack_mode: str | None = None
 
 
+def _ratio(cert, change):
+    """``cert / change``, or None when nothing changed (a model whose output
+    does not depend on the graph)."""
+    return float(cert / change) if change > 0 else None
+
+
+def _g(v) -> str:
+    return "-" if v is None else f"{v:.3g}"
+
+
 def _metric(out, y, task):
     if task == "classify":
         return float(np.mean(np.argmax(out, axis=-1) == y))
@@ -149,18 +159,19 @@ def stress(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_sign
             order = np.argsort(-c_in)[:attack_signals]
             for i in order:
                 r = attack(run.params, run.spec, run.op, x[i], eps, mode=mode, iters=attack_iters, seed=seed)
-                if best is None or r.change / c_in[i] > best.change / best_c:
+                # The largest change / certificate, multiplied out: a certificate can be 0.
+                if best is None or r.change * best_c > best.change * float(c_in[i]):
                     best, best_c = r, float(c_in[i])
             free = attack(run.params, run.spec, run.op, x[order[0]], eps, mode=mode, free_input=True, rho=rho,
                           iters=attack_iters, seed=seed)
             viol = int(best.change > best_c) + int(free.change > c_op)
             row = StressRow(eps, "attack", c_op, cert.published[f"{eps:g}"], float(c_in.max()), 1, 1,
-                            best.change, max(best.change, free.change), c_op / max(best.change, free.change),
-                            None, clean, viol, eps, best.change, best_c, best_c / best.change,
-                            free.change, c_op / free.change, mode)
+                            best.change, max(best.change, free.change), _ratio(c_op, max(best.change, free.change)),
+                            None, clean, viol, eps, best.change, best_c, _ratio(best_c, best.change),
+                            free.change, _ratio(c_op, free.change), mode)
             rows.append(row)
             if progress:
                 progress(f"eps {eps:g} attack ({mode}): {best.change:.4g} <= true worst case <= {best_c:.4g} "
-                         f"(input-specific, ratio {best_c / best.change:.3g}); free input {free.change:.4g} <= "
-                         f"{c_op:.4g} (ratio {c_op / free.change:.3g})")
+                         f"(input-specific, ratio {_g(row.attack_ratio)}); free input {free.change:.4g} <= "
+                         f"{c_op:.4g} (ratio {_g(row.attack_free_ratio)})")
     return rows

@@ -226,3 +226,26 @@ def test_edges_covered_on_a_combinatorial_laplacian(run):
     (row,) = rows
     assert row.covered == 2 and row.distance_max > 0
     assert row.violations == 0
+
+
+def test_graph_independent_model_reports_no_ratio(run, run_dir, monkeypatch, capsys):
+    """A model whose output ignores the graph (zero readout) changes by 0
+    under every perturbation: ratios are null in the JSON, never a division
+    by zero."""
+    import jax.numpy as jnp
+
+    import stablefilt._train as train_mod
+
+    params = dict(run.params)
+    params["readout"] = {"weight": jnp.zeros_like(run.params["readout"]["weight"]),
+                         "bias": run.params["readout"]["bias"]}
+    flat = dataclasses.replace(run, params=params)
+    monkeypatch.setattr(train_mod, "open_run", lambda path: flat)
+    rc = main(["stress", run_dir, "--eps", "0.01", "--samples", "1", "--kinds", "scaling", "--attack", "--json"])
+    out, err = capsys.readouterr()
+    assert rc == 0, err
+    rows = _strict_json(out)["rows"]
+    assert [r["kind"] for r in rows] == ["scaling", "attack"]
+    for r in rows:
+        assert r["max_change"] == 0.0 and r["ratio"] is None and r["violations"] == 0
+    assert rows[1]["attack_ratio"] is None and rows[1]["attack_free_ratio"] is None
