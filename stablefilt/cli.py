@@ -209,14 +209,15 @@ def cmd_compare(args) -> int:
     if args.csv and os.path.exists(args.csv):
         raise UsageError(f"--csv {args.csv!r} already exists; choose a new file name")
     eps = sorted({k for r in rows for k in r["certified"]}, key=float)
-    header = ["run", "penalty", "test metric"] + [f"IL layer {i + 1}" for i in range(max(len(r["layers"]) for r in rows))]
+    depth = max(len(r["layers"]) for r in rows)
+    header = ["run", "penalty", "test metric"] + [f"IL layer {i + 1}" for i in range(depth)]
     header += [f"certified@{e}" for e in eps] + [f"published@{e}" for e in eps]
     table = []
     for r in rows:
         m = r["metric"]
-        w = r["penalty_weight"]
-        line = [r["name"] or r["run"], f"{r['penalty_mode']} x {w}", f"{m} {r[f'test_{m}']:.4f}"]
-        line += [_fmt(lr["integral_lipschitz"]) for lr in r["layers"]] + ["-"] * (len(header) - 3 - 2 * len(eps) - len(r["layers"]))
+        il = [_fmt(lr["integral_lipschitz"]) for lr in r["layers"]]
+        line = [r["name"] or r["run"], f"{r['penalty_mode']} x {r['penalty_weight']}", f"{m} {r[f'test_{m}']:.4f}"]
+        line += il + ["-"] * (depth - len(il))
         line += [_fmt(r["certified"].get(e)) for e in eps] + [_fmt(r["published"].get(e)) for e in eps]
         table.append(line)
     if args.json:

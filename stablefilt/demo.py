@@ -41,9 +41,15 @@ def run_demo(out: str | None = None) -> int:
 
 
 def _every(n):
+    """Progress filter: the first epoch, every ``n``-th, and other messages."""
+
     def show(msg):
-        if not msg.startswith("epoch") or msg.split()[1].split("/")[0].strip().isdigit() and (
-                int(msg.split()[1].split("/")[0]) % n == 0 or msg.split()[1].startswith("1/")):
+        words = msg.split()
+        if words[:1] != ["epoch"]:
+            print(msg, flush=True)
+            return
+        done = int(words[1].split("/")[0])
+        if done == 1 or done % n == 0:
             print(msg, flush=True)
 
     return show
