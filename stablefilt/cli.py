@@ -216,7 +216,9 @@ def cmd_compare(args) -> int:
     for r in rows:
         m = r["metric"]
         il = [_fmt(lr["integral_lipschitz"]) for lr in r["layers"]]
-        line = [r["name"] or r["run"], f"{r['penalty_mode']} x {r['penalty_weight']}", f"{m} {r[f'test_{m}']:.4f}"]
+        w = r["penalty_weight"]
+        pen = "none" if (max(w) if isinstance(w, list) else w) == 0 else f"{r['penalty_mode']} x {w}"
+        line = [r["name"] or r["run"], pen, f"{m} {r[f'test_{m}']:.4f}"]
         line += il + ["-"] * (depth - len(il))
         line += [_fmt(r["certified"].get(e)) for e in eps] + [_fmt(r["published"].get(e)) for e in eps]
         table.append(line)
