@@ -18,6 +18,7 @@ from math import comb
 import numpy as np
 from numpy.polynomial import Chebyshev
 
+from ._errors import StablefiltError
 from ._filters import Basis, basis_values, check_taps, response_derivative, run_filter
 from ._graph import ShiftOperator
 from ._interval import SpectralInterval, spectral_interval
@@ -33,6 +34,18 @@ DIRECT_SPLIT_LIMIT = 20000
 
 MODEL = "relative: P^T S_hat P = S + E S + S E, E symmetric, ||E||_2 <= eps, P a permutation"
 NORM = "operator 2-norm over signals (Frobenius over N x F for a bank)"
+
+
+def _check_eps(eps) -> float:
+    """``eps`` as a float; a negative or non-finite size would give a negative
+    or NaN figure called certified."""
+    try:
+        e = float(eps)
+    except (TypeError, ValueError):
+        raise StablefiltError(f"eps must be a finite number >= 0; got {eps!r}.") from None
+    if not np.isfinite(e) or e < 0:
+        raise StablefiltError(f"eps must be a finite number >= 0; got {eps!r}.")
+    return e
 
 
 def _allow(x, scale=1.0):
@@ -349,6 +362,7 @@ def remainder(taps, basis: Basis, interval, eps: float) -> np.ndarray:
     (For the origin form ``(R + d)^k - ... = R^k ((1 + 2 eps)^k - 1 - 2 k eps)``.)
     """
     taps = check_taps(taps)
+    eps = _check_eps(eps)
     cols, shape = _flat(taps)
     k = cols.shape[0]
     a, b = float(interval[0]), float(interval[1])
@@ -564,6 +578,7 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
       :class:`Certificate`.
     """
     taps = check_taps(taps).astype(np.float64)
+    eps_list = [_check_eps(e) for e in eps_list]
     if interval is None:
         interval = spectral_interval(op)
     lam = interval.eigenvalues if (use_eigenvalues or use_eigenvalues is None) else None

@@ -281,3 +281,17 @@ def test_bad_basis_raises_filter_error(args, match):
         sf.make_basis(*args)
     msg = str(exc.value)
     assert "\n" not in msg and msg.endswith(".") and len(msg) < 300
+
+
+@pytest.mark.parametrize("eps", [-0.1, float("nan"), float("inf"), "abc"])
+def test_bad_eps_raises(eps):
+    # A negative eps gave certified = -0.56 below a realised change of 0.64 on
+    # a two-node graph; NaN gave NaN figures. Both are user errors.
+    op = sf.shift_operator(np.array([[0.0, 1.0], [1.0, 0.0]]))
+    taps = np.array([0.0, 1.0, 1.0])
+    for call in (lambda: sf.certify_filter(op, taps, sf.make_basis(), [0.01, eps]),
+                 lambda: sf.remainder(taps, sf.make_basis(), (-1.0, 1.0), eps)):
+        with pytest.raises(sf.StablefiltError, match="eps") as exc:
+            call()
+        msg = str(exc.value)
+        assert "\n" not in msg and msg.endswith(".") and len(msg) < 300
