@@ -39,19 +39,25 @@ def geometric_adjacency(n: int, degree: float, rng: np.random.Generator, *, weig
     return sp.csr_array(a)
 
 
-def _clock(fn, reps: int) -> float:
-    """Mean wall time of ``reps`` calls of ``fn`` (which must block until its
-    result is ready), in seconds."""
+def _clock(fn, reps: int, budget: float = float("inf")) -> float:
+    """Mean wall time of up to ``reps`` calls of ``fn`` (which must block
+    until its result is ready), in seconds; stops early once ``budget``
+    seconds have passed, so a method that turns slow under load cannot
+    stretch a sample far beyond its target."""
     t0 = time.perf_counter()
-    for _ in range(reps):
+    done = 0
+    while done < reps:
         fn()
-    return (time.perf_counter() - t0) / reps
+        done += 1
+        if time.perf_counter() - t0 > budget:
+            break
+    return (time.perf_counter() - t0) / done
 
 
 def calibrate(fn, target: float = 0.02, cap: int = 200) -> int:
-    """Calls of ``fn`` needed for one timed sample of about ``target`` s."""
-    t = _clock(fn, 1)
-    t = min(t, _clock(fn, 1))
+    """Calls of ``fn`` needed for one timed sample of about ``target`` s
+    (from the median of five calls)."""
+    t = float(np.median([_clock(fn, 1) for _ in range(5)]))
     return int(max(1, min(cap, round(target / max(t, 1e-7)))))
 
 
@@ -83,7 +89,7 @@ def interleaved(methods: dict, rounds: int, *, samples: int = 3, target: float =
             order = names[turn % len(names):] + names[: turn % len(names)]
             turn += 1
             for name in order:
-                out[name][r] = min(out[name][r], _clock(methods[name], reps[name]))
+                out[name][r] = min(out[name][r], _clock(methods[name], reps[name], 3 * target))
     return out
 
 
