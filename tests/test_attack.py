@@ -357,13 +357,15 @@ def test_soundness_sweep(family, basis_kind, depth):
                 worst = max(worst, ch / c_in[b])
         b = int(np.argmax(c_in))
         # Few iterations keep the sweep fast; dense starts include the worst pairs.
-        for mode, restarts in (("dense", 4), ("diagonal", 2)):
-            r = atk.attack(params, spec, op, xs[b], eps, mode=mode, restarts=restarts, iters=6, seed=0)
+        # Compilation dominates the cost, so diagonal E (a second compiled
+        # objective) is attacked at depth 2 only; random diagonal draws run everywhere.
+        for mode, restarts in (("dense", 4), ("diagonal", 2))[:1 + (depth == 2)]:
+            r = atk.attack(params, spec, op, xs[b], eps, mode=mode, restarts=restarts, iters=8, seed=0)
             ch = ref_change(params, spec, s, r.e, xs[b])
             assert ch == pytest.approx(r.change, rel=1e-9)
             assert ch <= c_in[b], (eps, mode, ch, c_in[b])
             assert ch <= c_op
-        r = atk.attack(params, spec, op, xs[b], eps, mode="dense", free_input=True, rho=rho, restarts=4, iters=6)
+        r = atk.attack(params, spec, op, xs[b], eps, mode="dense", free_input=True, rho=rho, restarts=4, iters=8)
         ch = ref_change(params, spec, s, r.e, r.x)
         assert ch == pytest.approx(r.change, rel=1e-9)
         assert ch <= c_op, (eps, "free", ch, c_op)
