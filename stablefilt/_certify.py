@@ -18,7 +18,7 @@ from math import comb
 import numpy as np
 from numpy.polynomial import Chebyshev
 
-from ._errors import StablefiltError
+from ._errors import FilterError, StablefiltError
 from ._filters import Basis, basis_values, check_taps, response_derivative, run_filter
 from ._graph import ShiftOperator
 from ._interval import SpectralInterval, spectral_interval
@@ -52,9 +52,21 @@ def _allow(x, scale=1.0):
     return np.asarray(x) * (1 + REL_ALLOW) + ABS_ALLOW * scale
 
 
+def _check_interval(interval) -> tuple[float, float]:
+    """``(a, b)`` as floats, both finite with ``a <= b``."""
+    try:
+        iv = np.asarray(interval, dtype=np.float64).ravel()
+    except (TypeError, ValueError):
+        iv = np.zeros(0)
+    if iv.shape != (2,) or not np.all(np.isfinite(iv)) or iv[0] > iv[1]:
+        raise FilterError(f"the spectral interval must be two finite numbers a <= b; got {interval!r}.")
+    return float(iv[0]), float(iv[1])
+
+
 def usable_interval(a: float, b: float) -> tuple[float, float]:
     """``[a, b]``, widened around a single point so a Chebyshev basis of it
     exists (a superset stays valid)."""
+    a, b = _check_interval((a, b))
     if a < b:
         return float(a), float(b)
     w = 1e-6 * max(1.0, abs(a))
@@ -212,7 +224,7 @@ def gain_constants(taps, basis: Basis, interval) -> tuple[float, np.ndarray]:
     taps = check_taps(taps)
     cols, shape = _flat(taps)
     k = cols.shape[0]
-    a, b = usable_interval(*interval)
+    a, b = usable_interval(*_check_interval(interval))
     dmap = _linear_map(k, basis, a, b, lambda q: q.deriv(), max(k - 2, 0))
     sup_d = sup_grid_markov((dmap @ cols).T)
     sup_d = sup_d.reshape(shape) if shape else float(sup_d[0])
@@ -237,7 +249,7 @@ def filter_constants(taps, basis: Basis, interval, eigenvalues=None, *, pairwise
     taps = check_taps(taps)
     cols, shape = _flat(taps)
     k = cols.shape[0]
-    a, b = usable_interval(*interval)
+    a, b = usable_interval(*_check_interval(interval))
     lam_poly = Chebyshev([0.5 * (a + b), 0.5 * (b - a)], domain=[a, b])
 
     def sup_of(fn, deg):
@@ -365,7 +377,7 @@ def remainder(taps, basis: Basis, interval, eps: float) -> np.ndarray:
     eps = _check_eps(eps)
     cols, shape = _flat(taps)
     k = cols.shape[0]
-    a, b = float(interval[0]), float(interval[1])
+    a, b = _check_interval(interval)
     big_r = max(abs(a), abs(b))
     mid, half = 0.5 * (a + b), 0.5 * (b - a)
     d = 2.0 * eps * big_r

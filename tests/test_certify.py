@@ -295,3 +295,15 @@ def test_bad_eps_raises(eps):
             call()
         msg = str(exc.value)
         assert "\n" not in msg and msg.endswith(".") and len(msg) < 300
+
+
+@pytest.mark.parametrize("interval", [(2.0, 0.0), (0.0, np.nan), (-np.inf, 1.0), (1.0, 2.0, 3.0), ("a", "b")])
+def test_bad_interval_raises_filter_error(interval):
+    # Before: a reversed interval was silently accepted, NaN raised numpy's TypeError.
+    taps = np.array([0.1, 1.0, -0.5])
+    for call in (lambda: sf.filter_constants(taps, sf.make_basis(), interval),
+                 lambda: sf.remainder(taps, sf.make_basis(), interval, 0.1)):
+        with pytest.raises(sf.FilterError, match="interval") as exc:
+            call()
+        msg = str(exc.value)
+        assert "\n" not in msg and msg.endswith(".") and len(msg) < 300
