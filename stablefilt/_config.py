@@ -154,7 +154,7 @@ def _check(table: dict, schema: dict, where: str) -> dict:
     for key in table:
         if key not in schema:
             accepted = ", ".join(sorted(schema))
-            raise ConfigError(f"unknown key {where}{key!r}; accepted keys are {accepted}.")
+            raise ConfigError(f"unknown key '{where}{key}'; accepted keys are {accepted}.")
     for key, spec in schema.items():
         if isinstance(spec, dict):
             sub = table.get(key, {})

@@ -133,6 +133,11 @@ class Trainer:
         data = build_dataset(config)
         interval = spectral_interval(data.op)
         spec = model_spec(config, interval, data.x.shape[2], data.classes)
+        if data.node_task == (spec.readout in ("mean", "sum")):
+            want = "'node' or 'none'" if data.node_task else "'mean' or 'sum'"
+            per = "one per node" if data.node_task else "one per signal"
+            raise ConfigError(f"model.readout = {spec.readout!r} does not fit the data, whose targets are {per}; "
+                              f"use readout = {want}.")
         ordered, perm = reorder(data.op)
         x = data.x[:, perm, :]
         y = data.y[:, perm] if data.node_task else data.y
