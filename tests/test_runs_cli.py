@@ -1,0 +1,167 @@
+"""``stablefilt certify`` and ``stablefilt compare`` on finished, missing and
+half-written run directories (in-process ``stablefilt.cli.main``)."""
+
+from __future__ import annotations
+
+import csv
+import json
+import os
+import shutil
+
+import numpy as np
+import pytest
+
+from stablefilt import cli
+from stablefilt._train import open_run
+
+import _train_helpers as H
+
+
+@pytest.fixture(scope="module")
+def runs(tmp_path_factory):
+    return H.plain_run(tmp_path_factory)[1], H.penalised_run(tmp_path_factory)[1]
+
+
+def _json_out(capsys, argv):
+    capsys.readouterr()
+    assert cli.main(argv) == 0
+    out = capsys.readouterr().out
+    lines = [line for line in out.splitlines() if line.strip()]
+    assert len(lines) == 1, out  # one JSON document on one line
+    return json.loads(lines[0])
+
+
+def _one_line_exit_2(capsys, argv):
+    capsys.readouterr()
+    rc = cli.main(argv)
+    out, err = capsys.readouterr()
+    assert rc == 2, (out, err)
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in err, err
+    assert lines[0].startswith("stablefilt ") and lines[0].endswith(".")
+    return lines[0]
+
+
+# ---------------------------------------------------------------------------
+# certify
+
+
+@pytest.mark.parametrize("which", [0, 1])
+def test_certify_json_matches_summary(runs, capsys, which):
+    """The same float64 computation as the summary: equal within 1e-9."""
+    run = runs[which]
+    d = _json_out(capsys, ["certify", run, "--json"])
+    assert isinstance(d, dict)
+    summary = json.load(open(os.path.join(run, "summary.json")))["certificate"]
+    assert sorted(d["certified"]) == sorted(summary["certified"])
+    for key, v in summary["certified"].items():
+        assert d["certified"][key] == pytest.approx(v, rel=1e-9)
+        assert d["published"][key] == pytest.approx(summary["published"][key], rel=1e-9)
+    assert d["rho"] == pytest.approx(summary["rho"], rel=1e-12)
+    assert len(d["layers"]) == len(summary["layers"])
+    # The input-specific bound for the test signals is never above the
+    # operator-level one (test signals have norm <= rho).
+    for key, v in d["input_specific_test_max"].items():
+        assert v <= d["certified"][key] * (1 + 1e-9)
+
+
+def test_certify_at_a_new_eps_holds(runs, capsys):
+    """``--eps`` not in the config: the bound still covers measured changes
+    of the run's model on random relative perturbations of its graph
+    (numpy eigh reference model)."""
+    run_dir = runs[0]
+    d = _json_out(capsys, ["certify", run_dir, "--json", "--eps", "0.05"])
+    assert list(d["certified"]) == ["0.05"]
+    run = open_run(run_dir)
+    s = run.op.dense()
+    x = run.test_x.astype(np.float64)
+    rng = np.random.default_rng(4)
+
+    def model(m):
+        return H.ref_model(H.to_numpy(run.params), m, x, kind=run.spec.basis.kind, interval=run.spec.basis.interval,
+                           nonlinearity=run.spec.nonlinearity, readout=run.spec.readout)
+
+    y = model(s)
+    for _ in range(4):
+        change = H.change_norms(y, model(H.relative(s, H.random_error(rng, len(s), 0.05))))
+        assert 0 < change.max() <= d["input_specific_test_max"]["0.05"] <= d["certified"]["0.05"]
+
+
+def test_certify_text_report(runs, capsys):
+    capsys.readouterr()
+    assert cli.main(["certify", runs[0]]) == 0
+    out = capsys.readouterr().out
+    for word in ("certified", "published", "assumptions", "relative"):
+        assert word in out
+
+
+def test_certify_missing_run(tmp_path, capsys):
+    line = _one_line_exit_2(capsys, ["certify", str(tmp_path / "nowhere")])
+    assert "does not exist" in line
+
+
+def test_certify_half_written_run(runs, tmp_path, capsys):
+    """A run without params.npz (it did not finish)."""
+    half = str(tmp_path / "half")
+    shutil.copytree(runs[0], half)
+    os.remove(os.path.join(half, "params.npz"))
+    line = _one_line_exit_2(capsys, ["certify", half])
+    assert "params.npz" in line
+
+
+def test_certify_folder_that_is_no_run(tmp_path, capsys):
+    (tmp_path / "empty").mkdir()
+    line = _one_line_exit_2(capsys, ["certify", str(tmp_path / "empty")])
+    assert "manifest" in line
+
+
+# ---------------------------------------------------------------------------
+# compare
+
+
+def _first_bound(row):
+    return min(row["certified"].items(), key=lambda kv: float(kv[0]))[1]
+
+
+def test_compare_json_sorted_by_certified_bound(runs, capsys):
+    plain, pen = runs
+    orders = []
+    for argv in ([plain, pen], [pen, plain]):
+        rows = _json_out(capsys, ["compare", *argv, "--json"])
+        assert isinstance(rows, list) and len(rows) == 2 and all(isinstance(r, dict) for r in rows)
+        bounds = [_first_bound(r) for r in rows]
+        assert bounds == sorted(bounds)
+        orders.append([r["run"] for r in rows])
+        for r in rows:
+            summary = json.load(open(os.path.join(r["run"], "summary.json")))
+            assert r["certified"] == summary["certificate"]["certified"]
+            assert r["test_acc"] == summary["metrics"]["test_acc"]
+            assert r["penalty_weight"] == summary["penalty"]["weight"]
+    assert orders[0] == orders[1] == [pen, plain]  # the penalised run has the smaller bound
+
+
+def test_compare_table_and_csv(runs, tmp_path, capsys):
+    plain, pen = runs
+    path = tmp_path / "cmp.csv"
+    capsys.readouterr()
+    assert cli.main(["compare", plain, pen, "--csv", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert "tiny-penalised" in out and "tiny-plain" in out
+    assert out.index("tiny-penalised") < out.index("tiny-plain")
+    with open(path, newline="") as fh:
+        table = list(csv.reader(fh))
+    header, body = table[0], table[1:]
+    assert len(body) == 2 and [r[0] for r in body] == ["tiny-penalised", "tiny-plain"]
+    assert "certified@0.001" in header and "certified@0.01" in header
+    col = header.index("certified@0.001")
+    assert float(body[0][col]) <= float(body[1][col])
+    # Refuses to overwrite: status 2, one line, file unchanged.
+    before = (path.read_bytes(), os.stat(path).st_mtime_ns)
+    line = _one_line_exit_2(capsys, ["compare", plain, pen, "--csv", str(path)])
+    assert "exists" in line
+    assert (path.read_bytes(), os.stat(path).st_mtime_ns) == before
+
+
+def test_compare_missing_run(runs, tmp_path, capsys):
+    line = _one_line_exit_2(capsys, ["compare", runs[0], str(tmp_path / "gone")])
+    assert "gone" in line
