@@ -96,9 +96,17 @@ def _objective_grad(params, sop: JaxShift, e, x, y0, spec: ModelSpec, dense: boo
 _forward = jax.jit(forward, static_argnames=("spec",))
 
 
-def _starts(op: ShiftOperator, params, spec: ModelSpec, eps: float, dense: bool, restarts: int, rng):
+def _starts(op: ShiftOperator, params, spec: ModelSpec, eps: float, dense: bool, restarts: int, rng,
+            x_fixed: np.ndarray | None = None):
     """``(name, E0, X0)`` per restart; ``X0`` is the input direction that goes
-    with ``E0`` (unit norm, used when the input is free) or None."""
+    with ``E0`` (unit norm, used when the input is free) or None.
+
+    The pair starts are ranked by the first layer's first-order change
+    (theory.md s. 4): with ``x_fixed`` given, on that input, whose spectral
+    coefficients ``xt = V^T x`` decide which pair moves it (a pair that misses
+    the input moves it only at second order, and with repeated eigenvalues
+    many pairs tie on ``|Gamma_ij|`` alone); otherwise by ``|Gamma_ij|``
+    (Frobenius norm over the bank), the input then being free to follow."""
     n = op.nodes
     out = [("scaling+", np.full(n, eps), None), ("scaling-", np.full(n, -eps), None)]
     if dense and n <= 600:
@@ -108,8 +116,18 @@ def _starts(op: ShiftOperator, params, spec: ModelSpec, eps: float, dense: bool,
         taps = np.asarray(params["layers"][0]["taps"], dtype=np.float64)
         cols = taps.reshape(taps.shape[0], -1)
         gam = (w[:, None] + w[None, :]) * _divided(cols, w, spec.basis)  # (F_in F_out, N, N)
-        g = np.sqrt(np.sum(gam**2, axis=0))
-        for idx in np.argsort(g, axis=None)[::-1][:2]:
+        if x_fixed is None:
+            g = np.sqrt(np.sum(gam**2, axis=0))
+        else:
+            # E~ = e_i e_j^T + e_j e_i^T moves row i of V^T Y by G_ij^T xt_j and
+            # row j by G_ij^T xt_i (G symmetric in i, j); E~ = e_i e_i^T (norm 1,
+            # half the pair's) moves row i by G_ii^T xt_i. Scores are per unit ||E||.
+            xt = v.T @ np.asarray(x_fixed, dtype=np.float64)  # (N, F_in)
+            t = np.einsum("foij,jf->ijo", gam.reshape(*taps.shape[1:], n, n), xt)
+            t2 = np.sum(t**2, axis=2)
+            g = np.sqrt(t2 + t2.T)
+            g[np.diag_indices(n)] = np.sqrt(np.diag(t2))
+        for idx in np.argsort(g, axis=None, kind="stable")[::-1][:2]:
             i, j = divmod(int(idx), n)
             e = np.outer(v[:, i], v[:, j])
             # The pair's construction acts on x = v_j u^T: the first layer's
@@ -151,7 +169,8 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
         x0 = x0 * (rho / jnp.maximum(jnp.linalg.norm(x0), 1e-30))
     y0 = _forward(params, sop, x0[None], spec)
     best = None
-    for name, e0, xs in _starts(op, params, spec, eps, dense, restarts, rng):
+    fixed = None if free_input else np.asarray(x, dtype=np.float64)
+    for name, e0, xs in _starts(op, params, spec, eps, dense, restarts, rng, fixed):
         e = jnp.asarray(np.diag(e0) if (dense and e0.ndim == 1) else e0, jnp.float32)
         xc = jnp.asarray(rho * xs, jnp.float32) if (free_input and xs is not None) else x0
         hist = []
