@@ -52,7 +52,8 @@ def _table(rows, header) -> str:
     return "\n".join(lines)
 
 
-def _print_certificate(cert, out=sys.stdout) -> None:
+def _print_certificate(cert, out=None) -> None:
+    out = out or sys.stdout  # looked up at call time: callers may redirect sys.stdout
     d = cert.as_dict()
     c = cert.constants
     print(f"graph: {cert.nodes} nodes; spectral interval [{cert.interval.lower:.6g}, {cert.interval.upper:.6g}] "
@@ -206,8 +207,17 @@ def compare_rows(paths) -> list[dict]:
 
 def cmd_compare(args) -> int:
     rows = compare_rows(args.runs)
-    if args.csv and os.path.exists(args.csv):
-        raise UsageError(f"--csv {args.csv!r} already exists; choose a new file name")
+    csv_file = None
+    if args.csv:
+        # Opened (exclusively) before anything is printed, so a bad path is
+        # one error with nothing on stdout, and no existing file is touched.
+        try:
+            csv_file = open(args.csv, "x", newline="")
+        except FileExistsError:
+            raise UsageError(f"--csv {args.csv!r} already exists; choose a new file name") from None
+        except OSError as exc:
+            raise UsageError(f"--csv {args.csv!r} cannot be created ({exc.strerror or type(exc).__name__}); "
+                             "give a new file in an existing, writable folder") from None
     eps = sorted({k for r in rows for k in r["certified"]}, key=float)
     depth = max(len(r["layers"]) for r in rows)
     header = ["run", "penalty", "test metric"] + [f"IL layer {i + 1}" for i in range(depth)]
@@ -227,10 +237,10 @@ def cmd_compare(args) -> int:
         sys.stdout.write("\n")
     else:
         print(_table(table, header))
-    if args.csv:
+    if csv_file is not None:
         import csv
 
-        with open(args.csv, "x", newline="") as fh:
+        with csv_file as fh:
             w = csv.writer(fh)
             w.writerow(header)
             w.writerows(table)

@@ -99,8 +99,6 @@ def test_json_shape_and_soundness(files, capsys, filt, shift):
             assert change(s, relative(s, e), taps, kind, interval) <= b["certified"]
 
 
-@pytest.mark.xfail(strict=True, reason="cli.py binds sys.stdout as a default argument of _print_certificate at "
-                                       "import, so the table ignores a redirected sys.stdout (cli.py is not ours)")
 def test_table_goes_to_the_current_stdout(files, capsys):
     d, _ = files
     code, out, err = _run(["bound", d / "g.npz", d / "mono.npz", "--eps", "0.01"], capsys)
