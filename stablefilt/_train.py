@@ -313,8 +313,8 @@ def train(config: Config, out: str, *, epochs: int | None = None, seed: int | No
         save_graph(os.path.join(out, "graph.npz"), trainer.data.op.matrix)
         te = trainer.data.test
         atomic_write(os.path.join(out, "test.npz"), npz_bytes({"x": trainer.data.x[te], "y": trainer.data.y[te]}))
-        if os.path.exists(paths["log"]):
-            os.replace(paths["log"], paths["log"] + ".previous")
+        for k in ("log", "ckpt", "params", "summary"):
+            _set_aside(paths[k])
         manifest = {
             "format": FORMAT,
             "name": config.name,
@@ -384,6 +384,20 @@ def train(config: Config, out: str, *, epochs: int | None = None, seed: int | No
             progress(f"early stop: validation {mname} did not improve for {patience} epochs")
             break
     return finish(trainer, best, evaluate, out, manifest, paths, epoch)
+
+
+def _set_aside(path: str) -> None:
+    """Rename an earlier run's file (``--force``) to the first free
+    ``<name>.previous``, ``<name>.previous.2``, ...: results are kept, never
+    overwritten, and a crashed new run cannot be resumed from the old
+    checkpoint."""
+    if not os.path.exists(path):
+        return
+    target, k = path + ".previous", 1
+    while os.path.exists(target):
+        k += 1
+        target = f"{path}.previous.{k}"
+    os.replace(path, target)
 
 
 def read_manifest_or_empty(path: str) -> dict:
@@ -464,18 +478,47 @@ def open_run(path: str) -> Run:
     if op.fingerprint() != manifest.get("graph", {}).get("fingerprint"):
         raise RunError(f"run graph in {path!r} does not match the fingerprint in its manifest.")
     test = load_npz(os.path.join(path, "test.npz"), "run test data")
+    tpath = os.path.join(path, "test.npz")
     if "x" not in test or "y" not in test:
-        raise RunError(f"run test data in {path!r} lacks x or y.")
-    iv = manifest.get("spectral_interval")
-    b = manifest.get("basis", {})
-    basis = Basis("chebyshev", tuple(b["interval"])) if b.get("kind") == "chebyshev" else Basis()
-    m = config["model"]
-    spec = spec_from(m, basis, int(test["x"].shape[2]), int(manifest.get("classes", 1)))
-    del iv
+        raise RunError(f"run test data {tpath!r} lacks x or y.")
+    tx, ty = test["x"], test["y"]
+    if (tx.ndim != 3 or tx.shape[0] == 0 or tx.shape[1] != op.nodes or not np.issubdtype(tx.dtype, np.floating)
+            or not np.all(np.isfinite(tx))):
+        raise RunError(f"run test data {tpath!r}: x must be finite real signals of shape (signals, {op.nodes}, "
+                       f"features); got {tx.dtype} of shape {tx.shape}.")
+    if ty.ndim < 1 or ty.shape[0] != tx.shape[0]:
+        raise RunError(f"run test data {tpath!r}: y must hold one target per signal of x ({tx.shape[0]}); "
+                       f"got shape {ty.shape}.")
+    spec = spec_from(config["model"], _manifest_basis(manifest, path), int(tx.shape[2]), _manifest_classes(manifest, path))
     ppath = os.path.join(path, "params.npz")
     if not os.path.isfile(ppath):
         raise RunError(f"run {path!r} has no params.npz; it did not finish (resume it with --resume).")
     params = arrays_to_params(load_npz(ppath, "run parameters"), init_params(spec, 0), f"parameters in {path!r}")
     spath = os.path.join(path, "summary.json")
     summary = read_json(spath, "run summary") if os.path.exists(spath) else None
-    return Run(path, config, manifest, summary, op, spec, params, test["x"], test["y"])
+    return Run(path, config, manifest, summary, op, spec, params, tx, ty)
+
+
+def _manifest_basis(manifest: dict, path: str) -> Basis:
+    """The filter basis a run's manifest records, checked."""
+    b = manifest.get("basis", {})
+    kind = b.get("kind") if isinstance(b, dict) else None
+    if kind == "monomial":
+        return Basis()
+    iv = b.get("interval") if kind == "chebyshev" else None
+    try:
+        lo, hi = (float(v) for v in iv)
+        ok = np.isfinite(lo) and np.isfinite(hi) and lo < hi
+    except (TypeError, ValueError):
+        ok = False
+    if not ok:
+        raise RunError(f"run manifest in {path!r}: basis must be monomial, or chebyshev with an interval of two "
+                       f"finite numbers a < b; got {b!r}.")
+    return Basis("chebyshev", (lo, hi))
+
+
+def _manifest_classes(manifest: dict, path: str) -> int:
+    c = manifest.get("classes", 1)
+    if isinstance(c, bool) or not isinstance(c, int) or c < 1:
+        raise RunError(f"run manifest in {path!r}: classes must be a positive integer; got {c!r}.")
+    return c

@@ -18,10 +18,6 @@ folder there, runs ``stablefilt.cli.main`` in-process and checks:
   command line would have printed as extra stderr lines (numpy casts and the
   like; hidden-by-default categories excluded, as the interpreter does);
 - the snapshot is unchanged: same paths, same bytes, same mtimes.
-
-Cases marked xfail(strict=True) are bugs in files this test's author may not
-change (cli.py, _train.py); the reason names the behaviour. Strict, so a fix
-turns them into failures that ask for the mark to go.
 """
 
 from __future__ import annotations
@@ -247,8 +243,6 @@ class Case(NamedTuple):
     expect: tuple  # substrings of the one stderr line
 
 
-BUG_CLI = "bug in cli.py (not this test's to fix)"
-BUG_TRAIN = "bug in _train.py open_run (not this test's to fix)"
 
 CASES = [
     # --- graph files (bound) -------------------------------------------------
@@ -450,12 +444,9 @@ CASES = [
          ("config.toml", "not valid TOML")),
     Case("certify-test-missing", in_run(lambda p: (p / "test.npz").unlink()), ["certify", "run"],
          ("test.npz", "missing")),
-    pytest.param(Case("certify-test-x-2d", in_run(flat_test_x), ["certify", "run"], ("test.npz",)),
-                 marks=pytest.mark.xfail(strict=True, reason=BUG_TRAIN + ": 2-D test x -> IndexError traceback")),
-    pytest.param(Case("certify-manifest-basis-no-interval", in_run(basis_no_interval), ["certify", "run"],
-                      ("manifest",)),
-                 marks=pytest.mark.xfail(strict=True, reason=BUG_TRAIN + ": chebyshev basis without interval -> "
-                                                                         "KeyError traceback")),
+    Case("certify-test-x-2d", in_run(flat_test_x), ["certify", "run"], ("test.npz", "shape (signals, 30")),
+    Case("certify-manifest-basis-no-interval", in_run(basis_no_interval), ["certify", "run"],
+         ("manifest", "chebyshev with an interval")),
     Case("certify-eps-nan", in_run(lambda p: None), ["certify", "run", "--eps", "nan"], ("--eps", "finite")),
     Case("stress-missing-run", nothing, ["stress", "nowhere"], ("'nowhere'", "does not exist")),
     Case("stress-half-written", in_run(lambda p: (p / "params.npz").unlink()), ["stress", "run"],
@@ -475,10 +466,8 @@ CASES = [
          ["compare", "run"], ("'run'", "lacks the fields")),
     Case("compare-csv-exists", both(in_run(lambda p: None), text("table.csv", "mine\n")),
          ["compare", "run", "--csv", "table.csv"], ("--csv", "'table.csv'", "already exists")),
-    pytest.param(Case("compare-csv-missing-folder", in_run(lambda p: None),
-                      ["compare", "run", "--csv", "nowhere/table.csv"], ("'nowhere/table.csv'",)),
-                 marks=pytest.mark.xfail(strict=True, reason=BUG_CLI + ": FileNotFoundError traceback after the "
-                                                                       "table was printed")),
+    Case("compare-csv-missing-folder", in_run(lambda p: None), ["compare", "run", "--csv", "nowhere/table.csv"],
+         ("--csv", "'nowhere/table.csv'", "cannot be created")),
     Case("resume-other-seed", both(in_run(lambda p: None), text("c.toml", TINY)),
          ["train", "c.toml", "--out", "run", "--resume", "--seed", "7"], ("'run'", "another graph or seed")),
     Case("resume-checkpoint-truncated", both(in_run(lambda p: (p / "checkpoint.npz").write_bytes(

@@ -373,16 +373,18 @@ def test_force_keeps_the_old_log(tmp_path, finished, capsys):
     run = tmp_path / "run"
     shutil.copytree(finished, run)
     old_log = (run / "log.jsonl").read_bytes()
+    old = {f: (run / f).read_bytes() for f in ("checkpoint.npz", "params.npz", "summary.json")}
     (tmp_path / "c.toml").write_text(tiny(epochs=3))
     assert main(["train", str(tmp_path / "c.toml"), "--out", str(run), "--force"]) == 0
     capsys.readouterr()
     assert (run / "log.jsonl.previous").read_bytes() == old_log
+    # The earlier run's results are set aside too, not overwritten.
+    for f, data in old.items():
+        assert (run / f"{f}.previous").read_bytes() == data, f
     with open(run / "log.jsonl") as fh:
         assert [json.loads(line)["epoch"] for line in fh] == [1, 2, 3]
 
 
-@pytest.mark.xfail(strict=True, reason="bug in _train.py: a second --force renames log.jsonl over "
-                                       "log.jsonl.previous, so the first run's log is lost")
 def test_second_force_keeps_the_first_log(tmp_path, finished, capsys):
     run = tmp_path / "run"
     shutil.copytree(finished, run)
