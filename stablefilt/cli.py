@@ -320,7 +320,11 @@ def cmd_stress(args) -> int:
 def cmd_demo(args) -> int:
     from .demo import run_demo
 
-    return run_demo(args.out)
+    if args.epochs is not None and args.epochs < 1:
+        raise UsageError(f"--epochs must be at least 1; got {args.epochs}")
+    if args.out and os.path.exists(args.out) and not os.path.isdir(args.out):
+        raise UsageError(f"--out {args.out!r} is a file; expected a folder for the demo's runs")
+    return run_demo(args.out, args.epochs)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -371,6 +375,7 @@ def build_parser() -> argparse.ArgumentParser:
     st.set_defaults(func=cmd_stress)
     d = sub.add_parser("demo", help="train the orchard demo with and without the penalty and compare")
     d.add_argument("--out", help="folder for the two runs (default runs/demo-<time>)")
+    d.add_argument("--epochs", type=int, help="train each run this many epochs instead of the configs' 40")
     d.set_defaults(func=cmd_demo)
     return p
 

@@ -13,20 +13,30 @@ from ._train import train
 CONFIGS = ("configs/demo.toml", "configs/no-penalty.toml")
 
 
-def run_demo(out: str | None = None) -> int:
+def _find(config: str) -> str:
+    """``config`` under the working folder, else under the source tree this
+    package was installed from (``pip install -e``), so the demo runs from
+    any folder."""
+    for base in (os.getcwd(), os.path.dirname(os.path.dirname(os.path.abspath(__file__)))):
+        path = os.path.join(base, config)
+        if os.path.isfile(path):
+            return os.path.relpath(path) if base == os.getcwd() else path
+    raise ConfigError(f"demo config {config!r} not found in this folder or beside the installed package; "
+                      "run the demo from the project folder.")
+
+
+def run_demo(out: str | None = None, epochs: int | None = None) -> int:
     from .cli import cmd_compare
 
-    for c in CONFIGS:
-        if not os.path.isfile(c):
-            raise ConfigError(f"demo config {c!r} not found; run the demo from the project folder.")
+    configs = [_find(c) for c in CONFIGS]
     stamp = datetime.datetime.now().strftime("%Y%m%d-%H%M%S")
     out = out or os.path.join("runs", f"demo-{stamp}")
     runs = []
-    for c in CONFIGS:
+    for c in configs:
         config = load_config(c)
         path = os.path.join(out, config.name)
         print(f"== training {config.name} ({c}) into {path}", flush=True)
-        train(config, path, progress=_every(10))
+        train(config, path, epochs=epochs, progress=_every(10))
         runs.append(path)
     print("\n== comparison (test accuracy vs certified bound for inputs with ||x|| <= rho)")
 
