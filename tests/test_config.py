@@ -9,14 +9,13 @@ import os
 import subprocess
 import sys
 
+import _train_helpers as H
 import pytest
 
 from stablefilt import cli
 from stablefilt._config import load_config, parse_config
 from stablefilt._data import build_dataset
 from stablefilt._errors import ConfigError
-
-import _train_helpers as H
 
 ACCEPTED = {
     "": ["certify", "data", "model", "name", "penalty", "train"],

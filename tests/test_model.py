@@ -10,6 +10,7 @@ from __future__ import annotations
 import dataclasses
 import itertools
 
+import _train_helpers as H
 import jax
 import jax.numpy as jnp
 import networkx as nx
@@ -23,8 +24,6 @@ from stablefilt._interval import spectral_interval
 from stablefilt._model import ModelSpec, forward, forward_np, init_params
 from stablefilt._modelcert import certify_inputs, certify_model
 from stablefilt._sparse import jax_operator
-
-import _train_helpers as H
 
 NONLINS = ("relu", "leaky_relu", "tanh", "none")
 READOUTS = ("node", "mean", "sum", "none")

@@ -7,6 +7,7 @@ polyder/polyval, chebder/chebval; numpy.linalg.eigh/lstsq) on the same grid:
 
 from __future__ import annotations
 
+import _train_helpers as H
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -16,8 +17,6 @@ import pytest
 from stablefilt._errors import ConfigError
 from stablefilt._filters import Basis
 from stablefilt._penalty import find_taps, model_penalty, penalty, stability_penalty
-
-import _train_helpers as H
 
 GRID = 101
 PAIR = 40  # below the pairwise grid cap, so the reference grid is the same

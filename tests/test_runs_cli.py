@@ -8,13 +8,12 @@ import json
 import os
 import shutil
 
+import _train_helpers as H
 import numpy as np
 import pytest
 
 from stablefilt import cli
 from stablefilt._train import open_run
-
-import _train_helpers as H
 
 
 @pytest.fixture(scope="module")

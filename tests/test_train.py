@@ -14,6 +14,7 @@ import math
 import os
 import shutil
 
+import _train_helpers as H
 import jax
 import networkx as nx
 import numpy as np
@@ -25,8 +26,6 @@ from stablefilt._config import load_config, parse_config
 from stablefilt._model import init_params
 from stablefilt._runs import load_checkpoint, read_log
 from stablefilt._train import Trainer, build_step, open_run, train
-
-import _train_helpers as H
 
 CompileCounter = H.CompileCounter
 
