@@ -3,9 +3,8 @@ from numpy and numpy.polynomial only (nothing from stablefilt), relative
 perturbations of dense shift operators, and tiny run configs.
 
 References
-- Frequency responses: ``numpy.polynomial.polynomial.polyval`` / ``polyder``
-  and ``numpy.polynomial.chebyshev.chebval`` / ``chebder`` of the mapped
-  variable ``t = (2 lam - a - b) / (b - a)``.
+- Frequency responses: tests/reference.py (``numpy.polynomial`` polyval /
+  polyder, chebval / chebder of the mapped variable).
 - A filter bank on a graph: ``Y[:, g] = sum_f V h_fg(Lambda) V^T X[:, f]``
   from ``numpy.linalg.eigh`` (spectral calculus; common practice).
 - A GNN: ``x_l = sigma(H_l(S) x_{l-1} + b_l)`` and a linear readout, written
@@ -18,53 +17,7 @@ import os
 import textwrap
 
 import numpy as np
-from numpy.polynomial import chebyshev as npcheb
-from numpy.polynomial import polynomial as nppoly
-
-# ---------------------------------------------------------------------------
-# Polynomial references.
-
-
-def response(c, lam, kind="monomial", interval=None):
-    """``h(lam)`` for 1-D taps ``c``; reference: polyval / chebval."""
-    lam = np.asarray(lam, dtype=np.float64)
-    c = np.asarray(c, dtype=np.float64)
-    if kind == "monomial":
-        return nppoly.polyval(lam, c)
-    a, b = interval
-    return npcheb.chebval((2 * lam - a - b) / (b - a), c)
-
-
-def derivative(c, lam, kind="monomial", interval=None):
-    """``h'(lam)``; reference: polyder / chebder (times ``dt/dlam``)."""
-    lam = np.asarray(lam, dtype=np.float64)
-    c = np.asarray(c, dtype=np.float64)
-    if c.size < 2:
-        return np.zeros_like(lam)
-    if kind == "monomial":
-        return nppoly.polyval(lam, nppoly.polyder(c))
-    a, b = interval
-    return (2.0 / (b - a)) * npcheb.chebval((2 * lam - a - b) / (b - a), npcheb.chebder(c))
-
-
-def bank_response(taps, lam, kind="monomial", interval=None):
-    """``H(lam)``, shape ``lam.shape + taps.shape[1:]``, filter by filter."""
-    taps = np.asarray(taps, dtype=np.float64)
-    lam = np.asarray(lam, dtype=np.float64)
-    out = np.empty(lam.shape + taps.shape[1:])
-    for idx in np.ndindex(*taps.shape[1:]):
-        out[(...,) + idx] = response(taps[(slice(None),) + idx], lam, kind, interval)
-    return out
-
-
-def bank_derivative(taps, lam, kind="monomial", interval=None):
-    taps = np.asarray(taps, dtype=np.float64)
-    lam = np.asarray(lam, dtype=np.float64)
-    out = np.empty(lam.shape + taps.shape[1:])
-    for idx in np.ndindex(*taps.shape[1:]):
-        out[(...,) + idx] = derivative(taps[(slice(None),) + idx], lam, kind, interval)
-    return out
-
+from reference import bank_derivative, bank_response, derivative, response  # noqa: F401 (re-exported as H.*)
 
 # ---------------------------------------------------------------------------
 # Reference GNN (numpy.linalg.eigh, spectral calculus).

@@ -51,14 +51,24 @@ def second_derivative(c, lam, kind="monomial", interval=None):
     return (2.0 / (b - a)) ** 2 * npcheb.chebval((2 * lam - a - b) / (b - a), npcheb.chebder(c, 2))
 
 
-def bank_response(taps, lam, kind="monomial", interval=None):
-    """``H(lam)`` of shape ``lam.shape + taps.shape[1:]``, filter by filter."""
+def _per_filter(fn, taps, lam, kind, interval):
+    """``fn`` applied filter by filter of a bank: shape ``lam.shape + taps.shape[1:]``."""
     taps = np.asarray(taps, dtype=np.float64)
     lam = np.asarray(lam, dtype=np.float64)
     out = np.empty(lam.shape + taps.shape[1:])
     for idx in np.ndindex(*taps.shape[1:]):
-        out[(...,) + idx] = response(taps[(slice(None),) + idx], lam, kind, interval)
+        out[(...,) + idx] = fn(taps[(slice(None),) + idx], lam, kind, interval)
     return out
+
+
+def bank_response(taps, lam, kind="monomial", interval=None):
+    """``H(lam)`` of shape ``lam.shape + taps.shape[1:]``, filter by filter."""
+    return _per_filter(response, taps, lam, kind, interval)
+
+
+def bank_derivative(taps, lam, kind="monomial", interval=None):
+    """``H'(lam)``, shapes as :func:`bank_response`."""
+    return _per_filter(derivative, taps, lam, kind, interval)
 
 
 def filter_matrices(s, taps, kind="monomial", interval=None):
