@@ -16,13 +16,13 @@ import dataclasses
 from math import comb
 
 import numpy as np
-from numpy.polynomial import Chebyshev
 
 from ._errors import FilterError, StablefiltError
+from ._exact import UNIT, kernel_transform, power_map, product_error, response_map
 from ._filters import Basis, basis_values, check_taps, response_derivative, run_filter
 from ._graph import ShiftOperator
 from ._interval import SpectralInterval, spectral_interval
-from ._kernel import ABS_ALLOW, REL_ALLOW, as_series, kernel_matrix, monomial_coefficients, shifted_coefficients
+from ._kernel import ABS_ALLOW, REL_ALLOW
 
 #: Grid for the rigorous grid-plus-Markov suprema (docs/theory.md section 6).
 SUP_GRID = 4097
@@ -77,30 +77,22 @@ def usable_interval(a: float, b: float) -> tuple[float, float]:
 # Series on an interval, vectorised over the filters of a bank.
 
 
-def _unit_series(k: int, basis: Basis):
-    for j in range(k):
-        e = np.zeros(k)
-        e[j] = 1.0
-        yield as_series(e, basis)
+def _coefficients(k, basis, a, b, what, cols):
+    """Chebyshev-on-``[a, b]`` coefficients ``(F, deg + 1)`` of ``h``,
+    ``h'`` or ``lam h'`` (``what``) for each column of taps, and a bound on
+    their float64 error (exact change of basis: :mod:`stablefilt._exact`)."""
+    m = response_map(k, basis, float(a), float(b), what)
+    return (m @ cols).T, product_error(m, cols).T
 
 
-def _linear_map(k, basis, a, b, fn, deg):
-    """``(deg + 1, k)`` matrix taking taps to the Chebyshev-on-[a, b]
-    coefficients of ``fn(h)``; ``fn`` is linear in ``h`` and gets ``h`` as a
-    Chebyshev series of ``[a, b]``."""
-    out = np.zeros((deg + 1, k))
-    for j, q in enumerate(_unit_series(k, basis)):
-        c = fn(q.convert(kind=Chebyshev, domain=[a, b])).convert(kind=Chebyshev, domain=[a, b]).coef
-        out[: len(c), j] = c[: deg + 1]
-    return out
-
-
-def sup_grid_markov(coef: np.ndarray, grid: int = SUP_GRID) -> np.ndarray:
+def sup_grid_markov(coef: np.ndarray, err=None, grid: int = SUP_GRID) -> np.ndarray:
     """Rigorous ``sup_{[a, b]} |q|`` for Chebyshev coefficients ``coef``
     (last axis) of the interval: ``max_grid |q| + (h/2) sup |q'|`` with
     ``sup |q'| <= (2/(b-a)) sum_k k^2 |c_k|`` (Markov's inequality per term;
     docs/theory.md section 6), i.e. ``+ sum_k k^2 |c_k| / (grid - 1)``, plus a
-    round-off allowance."""
+    round-off allowance. ``err`` (same shape as ``coef``) bounds how far the
+    given coefficients may be from the exact ones; since ``|T_k| <= 1`` on the
+    interval, ``sum_k err_k`` is added."""
     coef = np.asarray(coef, dtype=np.float64)
     d = coef.shape[-1]
     t = np.linspace(-1.0, 1.0, grid)
@@ -109,7 +101,8 @@ def sup_grid_markov(coef: np.ndarray, grid: int = SUP_GRID) -> np.ndarray:
     k2 = np.arange(d) ** 2
     markov = np.sum(k2 * np.abs(coef), axis=-1) / (grid - 1)
     l1 = np.sum(np.abs(coef), axis=-1)
-    return _allow(vals.max(axis=-1) + markov, l1)
+    extra = 0.0 if err is None else np.sum(err, axis=-1)
+    return _allow(vals.max(axis=-1) + markov + extra, l1)
 
 
 def _flat(taps):
@@ -181,12 +174,16 @@ def _product_tensor(k: int) -> np.ndarray:
 
 
 def _kernels(cols, basis, splits):
-    """Kernel matrices ``(F, K, K)`` of each column of taps, per split."""
-    k, f = cols.shape
+    """Per split, ``(M, dM)``: the kernel matrices ``(F, K, K)`` of each
+    column of taps (docs/theory.md section 4; exact change of basis) and an
+    entrywise bound ``dM`` on their float64 error."""
+    k = cols.shape[0]
     out = []
     for split in splits:
-        t = np.stack([kernel_matrix(q, k, split) for q in _unit_series(k, basis)], axis=-1)
-        out.append(np.einsum("abj,jf->fab", t, cols))
+        t = kernel_transform(k, basis, split)
+        m = np.einsum("abj,jf->fab", t, cols)
+        dm = 2.0 * (k + 2) * UNIT * np.einsum("abj,jf->fab", np.abs(t), np.abs(cols))
+        out.append((m, dm))
     return out
 
 
@@ -197,21 +194,77 @@ def _psd_parts(m):
     return plus, minus
 
 
+def _abs_kernel(m, dm):
+    """``|M| = M_+ + M_-`` ``(F, K, K)`` and, per filter, a bound on
+    ``|| |M| - |M_exact| ||_2``: ``sqrt(2) ||dM||_F`` (the matrix absolute
+    value is sqrt(2)-Lipschitz in the Frobenius norm: Araki and Yamagami,
+    Comm. Math. Phys. 81, 1981) plus ``4 K^2 u ||M||_F`` for the
+    eigendecomposition (backward stable; common practice)."""
+    plus, minus = _psd_parts(m)
+    k = m.shape[-1]
+    err = np.sqrt(2.0) * np.linalg.norm(dm, axis=(1, 2)) + 4.0 * k * k * UNIT * np.linalg.norm(m, axis=(1, 2))
+    return plus + minus, err
+
+
+def eigenvalue_slack(lam) -> float:
+    """How far computed eigenvalues of a symmetric matrix may be from the true
+    ones: ``8 N u max |lam|`` (a backward-stable eigensolver returns the exact
+    eigenvalues of ``S + dS`` with ``||dS||_2`` a modest multiple of
+    ``N u ||S||_2``, and Weyl's inequality moves each by at most ``||dS||_2``;
+    the constant 8 is common practice)."""
+    lam = np.asarray(lam, dtype=np.float64)
+    return 8.0 * lam.size * UNIT * float(np.max(np.abs(lam))) if lam.size else 0.0
+
+
+def _basis_sizes(k, split, lam, slack):
+    """Bounds ``(P, D)`` on ``|p_a|`` and ``|p_a'|`` within ``slack`` of the
+    points ``lam``: Chebyshev of ``[a, b]``: ``|T_a'| <= a^2`` in the mapped
+    variable (Markov), so ``D_a = 2 a^2 / (b - a)`` and ``P_a = 1`` inside;
+    monomials: ``P_a = R^a``, ``D_a = a R^(a-1)``, ``R = max |lam| + slack``."""
+    ka = np.arange(k, dtype=np.float64)
+    if split.kind == "monomial":
+        r = float(np.max(np.abs(lam))) + slack
+        return r**ka, ka * r ** np.maximum(ka - 1, 0)
+    lo, hi = split.interval
+    d = 2.0 * ka**2 / (hi - lo)
+    out = max(0.0, float(np.max(lam)) + slack - hi, lo - float(np.min(lam)) + slack)
+    return 1.0 + d * out, d
+
+
+def _quad_upper(phi, absm, err, split=None, lam=None, slack=0.0):
+    """Upper bounds ``(F, N)`` on ``phi_i^T |M_exact| phi_i`` at points with
+    basis values ``phi`` ``(N, K)``: the float value plus ``err ||phi_i||^2``,
+    round-off in the sum (``2 K u |phi|^T |A| |phi|``) and in ``phi`` itself
+    (``2 K^2 u ||A||_F ||phi_i||^2``), and, for points ``lam`` known only to
+    within ``slack`` (computed eigenvalues), ``slack sup |q'| <= slack 2 D^T |A| P``."""
+    k = phi.shape[-1]
+    q = np.einsum("ia,fab,ib->fi", phi, absm, phi, optimize=True)
+    aq = np.einsum("ia,fab,ib->fi", np.abs(phi), np.abs(absm), np.abs(phi), optimize=True)
+    n2 = np.sum(phi**2, axis=-1)
+    fro = np.linalg.norm(absm, axis=(1, 2))
+    out = np.maximum(q, 0) + (err + 2.0 * k * k * UNIT * fro)[:, None] * n2[None] + 2.0 * k * UNIT * aq
+    if slack > 0:
+        pa, da = _basis_sizes(k, split, lam, slack)
+        move = slack * 2.0 * np.einsum("a,fab,b->f", da, np.abs(absm), pa) + (err + 2.0 * k * k * UNIT * fro) * (
+            2.0 * slack * float(np.linalg.norm(pa) * np.linalg.norm(da)))
+        out = out + move[:, None]
+    return out
+
+
 def _bank_sup(cols, shape, basis, a, b, grid=SUP_GRID):
     """Rigorous ``sup_[a,b] ||H(lam)||_2`` for a bank: the spectral norm of
     the matrix of per-filter grid values, plus the per-filter Markov terms
     bound it (``||A + D||_2 <= ||A||_2 + ||D||_F``)."""
     k = cols.shape[0]
-    hmap = _linear_map(k, basis, a, b, lambda q: q, k - 1)
-    coef = (hmap @ cols).T  # (F, K)
+    coef, cerr = _coefficients(k, basis, a, b, "h", cols)  # (F, K)
     if len(shape) != 2:
-        return float(sup_grid_markov(coef).max())
+        return float(sup_grid_markov(coef, err=cerr).max())
     t = np.linspace(-1.0, 1.0, grid)
     v = np.polynomial.chebyshev.chebvander(t, k - 1)
     vals = (v @ coef.T).reshape(grid, *shape)
     top = float(np.max(np.linalg.norm(vals, ord=2, axis=(1, 2))))
     k2 = np.arange(k) ** 2
-    markov = np.sum(k2 * np.abs(coef), axis=-1) / (grid - 1)
+    markov = np.sum(k2 * np.abs(coef), axis=-1) / (grid - 1) + np.sum(cerr, axis=-1)
     l1 = np.sum(np.abs(coef), axis=-1)
     return float(_allow(top + np.linalg.norm(markov), np.linalg.norm(l1)))
 
@@ -225,10 +278,37 @@ def gain_constants(taps, basis: Basis, interval) -> tuple[float, np.ndarray]:
     cols, shape = _flat(taps)
     k = cols.shape[0]
     a, b = usable_interval(*_check_interval(interval))
-    dmap = _linear_map(k, basis, a, b, lambda q: q.deriv(), max(k - 2, 0))
-    sup_d = sup_grid_markov((dmap @ cols).T)
+    sup_d = sup_grid_markov(*_coefficients(k, basis, a, b, "deriv", cols))
     sup_d = sup_d.reshape(shape) if shape else float(sup_d[0])
     return _bank_sup(cols, shape, basis, a, b), sup_d
+
+
+def _direct_split(lam, k, split, m, dm, slack=0.0):
+    """``max_i (|Gamma|)_ii`` per filter, ``|Gamma|`` the matrix absolute
+    value of ``Gamma = Phi M Phi^T`` at the eigenvalues (the Schur argument of
+    docs/theory.md section 5 item 2 applied to the ``N x N`` kernel itself),
+    with ``Phi`` the Chebyshev basis of the interval (values in [-1, 1]; the
+    monomial basis cancels badly away from 0), plus a bound on the float64
+    error: ``||Gamma - Gamma_float||_F`` (``dM``, the sums, and ``Phi``) and
+    ``8 N u ||Gamma||_F`` for the eigendecomposition. Since
+    ``||E o D||_2 <= ||E||_2 ||D||_2`` for Hadamard products (Horn & Johnson,
+    "Topics in Matrix Analysis", 1991, ch. 5; from memory), an error ``D``
+    in ``Gamma`` moves the bound by at most ``||D||_2``. Eigenvalues known
+    to within ``slack`` move each entry by at most ``2 slack D^T |M| P``
+    (:func:`_basis_sizes`)."""
+    phi = basis_values(lam, k, split)  # (N, K)
+    n = lam.size
+    g = np.einsum("ia,fab,jb->fij", phi, m, phi, optimize=True)
+    ag = np.einsum("ia,fab,jb->fij", np.abs(phi), np.abs(m), np.abs(phi), optimize=True)
+    gp, gm = _psd_parts(g)
+    direct = np.diagonal(gp + gm, axis1=1, axis2=2).max(axis=1)
+    n2 = float(np.sum(phi**2))
+    scale_m = np.linalg.norm(dm, axis=(1, 2)) + 2.0 * k * k * UNIT * np.linalg.norm(m, axis=(1, 2))
+    err = scale_m * n2 + 2.0 * k * UNIT * np.linalg.norm(ag, axis=(1, 2)) + 8.0 * n * UNIT * np.linalg.norm(g, axis=(1, 2))
+    if slack > 0:
+        pa, da = _basis_sizes(k, split, lam, slack)
+        err = err + n * slack * 2.0 * np.einsum("a,fab,b->f", da, np.abs(m), pa)
+    return _allow(np.maximum(direct, 0) + err, np.abs(g).max(axis=(1, 2)))
 
 
 def filter_constants(taps, basis: Basis, interval, eigenvalues=None, *, pairwise: bool = True) -> FilterConstants:
@@ -250,51 +330,53 @@ def filter_constants(taps, basis: Basis, interval, eigenvalues=None, *, pairwise
     cols, shape = _flat(taps)
     k = cols.shape[0]
     a, b = usable_interval(*_check_interval(interval))
-    lam_poly = Chebyshev([0.5 * (a + b), 0.5 * (b - a)], domain=[a, b])
+    sup_h = sup_grid_markov(*_coefficients(k, basis, a, b, "h", cols))
+    sup_d = sup_grid_markov(*_coefficients(k, basis, a, b, "deriv", cols))
+    sup_c = sup_grid_markov(*_coefficients(k, basis, a, b, "lam_deriv", cols))
 
-    def sup_of(fn, deg):
-        m = _linear_map(k, basis, a, b, fn, deg)
-        return sup_grid_markov((m @ cols).T)
-
-    sup_h = sup_of(lambda q: q, max(k - 1, 0))
-    sup_d = sup_of(lambda q: q.deriv(), max(k - 2, 0))
-    sup_c = sup_of(lambda q: lam_poly * q.deriv(), max(k - 1, 0))
-
+    # The kernel bound (docs/theory.md section 5 item 2) in two splits, the
+    # Chebyshev basis of [a, b] and monomials, keeping the smaller. Every
+    # float64 step carries an error bound (docs/theory.md section 6): the
+    # monomial split of a filter on an interval far from 0 cancels badly and
+    # its allowance then makes it lose the minimum instead of being trusted.
     splits = [Basis("chebyshev", (a, b)), Basis()]
     kernels = _kernels(cols, basis, splits)
     pk = _product_tensor(k)
+    big_r = max(abs(a), abs(b))
     kappa = None
     kappa_spec = None
     aligned = None
     lam = None if eigenvalues is None else np.asarray(eigenvalues, dtype=np.float64)
-    for split, m in zip(splits, kernels):
-        plus, minus = _psd_parts(m)
-        absm = plus + minus  # |M|: Gamma_ij = <x_i, y_j> with ||x_i||^2 = phi^T |M| phi
+    slack = 0.0 if lam is None else eigenvalue_slack(lam)
+    for split, (m, dm) in zip(splits, kernels):
+        absm, aerr = _abs_kernel(m, dm)  # Gamma_ij = <x_i, y_j> with ||x_i||^2 = phi^T |M| phi
+        fro = np.linalg.norm(absm, axis=(1, 2))
         if split.kind == "chebyshev":
-            # phi^T |M| phi as a Chebyshev series of [a, b].
-            kap = sup_grid_markov(np.einsum("fab,abn->fn", absm, pk))
+            # phi^T |M| phi as a Chebyshev series of [a, b]; ||phi||^2 <= K there.
+            coef = np.einsum("fab,abn->fn", absm, pk)
+            cerr = 2.0 * k * k * UNIT * np.einsum("fab,abn->fn", np.abs(absm), pk)
+            kap = sup_grid_markov(coef, err=cerr) + (aerr + 2.0 * k * k * UNIT * fro) * k
         else:
             qmap = np.zeros((2 * k - 1 if k > 1 else 1, k, k))
             for i in range(k):
                 for j in range(k):
                     qmap[i + j, i, j] = 1.0
-            conv = _linear_map(qmap.shape[0], Basis(), a, b, lambda q: q, qmap.shape[0] - 1)
-            kap = sup_grid_markov(np.einsum("nm,mab,fab->fn", conv, qmap, absm, optimize=True))
+            p = np.einsum("mab,fab->fm", qmap, absm)  # power coefficients
+            perr = 2.0 * k * UNIT * np.einsum("mab,fab->fm", qmap, np.abs(absm))
+            conv = response_map(qmap.shape[0], Basis(), a, b, "h")
+            coef = p @ conv.T
+            cerr = product_error(conv, p.T).T + perr @ np.abs(conv).T
+            phi2 = float(np.sum(big_r ** (2.0 * np.arange(k))))  # sup ||phi||^2 on [a, b]
+            kap = sup_grid_markov(coef, err=cerr) + (aerr + 2.0 * k * k * UNIT * fro) * phi2
         kappa = kap if kappa is None else np.minimum(kappa, kap)
         if lam is not None:
-            phi = basis_values(lam, k, split)
-            ks = np.einsum("ia,fab,ib->fi", phi, absm, phi, optimize=True).max(axis=1)
-            ks = _allow(np.maximum(ks, 0), np.abs(m).sum(axis=(1, 2)))
+            ks = _quad_upper(basis_values(lam, k, split), absm, aerr, split, lam, slack).max(axis=1)
+            ks = _allow(ks, np.abs(m).sum(axis=(1, 2)))
             kappa_spec = ks if kappa_spec is None else np.minimum(kappa_spec, ks)
     if lam is not None:
         n, f = lam.size, cols.shape[1]
         if n * f <= DIRECT_SPLIT_LIMIT and n <= 400:
-            phi = basis_values(lam, k, splits[1])
-            g = np.einsum("ia,fab,jb->fij", phi, kernels[1], phi)
-            gp, gm = _psd_parts(g)
-            direct = np.diagonal(gp + gm, axis1=1, axis2=2).max(axis=1)
-            direct = _allow(np.maximum(direct, 0), np.abs(g).max(axis=(1, 2)))
-            kappa_spec = np.minimum(kappa_spec, direct)
+            kappa_spec = np.minimum(kappa_spec, _direct_split(lam, k, splits[0], *kernels[0], slack))
         d = response_derivative(cols, lam, basis)  # (N, F)
         aligned = _allow(2 * np.max(np.abs(lam[:, None] * d), axis=0), 1.0)
         # Over the eigenvalues can never need more than over the interval.
@@ -309,7 +391,7 @@ def filter_constants(taps, basis: Basis, interval, eigenvalues=None, *, pairwise
     # sup|G_tt| + 2 sup|G_ts| + sup|G_ss|, with |T_a''| <= a^2 (a^2 - 1)/3
     # (Markov brothers' inequality). The second-order term alone took C2 from
     # up to 20% to within 1% of a fine-grid maximum at K = 7.
-    m = kernels[0]
+    m, dm = kernels[0]
     grid = 129
     t = np.linspace(-1, 1, grid)
     v = np.polynomial.chebyshev.chebvander(t, k - 1)
@@ -324,6 +406,8 @@ def filter_constants(taps, basis: Basis, interval, eigenvalues=None, *, pairwise
         markov = h * np.sum(k2 * mf, axis=(1, 2))
         second = (h * h / 4.0) * np.sum(curv * mf, axis=(1, 2))
         pair[f0:f0 + 64] = np.abs(g).max(axis=(1, 2)) + np.minimum(markov, second)
+    # |phi^T dM psi| <= K ||dM||_F for Chebyshev values in [-1, 1].
+    pair = pair + k * np.linalg.norm(dm, axis=(1, 2))
     pair = np.minimum(_allow(pair, np.abs(m).sum(axis=(1, 2))), kappa) * 0.5
 
     def shaped(x):
@@ -344,15 +428,6 @@ def filter_constants(taps, basis: Basis, interval, eigenvalues=None, *, pairwise
 
 # ---------------------------------------------------------------------------
 # Second-order remainder.
-
-
-def _coef_map(k: int, basis: Basis, fn) -> np.ndarray:
-    """``(k, k)`` matrix taking taps to ``fn(series)`` coefficients."""
-    out = np.zeros((k, k))
-    for j, q in enumerate(_unit_series(k, basis)):
-        c = fn(q)
-        out[: min(len(c), k), j] = c[:k]
-    return out
 
 
 def _tails(x: float, y: float, k: int) -> np.ndarray:
@@ -379,10 +454,17 @@ def remainder(taps, basis: Basis, interval, eps: float) -> np.ndarray:
     k = cols.shape[0]
     a, b = _check_interval(interval)
     big_r = max(abs(a), abs(b))
-    mid, half = 0.5 * (a + b), 0.5 * (b - a)
+    mid = 0.5 * (a + b)
+    half = max(b - mid, mid - a) * (1 + 4 * UNIT)  # covers [a, b] around the rounded midpoint
     d = 2.0 * eps * big_r
-    c = np.abs(_coef_map(k, basis, monomial_coefficients) @ cols)  # (K, F)
-    g = np.abs(_coef_map(k, basis, lambda q: shifted_coefficients(q, mid)) @ cols)
+
+    def coefficient_bound(centre):
+        """Upper bounds on |coefficients| in powers of (lam - centre), (K, F)."""
+        cmap = power_map(k, basis, centre)
+        return np.abs(cmap @ cols) + product_error(cmap, cols)
+
+    c = coefficient_bound(0.0)
+    g = coefficient_bound(mid)
     origin = _tails(big_r, d, k) @ c
     centred = _tails(half, d, k) @ g
     scale = ((half + d) ** np.arange(k)) @ g
@@ -438,9 +520,9 @@ def _worst_pairs(lam, vecs, taps, basis, count=3):
     ``|Gamma_ij|`` (Frobenius over the filters of a bank)."""
     cols, _ = _flat(taps)
     k = cols.shape[0]
-    split = Basis()
-    t = np.stack([kernel_matrix(q, k, split) for q in _unit_series(k, basis)], axis=-1)
-    m = np.einsum("abj,jf->fab", t, cols)
+    lo, hi = float(np.min(lam)), float(np.max(lam))
+    split = Basis("chebyshev", (lo, hi)) if hi > lo else Basis()  # monomials cancel away from 0
+    m = np.einsum("abj,jf->fab", kernel_transform(k, basis, split), cols)
     phi = basis_values(lam, k, split)
     g = np.einsum("ia,fab,jb->ij", phi, m, phi) if cols.shape[1] == 1 else np.sqrt(
         np.einsum("fij->ij", np.einsum("ia,fab,jb->fij", phi, m, phi) ** 2))

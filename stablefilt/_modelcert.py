@@ -189,7 +189,7 @@ def spectral_first_order(taps, basis, eigenvalues, eigenvectors, z, eps: float) 
     ``||[D(a^1) .. D(a^R)]|| ||Et|| ||[D(b^r) xt]_r||``. The smaller value over
     the Chebyshev and monomial splits is kept.
     """
-    from ._certify import _flat, _kernels, _psd_parts
+    from ._certify import _abs_kernel, _flat, _kernels, _quad_upper, eigenvalue_slack
     from ._filters import Basis, basis_values
 
     taps = np.asarray(taps, dtype=np.float64)
@@ -201,10 +201,11 @@ def spectral_first_order(taps, basis, eigenvalues, eigenvectors, z, eps: float) 
     splits.append(Basis())
     zt2 = np.einsum("ni,bnf->bif", eigenvectors, z) ** 2  # (B, N, F_in)
     best = None
-    for split, m in zip(splits, _kernels(cols, basis, splits)):
-        plus, minus = _psd_parts(m)
-        phi = basis_values(lam, k, split)
-        q = np.maximum(np.einsum("ia,fab,ib->fi", phi, plus + minus, phi, optimize=True), 0).reshape(fin, fout, -1)
+    for split, (m, dm) in zip(splits, _kernels(cols, basis, splits)):
+        # Upper bounds on phi^T |M| phi with the float64 error included: the
+        # monomial split cancels badly for eigenvalues far from 0.
+        q = _quad_upper(basis_values(lam, k, split), *_abs_kernel(m, dm), split, lam,
+                        eigenvalue_slack(lam)).reshape(fin, fout, -1)
         val = np.sqrt(q.max(axis=2))[None] * np.sqrt(np.einsum("fgi,bif->bfg", q, zt2, optimize=True))
         best = val if best is None else np.minimum(best, val)
     return eps * best * (1 + 1e-9)

@@ -10,7 +10,17 @@ from __future__ import annotations
 import networkx as nx
 import numpy as np
 import pytest
-from reference import change, daleckii_krein, derivative, gamma, random_symmetric, relative, response, wider_interval
+from reference import (
+    change,
+    daleckii_krein,
+    derivative,
+    filter_operator,
+    gamma,
+    random_symmetric,
+    relative,
+    response,
+    wider_interval,
+)
 
 import stablefilt as sf
 from stablefilt._search import worst_perturbation
@@ -307,3 +317,98 @@ def test_bad_interval_raises_filter_error(interval):
             call()
         msg = str(exc.value)
         assert "\n" not in msg and msg.endswith(".") and len(msg) < 300
+
+
+# ---------------------------------------------------------------------------
+# Filters whose basis sits on a narrow interval far from 0. Their monomial
+# coefficients are huge and cancel; a certificate evaluated through them was
+# once below the measured change (a first-rank bug). Measured changes here use
+# numpy.polynomial on the eigenvalues (reference.py), independent of stablefilt.
+
+
+def _narrow_cases():
+    a = sf.shift_operator(nx.to_numpy_array(nx.gnp_random_graph(12, 0.4, seed=1)), "scaled-adjacency").dense()
+    s = np.eye(12) + 0.01 * a  # a lazy diffusion operator: spectrum in [0.99, 1.01]
+    iv = sf.spectral_interval(sf.shift_operator(s))
+    spectral = sf.make_basis("chebyshev", (iv.lower, iv.upper))  # what the trainer would pick
+    yield "lazy-spectral-seed5", s, spectral, np.random.default_rng(5).standard_normal(8), 1e-6
+    yield "lazy-spectral-seed12", s, spectral, np.random.default_rng(12).standard_normal(8), 1e-6
+    s2 = np.eye(12) + 1e-5 * a
+    yield "lazy-user-interval", s2, sf.make_basis("chebyshev", (0.99, 1.01)), np.random.default_rng(7).standard_normal(8), 1e-4
+    yield "scaled-identity", 2.5 * np.eye(5), sf.make_basis("chebyshev", (2.49, 2.51)), \
+        np.random.default_rng(113).standard_normal(8), 1e-4
+    yield "one-node", np.array([[2.5]]), sf.make_basis("chebyshev", (2.49, 2.51)), \
+        np.random.default_rng(113).standard_normal(8), 1e-4
+
+
+NARROW = {name: rest for name, *rest in _narrow_cases()}
+
+
+@pytest.mark.parametrize("name", sorted(NARROW))
+def test_narrow_interval_far_from_zero_certificate_holds(name):
+    s, basis, taps, eps = NARROW[name]
+    n = s.shape[0]
+    w, v = np.linalg.eigh(s)
+    b = sf.certify_filter(sf.shift_operator(s), taps, basis, [eps], lower=False).bounds[0]
+    perts = [sign * eps * np.eye(n) for sign in (1, -1)]  # scaling, E = +-eps I
+    i, j = 0, n - 1
+    if i != j:
+        perts += [sign * eps * (np.outer(v[:, i], v[:, j]) + np.outer(v[:, j], v[:, i])) for sign in (1, -1)]
+    measured = max(change(s, relative(s, e), taps, basis.kind, basis.interval) for e in perts)
+    assert 0 < measured <= b.certified
+    # Not vacuous: within a few per cent of the scaling change (first order 2 eps |lam h'(lam)|).
+    assert b.certified <= 1.1 * measured
+
+
+@pytest.mark.parametrize("name", sorted(NARROW))
+def test_narrow_interval_kernel_at_eigenvalues_covers_every_pair(name):
+    """``kappa`` over the eigenvalues is at least ``max_ij |Gamma_ij|`` (the
+    lower bracket, theory.md s.5 item 3; Gamma from numpy.polynomial)."""
+    s, basis, taps, _ = NARROW[name]
+    w = np.linalg.eigvalsh(s)
+    c = sf.filter_constants(taps, basis, (w[0] - 1e-9, w[-1] + 1e-9), w)
+    g = _pair_gamma(w, taps, basis)
+    assert c.kernel_spectrum >= g.max() * (1 - 1e-12)
+
+
+@pytest.mark.parametrize("k", [12, 20, 25])
+def test_high_order_kernel_at_eigenvalues_covers_every_pair(k):
+    """K up to 25 on a normalised Laplacian (spectrum in [0, 2], Chung 1997):
+    the monomial kernel there has entries near 2^(2K); kappa over the
+    eigenvalues must still bound max_ij |Gamma_ij| (numpy.polynomial)."""
+    op = sf.shift_operator(nx.to_numpy_array(nx.gnp_random_graph(30, 0.2, seed=3)), "normalized-laplacian")
+    w = np.linalg.eigvalsh(op.dense())
+    iv = sf.spectral_interval(op)
+    basis = sf.make_basis("chebyshev", (iv.lower, iv.upper))
+    rng = np.random.default_rng(1)
+    for _ in range(3):
+        taps = rng.standard_normal(k) / np.arange(1, k + 1)
+        c = sf.filter_constants(taps, basis, (iv.lower, iv.upper), w)
+        g = _pair_gamma(w, taps, basis).max()
+        assert g * (1 - 1e-9) <= c.kernel_spectrum <= 1.5 * g
+
+
+@pytest.mark.parametrize("name", ["lazy-spectral-seed5", "lazy-user-interval"])
+def test_narrow_interval_model_certificates_hold(name):
+    """A one-layer linear model is the filter itself: certify_model and
+    certify_inputs (both over the eigenvalues) bound the change of the
+    signal the scaling perturbation moves most (top right singular vector of
+    H(S_hat) - H(S), numpy.linalg.svd)."""
+    s, basis, taps, eps = NARROW[name]
+    n, k = s.shape[0], taps.size
+    op = sf.shift_operator(s)
+    iv = sf.spectral_interval(op)
+    lam, vec = np.linalg.eigh(s)
+    spec = sf.ModelSpec((1, 1), taps=k, basis=basis, nonlinearity="none", bias=False, readout="none",
+                        final_nonlinearity=False)
+    params = {"layers": [{"taps": taps.reshape(k, 1, 1)}]}
+    cm = sf.certify_model(params, spec, iv, n, [eps], rho=1.0, eigenvalues=lam).certified[f"{eps:g}"]
+    moved = []
+    for sign in (1, -1):
+        d = filter_operator(relative(s, sign * eps * np.eye(n)), taps, basis.kind, basis.interval) \
+            - filter_operator(s, taps, basis.kind, basis.interval)
+        _, sv, vt = np.linalg.svd(d)
+        ci = sf.certify_inputs(params, spec, op.matrix, iv, vt[0].reshape(1, n, 1), eps, lam, vec)[0]
+        assert sv[0] <= ci <= cm * (1 + 1e-12)
+        moved.append(sv[0])
+    assert cm <= 1.1 * max(moved)  # not vacuous
