@@ -47,8 +47,12 @@ def _check_eps(eps, what="eps"):
         raise StablefiltError(f"{what} must be a finite number >= 0; got {eps}.")
 
 
-def _with(op: ShiftOperator, m) -> ShiftOperator:
-    return ShiftOperator(_symmetric(m), op.kind, op.scale)
+def _with(op: ShiftOperator, m, keep_kind: bool = False) -> ShiftOperator:
+    """The perturbed operator. Its kind is ``as-is`` unless the change keeps
+    the construction (a combinatorial Laplacian rebuilt from new edge weights):
+    a perturbed normalised Laplacian is no longer one, and its spectral
+    interval must not be taken from the construction's ``[0, 2]``."""
+    return ShiftOperator(_symmetric(m), op.kind, op.scale) if keep_kind else ShiftOperator(_symmetric(m))
 
 
 def random_symmetric(n: int, norm: float, rng) -> np.ndarray:
@@ -124,7 +128,9 @@ def _rebuild(op: ShiftOperator, rows, cols, vals) -> ShiftOperator:
         diag = -np.asarray(off.sum(axis=1)).ravel()
     else:
         diag = op.matrix.diagonal()
-    return _with(op, off + sp.diags_array(diag))
+    # Non-negative new weights keep a combinatorial Laplacian one.
+    keep = op.kind == "laplacian" and bool(np.all(off.data <= 0))
+    return _with(op, off + sp.diags_array(diag), keep_kind=keep)
 
 
 def jitter(op: ShiftOperator, size: float, seed: int) -> Perturbed:

@@ -316,3 +316,22 @@ def test_dense_kinds_refuse_large_graphs(monkeypatch):
         with pytest.raises(sf.StablefiltError, match="nodes"):
             pt.perturb(op, kind, 0.1, 0)
     assert pt.perturb(op, "diagonal", 0.1, 0).e_norm == pytest.approx(0.1)
+
+
+@pytest.mark.parametrize("shift", ["normalized-laplacian", "scaled-adjacency", "laplacian"])
+@pytest.mark.parametrize("kind", ["relative", "diagonal", "scaling", "additive", "jitter", "delete", "rewire", "relabel"])
+def test_perturbed_interval_holds_its_spectrum(shift, kind):
+    """A perturbed operator keeps its construction's kind only where the
+    construction still holds (relabelling; a combinatorial Laplacian rebuilt
+    from new non-negative weights), so the interval proved for it without
+    eigenvalues (construction ends, Lanczos + inertia or row sums) contains
+    its spectrum (reference: numpy.linalg.eigvalsh). A scaled normalised
+    Laplacian reaches 2 (1 + 2 eps) > 2, outside the construction's [0, 2]."""
+    op = sf.shift_operator(_weighted(nx.karate_club_graph(), 3), shift)  # Zachary 1977, bundled with networkx
+    size = 0.3 if kind in ("delete", "rewire") else 0.1
+    p = pt.perturb(op, kind, size, 11)
+    assert p.op.kind == (shift if kind == "relabel" or (shift == "laplacian" and kind in ("jitter", "delete", "rewire"))
+                         else "as-is")
+    iv = sf.spectral_interval(p.op, exact_limit=0)
+    w = np.linalg.eigvalsh(p.op.dense())
+    assert iv.lower <= w[0] and w[-1] <= iv.upper, (iv, w[0], w[-1])
