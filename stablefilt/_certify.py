@@ -143,7 +143,8 @@ class FilterConstants:
     kernel_spectrum: np.ndarray | None
     aligned_spectrum: np.ndarray | None
     bank_sup: float
-    method: str = "grid of 4097 points + Markov remainder (theory s.6), float64"
+    method: str = ("grid of 4097 points + Markov remainder, exact changes of basis and float64 error bounds "
+                   "(theory s.6)")
 
     def as_dict(self) -> dict:
         def arr(x):

@@ -11,14 +11,12 @@ docs/theory.md section 3.
 
 from __future__ import annotations
 
-import functools
-
 import jax
 import jax.numpy as jnp
 import numpy as np
 
+from ._exact import kernel_transform
 from ._filters import Basis, basis_derivatives, basis_values
-from ._kernel import as_series, kernel_matrix
 
 DEFAULT_GRID = 256
 PAIR_GRID = 64
@@ -71,19 +69,6 @@ def bank_sup_norm(taps, interval, basis: Basis = Basis(), grid: int = DEFAULT_GR
     if h.ndim == 1:
         return jnp.max(jnp.abs(h))
     return jnp.max(jnp.linalg.norm(h, ord=2, axis=(-2, -1)))
-
-
-@functools.lru_cache(maxsize=64)
-def kernel_transform(k: int, basis: Basis, split: Basis) -> np.ndarray:
-    """``T`` of shape ``(k, k, k)``: the kernel matrix of a filter with taps
-    ``c`` (in ``basis``) split in the basis ``split`` is ``T @ c``."""
-    out = np.zeros((k, k, k))
-    for j in range(k):
-        e = np.zeros(k)
-        e[j] = 1.0
-        out[:, :, j] = kernel_matrix(as_series(e, basis), k, split)
-    out.setflags(write=False)
-    return out
 
 
 def split_basis(interval) -> Basis:
