@@ -22,11 +22,13 @@ FULL = {
     "bench_filter.py": [],
     "bench_penalty.py": [],
     "bench_tightness.py": [],
+    "bench_attack.py": [],
 }
 QUICK = {
     "bench_filter.py": ["--sizes", "1e3,1e4", "--rounds", "9"],
     "bench_penalty.py": ["--sizes", "1e3,1e4", "--rounds", "9"],
     "bench_tightness.py": ["--graphs", "12"],
+    "bench_attack.py": ["--quick"],
 }
 
 
@@ -39,7 +41,7 @@ def main(argv=None) -> int:
     plan = QUICK if args.quick else FULL
     results = []
     for script, extra in plan.items():
-        if args.malloc_hugepages and script != "bench_tightness.py":
+        if args.malloc_hugepages and script in ("bench_filter.py", "bench_penalty.py"):
             extra = [*extra, "--malloc-hugepages"]
         cmd = [sys.executable, os.path.join(HERE, script), *extra]
         print(f"\n=== {' '.join(['python', 'benchmarks/' + script, *extra])}", flush=True)
