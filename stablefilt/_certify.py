@@ -63,10 +63,10 @@ def _check_interval(interval) -> tuple[float, float]:
     return float(iv[0]), float(iv[1])
 
 
-def usable_interval(a: float, b: float) -> tuple[float, float]:
-    """``[a, b]``, widened around a single point so a Chebyshev basis of it
-    exists (a superset stays valid)."""
-    a, b = _check_interval((a, b))
+def usable_interval(interval) -> tuple[float, float]:
+    """``interval = (a, b)``, checked, and widened around a single point so a
+    Chebyshev basis of it exists (a superset stays valid)."""
+    a, b = _check_interval(interval)
     if a < b:
         return float(a), float(b)
     w = 1e-6 * max(1.0, abs(a))
@@ -278,7 +278,7 @@ def gain_constants(taps, basis: Basis, interval) -> tuple[float, np.ndarray]:
     taps = check_taps(taps)
     cols, shape = _flat(taps)
     k = cols.shape[0]
-    a, b = usable_interval(*_check_interval(interval))
+    a, b = usable_interval(interval)
     sup_d = sup_grid_markov(*_coefficients(k, basis, a, b, "deriv", cols))
     sup_d = sup_d.reshape(shape) if shape else float(sup_d[0])
     return _bank_sup(cols, shape, basis, a, b), sup_d
@@ -330,7 +330,7 @@ def filter_constants(taps, basis: Basis, interval, eigenvalues=None, *, pairwise
     taps = check_taps(taps)
     cols, shape = _flat(taps)
     k = cols.shape[0]
-    a, b = usable_interval(*_check_interval(interval))
+    a, b = usable_interval(interval)
     sup_h = sup_grid_markov(*_coefficients(k, basis, a, b, "h", cols))
     sup_d = sup_grid_markov(*_coefficients(k, basis, a, b, "deriv", cols))
     sup_c = sup_grid_markov(*_coefficients(k, basis, a, b, "lam_deriv", cols))

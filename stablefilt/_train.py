@@ -21,8 +21,8 @@ import scipy
 
 from ._config import Config
 from ._data import Dataset, build_dataset
-from ._errors import ConfigError, RunError, TrainingDiverged
-from ._filters import Basis
+from ._errors import ConfigError, FilterError, RunError, TrainingDiverged
+from ._filters import Basis, make_basis
 from ._graph import reorder
 from ._interval import SpectralInterval, spectral_interval
 from ._model import ModelSpec, forward, init_params
@@ -477,8 +477,8 @@ def open_run(path: str) -> Run:
     op = ShiftOperator(op.matrix, manifest.get("graph", {}).get("kind", "as-is"))
     if op.fingerprint() != manifest.get("graph", {}).get("fingerprint"):
         raise RunError(f"run graph in {path!r} does not match the fingerprint in its manifest.")
-    test = load_npz(os.path.join(path, "test.npz"), "run test data")
     tpath = os.path.join(path, "test.npz")
+    test = load_npz(tpath, "run test data")
     if "x" not in test or "y" not in test:
         raise RunError(f"run test data {tpath!r} lacks x or y.")
     tx, ty = test["x"], test["y"]
@@ -500,21 +500,15 @@ def open_run(path: str) -> Run:
 
 
 def _manifest_basis(manifest: dict, path: str) -> Basis:
-    """The filter basis a run's manifest records, checked."""
+    """The filter basis a run's manifest records, checked by :func:`make_basis`."""
     b = manifest.get("basis", {})
-    kind = b.get("kind") if isinstance(b, dict) else None
-    if kind == "monomial":
-        return Basis()
-    iv = b.get("interval") if kind == "chebyshev" else None
     try:
-        lo, hi = (float(v) for v in iv)
-        ok = np.isfinite(lo) and np.isfinite(hi) and lo < hi
-    except (TypeError, ValueError):
-        ok = False
-    if not ok:
+        if not isinstance(b, dict):
+            raise FilterError(f"expected a table, got {b!r}.")
+        return make_basis(b.get("kind"), b.get("interval"))
+    except FilterError as exc:
         raise RunError(f"run manifest in {path!r}: basis must be monomial, or chebyshev with an interval of two "
-                       f"finite numbers a < b; got {b!r}.")
-    return Basis("chebyshev", (lo, hi))
+                       f"finite numbers a < b ({str(exc).rstrip('.')}).") from None
 
 
 def _manifest_classes(manifest: dict, path: str) -> int:
