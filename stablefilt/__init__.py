@@ -6,12 +6,7 @@ The float64 numpy/scipy path certifies; the float32 JAX path trains.
 
 from ._certify import Certificate as Certificate
 from ._certify import EpsBound as EpsBound
-from ._certify import FilterConstants as FilterConstants
 from ._certify import certify_filter as certify_filter
-from ._certify import filter_bounds as filter_bounds
-from ._certify import filter_constants as filter_constants
-from ._certify import lower_change as lower_change
-from ._certify import remainder as remainder
 from ._config import Config as Config
 from ._config import load_config as load_config
 from ._config import parse_config as parse_config
@@ -28,6 +23,10 @@ from ._errors import GraphError as GraphError
 from ._errors import RunError as RunError
 from ._errors import StablefiltError as StablefiltError
 from ._errors import TrainingDiverged as TrainingDiverged
+from ._filterbounds import FilterConstants as FilterConstants
+from ._filterbounds import filter_bounds as filter_bounds
+from ._filterbounds import filter_constants as filter_constants
+from ._filterbounds import remainder as remainder
 from ._filters import Basis as Basis
 from ._filters import basis_values as basis_values
 from ._filters import frequency_response as frequency_response
@@ -53,6 +52,7 @@ from ._penalty import model_penalty as model_penalty
 from ._penalty import penalty as penalty
 from ._penalty import stability_penalty as stability_penalty
 from ._search import SearchResult as SearchResult
+from ._search import lower_change as lower_change
 from ._search import worst_perturbation as worst_perturbation
 from ._sparse import JaxShift as JaxShift
 from ._sparse import apply_filter as apply_filter

@@ -22,7 +22,8 @@ import numpy as np
 
 from ._graph import ShiftOperator
 from ._model import ModelSpec, forward, forward_np
-from ._perturb import apply_relative
+from ._perturb import project_ball, relative_product
+from ._search import divided_differences
 from ._sparse import JaxShift, jax_operator, shift_product
 
 #: Largest graph attacked with a dense ``E``.
@@ -51,40 +52,25 @@ class AttackResult:
     history: tuple
 
 
-def _project_dense(e, eps):
-    e = 0.5 * (e + e.T)
-    w, q = jnp.linalg.eigh(e)
-    return (q * jnp.clip(w, -eps, eps)) @ q.T
-
-
 def measure(params, spec: ModelSpec, op: ShiftOperator, e: np.ndarray, x: np.ndarray) -> float:
     """``||Phi(S + E S + S E) x - Phi(S) x||_F`` in float64 (``x``: ``(N, F)``)."""
     s = op.matrix
     e = np.asarray(e, dtype=np.float64)
 
-    class _Hat:
-        shape = s.shape
-
-        def __matmul__(self, v):
-            return apply_relative(s, e, v)
-
     xb = np.asarray(x, dtype=np.float64)[None]
     y0 = forward_np(params, s, xb, spec)
-    y1 = forward_np(params, _Hat(), xb, spec)
+    y1 = forward_np(params, functools.partial(relative_product, s, e), xb, spec)
     return float(np.linalg.norm(y1 - y0))
 
 
-@functools.partial(jax.jit, static_argnames=("spec", "dense"))
-def _objective_grad(params, sop: JaxShift, e, x, y0, spec: ModelSpec, dense: bool):
+@functools.partial(jax.jit, static_argnames=("spec",))
+def _objective_grad(params, sop: JaxShift, e, x, y0, spec: ModelSpec):
+    """``||Phi(S + E S + S E) x - y0||^2`` and its gradient in ``(E, x)``;
+    ``E`` dense ``(N, N)`` or diagonal ``(N,)``."""
     def obj(e, x):
-        if dense:
-            def mv(v):
-                sv = shift_product(sop, v)
-                return sv + e @ sv + shift_product(sop, e @ v)
-        else:
-            def mv(v):
-                sv = shift_product(sop, v)
-                return sv + e[:, None] * sv + shift_product(sop, e[:, None] * v)
+        def mv(v):
+            return relative_product(functools.partial(shift_product, sop), e, v)
+
         y = forward(params, mv, x[None], spec)
         return jnp.sum((y - y0) ** 2)
 
@@ -110,12 +96,10 @@ def _starts(op: ShiftOperator, params, spec: ModelSpec, eps: float, dense: bool,
     n = op.nodes
     out = [("scaling+", np.full(n, eps), None), ("scaling-", np.full(n, -eps), None)]
     if dense and n <= 600:
-        from ._search import _divided
-
         w, v = np.linalg.eigh(op.dense())
         taps = np.asarray(params["layers"][0]["taps"], dtype=np.float64)
         cols = taps.reshape(taps.shape[0], -1)
-        gam = (w[:, None] + w[None, :]) * _divided(cols, w, spec.basis)  # (F_in F_out, N, N)
+        gam = (w[:, None] + w[None, :]) * divided_differences(cols, w, spec.basis)  # (F_in F_out, N, N)
         if x_fixed is None:
             g = np.sqrt(np.sum(gam**2, axis=0))
         else:
@@ -178,7 +162,7 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
         step = 0.5 * eps
         for it in range(iters):
             y_ref = _forward(params, sop, xc[None], spec) if free_input else y0
-            val, (ge, gx) = _objective_grad(params, sop, e, xc, y_ref, spec, dense)
+            val, (ge, gx) = _objective_grad(params, sop, e, xc, y_ref, spec)
             hist.append(float(val))
             if top is None or hist[-1] > top[0]:
                 top = (hist[-1], e, xc)
@@ -186,10 +170,7 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
             if not np.isfinite(float(gn)) or float(gn) == 0.0:
                 break
             lr = step / (1 + 0.1 * it)
-            if dense:
-                e = _project_dense(e + lr * ge / gn * np.sqrt(n), eps)
-            else:
-                e = jnp.clip(e + lr * ge / gn * np.sqrt(n), -eps, eps)
+            e = project_ball(e + lr * ge / gn * np.sqrt(n), eps, xp=jnp)
             if free_input:
                 gxn = jnp.linalg.norm(gx)
                 if float(gxn) > 0:
@@ -197,15 +178,7 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
                     xc = xc * (rho / jnp.linalg.norm(xc))
         cands = [(e, xc)] + ([top[1:]] if top is not None and top[1] is not e else [])
         for ec, xcc in cands:
-            e_np = np.asarray(ec, dtype=np.float64)
-            if dense:
-                e_np = 0.5 * (e_np + e_np.T)
-                w, q = np.linalg.eigh(e_np)
-                e_np = (q * np.clip(w, -eps, eps)) @ q.T
-                # The product above is symmetric only to round-off; the model needs E = E^T.
-                e_np = 0.5 * (e_np + e_np.T)
-            else:
-                e_np = np.clip(e_np, -eps, eps)
+            e_np = project_ball(np.asarray(ec, dtype=np.float64), eps)
             if free_input:
                 x_np = np.asarray(xcc, dtype=np.float64)
                 x_np = x_np * (rho / np.linalg.norm(x_np))

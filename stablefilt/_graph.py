@@ -82,7 +82,7 @@ def _canonical(m) -> sp.csr_array:
     return m
 
 
-def _symmetric(m) -> sp.csr_array:
+def symmetric(m) -> sp.csr_array:
     """Exactly symmetric canonical CSR: products like ``D A D`` round each
     entry on its own, so a built operator is averaged with its transpose."""
     m = sp.csr_array(m, dtype=np.float64)
@@ -218,14 +218,14 @@ def shift_operator(source, kind: str = "as-is", *, tol: float = SYMMETRY_TOL, na
     n = m.shape[0]
     deg = np.asarray(m.sum(axis=1)).ravel()
     if kind == "laplacian":
-        return ShiftOperator(_symmetric(sp.diags_array(deg) - m), kind)
+        return ShiftOperator(symmetric(sp.diags_array(deg) - m), kind)
     if kind == "normalized-laplacian":
         inv = np.zeros(n)
         pos = deg > 0
         inv[pos] = 1.0 / np.sqrt(deg[pos])
         d = sp.diags_array(inv)
         eye = sp.diags_array(pos.astype(np.float64))
-        return ShiftOperator(_symmetric(eye - d @ m @ d), kind)
+        return ShiftOperator(symmetric(eye - d @ m @ d), kind)
     # scaled-adjacency: divide by a certified bound on the spectral radius.
     from ._interval import spectral_interval
 
@@ -233,7 +233,7 @@ def shift_operator(source, kind: str = "as-is", *, tol: float = SYMMETRY_TOL, na
     s = max(abs(iv.lower), abs(iv.upper))
     if s == 0.0:
         return ShiftOperator(m, kind, 1.0)
-    return ShiftOperator(_symmetric(m / s), kind, float(s))
+    return ShiftOperator(symmetric(m / s), kind, float(s))
 
 
 def reorder(op: ShiftOperator) -> tuple[ShiftOperator, np.ndarray]:

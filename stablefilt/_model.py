@@ -20,7 +20,6 @@ import numpy as np
 
 from ._errors import ConfigError
 from ._filters import Basis, run_filter
-from ._sparse import JaxShift, shift_product
 
 NONLINEARITIES = ("relu", "leaky_relu", "tanh", "none")
 READOUTS = ("node", "mean", "sum", "none")
@@ -67,24 +66,20 @@ class ModelSpec:
     def depth(self) -> int:
         return len(self.features) - 1
 
-    def activation(self, z):
-        if self.nonlinearity == "relu":
-            return jax.nn.relu(z)
-        if self.nonlinearity == "leaky_relu":
-            return jax.nn.leaky_relu(z, 0.1)
-        if self.nonlinearity == "tanh":
-            return jnp.tanh(z)
-        return z
+    def activation(self, z, xp=jnp):
+        """The pointwise nonlinearity, in JAX (``xp=jnp``, the training path)
+        or float64 numpy (``xp=np``, the certification path)."""
+        if self.nonlinearity == "none":
+            return z
+        return _ACTIVATIONS[xp is np][self.nonlinearity](z)
 
-    def activation_np(self, z):
-        """The same nonlinearity in numpy (float64 certification path)."""
-        if self.nonlinearity == "relu":
-            return np.maximum(z, 0)
-        if self.nonlinearity == "leaky_relu":
-            return np.where(z >= 0, z, 0.1 * z)
-        if self.nonlinearity == "tanh":
-            return np.tanh(z)
-        return z
+
+#: Per path (numpy?): the nonlinearities, the leaky slope 0.1 in both.
+_ACTIVATIONS = {
+    False: {"relu": jax.nn.relu, "leaky_relu": lambda z: jax.nn.leaky_relu(z, 0.1), "tanh": jnp.tanh},
+    True: {"relu": lambda z: np.maximum(z, 0), "leaky_relu": lambda z: np.where(z >= 0, z, 0.1 * z),
+           "tanh": np.tanh},
+}
 
 
 def init_params(spec: ModelSpec, seed: int | jax.Array) -> dict:
@@ -113,65 +108,45 @@ def init_params(spec: ModelSpec, seed: int | jax.Array) -> dict:
     return params
 
 
-def hidden(params: dict, op: JaxShift, x, spec: ModelSpec):
-    """Node features after the last layer, ``(B, N, F_L)`` for ``x`` of shape
-    ``(B, N, F_0)``. ``op`` is a :class:`JaxShift` or any function
-    ``v -> S v`` on ``(N, M)`` arrays (a perturbed operator, say). The batch is folded into the feature axis of the sparse
+def forward(params: dict, op, x, spec: ModelSpec, xp=jnp):
+    """Model output: ``(B, N, C)`` for node readouts, ``(B, C)`` for pooled
+    readouts, ``(B, N, F_L)`` without a readout, for ``x`` of shape
+    ``(B, N, F_0)``.
+
+    ``op``: a :class:`JaxShift`, a matrix (scipy sparse, numpy, anything with
+    ``@``), or a function ``v -> S v`` on ``(N, M)`` arrays (a perturbed
+    operator, say). ``xp=jnp`` is the float32 training path; ``xp=np`` runs
+    the same model in float64 numpy (the certification path; tests check the
+    two agree). The batch is folded into the feature axis of the sparse
     products (vmap would fall back to a slow kernel)."""
-    z = jnp.swapaxes(jnp.asarray(x), 0, 1)  # (N, B, F)
+    if xp is np:
+        params = jax.tree_util.tree_map(lambda a: np.asarray(a, dtype=np.float64), params)
+        x = np.asarray(x, dtype=np.float64)
+    z = xp.swapaxes(xp.asarray(x), 0, 1)  # (N, B, F)
     n = z.shape[0]
-    prod = op if (callable(op) and not isinstance(op, JaxShift)) else (lambda v: shift_product(op, v))
+    prod = op if callable(op) else (lambda v: op @ v)
 
     def mv(v):
-        return prod(v.reshape(n, -1)).reshape(v.shape)
+        return xp.asarray(prod(v.reshape(n, -1))).reshape(v.shape)
 
     last = spec.depth - 1
     for i, layer in enumerate(params["layers"]):
-        z = run_filter(mv, layer["taps"], z, spec.basis, xp=jnp)
+        z = run_filter(mv, layer["taps"], z, spec.basis, xp=xp)
         if "bias" in layer:
             z = z + layer["bias"]
         if i < last or spec.final_nonlinearity:
-            z = spec.activation(z)
-    return jnp.swapaxes(z, 0, 1)
-
-
-def forward(params: dict, op: JaxShift, x, spec: ModelSpec):
-    """Model output: ``(B, N, C)`` for node readouts, ``(B, C)`` for pooled
-    readouts, ``(B, N, F_L)`` without a readout."""
-    h = hidden(params, op, x, spec)
+            z = spec.activation(z, xp)
+    h = xp.swapaxes(z, 0, 1)
     if spec.readout == "none":
         return h
     r = params["readout"]
     if spec.readout == "mean":
-        h = jnp.mean(h, axis=1)
+        h = xp.mean(h, axis=1)
     elif spec.readout == "sum":
-        h = jnp.sum(h, axis=1)
+        h = xp.sum(h, axis=1)
     return h @ r["weight"] + r["bias"]
 
 
-def forward_np(params: dict, matrix, x, spec: ModelSpec) -> np.ndarray:
-    """:func:`forward` in float64 numpy with a scipy sparse or dense ``S``
-    (the certification path; tests check the two agree)."""
-    p = jax.tree_util.tree_map(lambda a: np.asarray(a, dtype=np.float64), params)
-    z = np.swapaxes(np.asarray(x, dtype=np.float64), 0, 1)
-    n = z.shape[0]
-
-    def mv(v):
-        return np.asarray(matrix @ v.reshape(n, -1)).reshape(v.shape)
-
-    last = spec.depth - 1
-    for i, layer in enumerate(p["layers"]):
-        z = run_filter(mv, layer["taps"], z, spec.basis)
-        if "bias" in layer:
-            z = z + layer["bias"]
-        if i < last or spec.final_nonlinearity:
-            z = spec.activation_np(z)
-    h = np.swapaxes(z, 0, 1)
-    if spec.readout == "none":
-        return h
-    r = p["readout"]
-    if spec.readout == "mean":
-        h = h.mean(axis=1)
-    elif spec.readout == "sum":
-        h = h.sum(axis=1)
-    return h @ r["weight"] + r["bias"]
+def forward_np(params: dict, op, x, spec: ModelSpec) -> np.ndarray:
+    """:func:`forward` with ``xp=np`` (float64)."""
+    return forward(params, op, x, spec, xp=np)

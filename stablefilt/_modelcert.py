@@ -17,10 +17,13 @@ import dataclasses
 
 import numpy as np
 
-from ._certify import MODEL, NORM, _allow, combine, filter_bounds, filter_constants, gain_constants
+from ._certify import MODEL, NORM
+from ._filterbounds import combine, filter_bounds, filter_constants, gain_constants
 from ._filters import frequency_response
 from ._interval import SpectralInterval
+from ._kernel import spectral_first_order
 from ._model import ModelSpec, forward_np
+from ._series import with_allowance
 
 
 def _np(params):
@@ -108,7 +111,8 @@ def layer_bounds(params, spec: ModelSpec, interval: SpectralInterval, eps: float
     for i, layer in enumerate(p["layers"]):
         taps = layer["taps"]
         c = consts[i] if consts is not None else filter_constants(taps, spec.basis, (a, b), eigenvalues, pairwise=False)
-        first, rem = filter_bounds(taps, spec.basis, (a, b), eps, c, eigenvalues)
+        fb = filter_bounds(taps, spec.basis, (a, b), eps, c, eigenvalues)
+        first, rem = fb.first_order, fb.remainder
         beta = first + rem
         b_hat, c0_wide = gain_constants(taps, spec.basis, (a - w, b + w)) if w > 0 else (c.bank_sup, c.lipschitz)
         if eigenvalues is not None:
@@ -152,7 +156,7 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
             diff = delta_l * norm_in + b_hat * diff
             bias = p["layers"][i].get("bias")
             norm_in = b_now * norm_in + (np.sqrt(nodes) * float(np.linalg.norm(bias)) if bias is not None else 0.0)
-        certified[_eps_key(eps)] = float(_allow(rf * diff, 0.0))
+        certified[_eps_key(eps)] = float(with_allowance(rf * diff, 0.0))
         per_unit[_eps_key(eps)] = certified[_eps_key(eps)] / eps if eps > 0 else 0.0
         c_max = max(float(np.max(c.integral_lipschitz)) for c in consts)
         f_max = max(spec.features[1:])
@@ -176,39 +180,6 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
                      "assumes |h| <= 1 (Gama, Bruna, Ribeiro 2020, Thm 4; form from memory); reference only",
     }
     return ModelCertificate(certified, published, per_unit, layers, float(rho), assumptions)
-
-
-def spectral_first_order(taps, basis, eigenvalues, eigenvectors, z, eps: float) -> np.ndarray:
-    """Input-specific first-order bounds ``(B, F_in, F_out)`` per signal and
-    filter: ``eps sqrt(max_i q(lam_i)) sqrt(sum_j q(lam_j) xt_j^2)`` with
-    ``q = phi^T |M| phi`` and ``xt = V^T x_f`` the signal's spectrum.
-
-    Derived (docs/theory.md section 8): with ``Gamma_ij = <a_i, b_j>`` and
-    ``||a_i||^2 = ||b_i||^2 = q(lam_i)``, ``(Et o Gamma) xt =
-    sum_r D(a^r) Et D(b^r) xt``, whose norm is at most
-    ``||[D(a^1) .. D(a^R)]|| ||Et|| ||[D(b^r) xt]_r||``. The smaller value over
-    the Chebyshev and monomial splits is kept.
-    """
-    from ._certify import _abs_kernel, _flat, _kernels, _quad_upper, eigenvalue_slack
-    from ._filters import Basis, basis_values
-
-    taps = np.asarray(taps, dtype=np.float64)
-    k, fin, fout = taps.shape
-    cols, _ = _flat(taps)
-    lam = np.asarray(eigenvalues, dtype=np.float64)
-    lo, hi = float(lam.min()), float(lam.max())
-    splits = [Basis("chebyshev", (lo, hi))] if hi > lo else []
-    splits.append(Basis())
-    zt2 = np.einsum("ni,bnf->bif", eigenvectors, z) ** 2  # (B, N, F_in)
-    best = None
-    for split, (m, dm) in zip(splits, _kernels(cols, basis, splits)):
-        # Upper bounds on phi^T |M| phi with the float64 error included: the
-        # monomial split cancels badly for eigenvalues far from 0.
-        q = _quad_upper(basis_values(lam, k, split), *_abs_kernel(m, dm), split, lam,
-                        eigenvalue_slack(lam)).reshape(fin, fout, -1)
-        val = np.sqrt(q.max(axis=2))[None] * np.sqrt(np.einsum("fgi,bif->bfg", q, zt2, optimize=True))
-        best = val if best is None else np.minimum(best, val)
-    return eps * best * (1 + 1e-9)
 
 
 def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterval, x, eps: float,

@@ -12,13 +12,12 @@ import dataclasses
 import numpy as np
 import scipy.sparse as sp
 
+from ._checks import check_eps
 from ._errors import StablefiltError
-from ._graph import ShiftOperator, _symmetric
+from ._graph import ShiftOperator, symmetric
 
 #: Largest graph for which a dense ``E`` is built.
 DENSE_LIMIT = 3000
-
-PERTURBATIONS = ("relative", "diagonal", "scaling", "additive", "jitter", "delete", "rewire", "relabel")
 
 
 @dataclasses.dataclass(frozen=True)
@@ -42,17 +41,12 @@ class Perturbed:
     perm: np.ndarray | None = None
 
 
-def _check_eps(eps, what="eps"):
-    if not np.isfinite(eps) or eps < 0:
-        raise StablefiltError(f"{what} must be a finite number >= 0; got {eps}.")
-
-
 def _with(op: ShiftOperator, m, keep_kind: bool = False) -> ShiftOperator:
     """The perturbed operator. Its kind is ``as-is`` unless the change keeps
     the construction (a combinatorial Laplacian rebuilt from new edge weights):
     a perturbed normalised Laplacian is no longer one, and its spectral
     interval must not be taken from the construction's ``[0, 2]``."""
-    return ShiftOperator(_symmetric(m), op.kind, op.scale) if keep_kind else ShiftOperator(_symmetric(m))
+    return ShiftOperator(symmetric(m), op.kind, op.scale) if keep_kind else ShiftOperator(symmetric(m))
 
 
 def random_symmetric(n: int, norm: float, rng) -> np.ndarray:
@@ -65,22 +59,20 @@ def random_symmetric(n: int, norm: float, rng) -> np.ndarray:
 
 def relative(op: ShiftOperator, eps: float, seed: int) -> Perturbed:
     """``S + E S + S E`` with a random dense symmetric ``E``, ``||E||_2 = eps``."""
-    _check_eps(eps)
+    check_eps(eps)
     n = op.nodes
     if n > DENSE_LIMIT:
         raise StablefiltError(f"a dense relative perturbation needs N <= {DENSE_LIMIT}; this graph has {n} nodes "
                               "(use the diagonal kind).")
     e = random_symmetric(n, eps, np.random.default_rng(seed))
-    s = op.matrix
-    es = np.asarray(s.T @ e.T).T  # E S
-    return Perturbed(_with(op, s.toarray() + es + es.T), "relative", e, float(eps))
+    return Perturbed(_with(op, relative_product(op.matrix, e, np.eye(n))), "relative", e, float(eps))
 
 
 def diagonal(op: ShiftOperator, eps: float, seed: int) -> Perturbed:
     """``S_ij (1 + e_i + e_j)``: relative with ``E = diag(e)``, ``|e_i| <= eps``
     and ``max |e_i| = eps``; keeps the sparsity pattern and scales to large
     graphs."""
-    _check_eps(eps)
+    check_eps(eps)
     rng = np.random.default_rng(seed)
     e = rng.uniform(-eps, eps, op.nodes)
     if op.nodes:
@@ -95,7 +87,7 @@ def scaling(op: ShiftOperator, eps: float, seed: int = 0) -> Perturbed:
     """``(1 + 2 eps) S``: relative with ``E = eps I`` (docs/theory.md s. 2:
     ``(1 + t) S`` has ``E = (t / 2) I``). The sign follows ``seed``'s parity
     (odd: ``(1 - 2 eps) S``)."""
-    _check_eps(eps)
+    check_eps(eps)
     sign = -1.0 if seed % 2 else 1.0
     e = np.full(op.nodes, sign * eps)
     return Perturbed(_with(op, op.matrix * (1 + 2 * sign * eps)), "scaling", e, float(eps))
@@ -104,7 +96,7 @@ def scaling(op: ShiftOperator, eps: float, seed: int = 0) -> Perturbed:
 def additive(op: ShiftOperator, eps: float, seed: int) -> Perturbed:
     """``S + E`` with a random dense symmetric ``E``, ``||E||_2 = eps``. Not a
     relative perturbation in general: ``e`` is the additive error."""
-    _check_eps(eps)
+    check_eps(eps)
     n = op.nodes
     if n > DENSE_LIMIT:
         raise StablefiltError(f"a dense additive perturbation needs N <= {DENSE_LIMIT}; this graph has {n} nodes.")
@@ -136,7 +128,7 @@ def _rebuild(op: ShiftOperator, rows, cols, vals) -> ShiftOperator:
 def jitter(op: ShiftOperator, size: float, seed: int) -> Perturbed:
     """Edge weights (off-diagonal entries) multiplied by ``1 + u``, ``u``
     uniform in ``[-size, size]``, independently per edge."""
-    _check_eps(size, "jitter size")
+    check_eps(size, "jitter size")
     r, c, v = _offdiag(op)
     u = np.random.default_rng(seed).uniform(-size, size, len(v))
     return Perturbed(_rebuild(op, r, c, v * (1 + u)), "jitter", None, None)
@@ -177,23 +169,43 @@ def relabel(op: ShiftOperator, seed: int) -> Perturbed:
     return Perturbed(op.permuted(perm), "relabel", None, 0.0, perm)
 
 
-def perturb(op: ShiftOperator, kind: str, size: float, seed: int) -> Perturbed:
-    """Dispatch to a generator by name (``size`` is eps, jitter size or rate)."""
-    gens = {"relative": relative, "diagonal": diagonal, "scaling": scaling, "additive": additive,
-            "jitter": jitter, "delete": delete, "rewire": rewire}
-    if kind == "relabel":
-        return relabel(op, seed)
-    if kind not in gens:
-        raise StablefiltError(f"unknown perturbation {kind!r}; expected one of {', '.join(PERTURBATIONS)}.")
-    return gens[kind](op, size, seed)
+def relative_product(s, e, x):
+    """``(S + E S + S E) x``, the product with a relatively perturbed
+    operator (docs/theory.md section 2), without forming it.
+
+    Args:
+      s: ``S``: a matrix (anything with ``@``: numpy, scipy.sparse,
+        :class:`~stablefilt._sparse.JaxShift`, jax) or a function ``v -> S v``.
+      e: ``E``: a dense ``(N, N)`` matrix, its diagonal ``(N,)``, or a
+        function ``v -> E v``.
+      x: ``(N, ...)``, numpy or jax.
+
+    The dense ``S_hat`` is ``relative_product(S, E, I)``.
+    """
+    s_mv = s if callable(s) else (lambda v: s @ v)
+    if callable(e):
+        e_mv = e
+    elif np.ndim(e) == 1:
+        ev = e.reshape((-1,) + (1,) * (np.ndim(x) - 1))
+
+        def e_mv(v):
+            return ev * v
+    else:
+        def e_mv(v):
+            return e @ v
+    sx = s_mv(x)
+    return sx + e_mv(sx) + s_mv(e_mv(x))
 
 
-def apply_relative(matrix, e, x):
-    """``(S + E S + S E) x`` matrix-free, for ``E`` dense or a diagonal
-    vector; ``x`` of shape ``(N, ...)``."""
-    sx = matrix @ x
+def project_ball(e, eps: float, xp=np):
+    """Nearest point of the ball ``||E||_2 <= eps`` of symmetric matrices:
+    the symmetric part with its eigenvalues clipped to ``[-eps, eps]`` (the
+    result symmetrised once more: the product is symmetric only to round-off).
+    A diagonal ``e`` ``(N,)`` has its entries clipped. ``xp``: numpy or
+    ``jax.numpy``."""
     if e.ndim == 1:
-        shape = (-1,) + (1,) * (np.ndim(x) - 1)
-        ev = e.reshape(shape)
-        return sx + ev * sx + matrix @ (ev * x)
-    return sx + e @ sx + matrix @ (e @ x)
+        return xp.clip(e, -eps, eps)
+    e = 0.5 * (e + e.T)
+    w, q = xp.linalg.eigh(e)
+    out = (q * xp.clip(w, -eps, eps)) @ q.T
+    return 0.5 * (out + out.T)

@@ -16,10 +16,16 @@ actually perturbed matrix.
 from __future__ import annotations
 
 import dataclasses
+import functools
+from typing import NamedTuple
 
 import numpy as np
 
-from ._filters import Basis, frequency_response, response_derivative
+from ._exact import kernel_transform
+from ._filters import Basis, basis_values, frequency_response, response_derivative, run_filter
+from ._graph import ShiftOperator
+from ._perturb import project_ball, relative_product
+from ._series import flat_taps
 
 
 def _dense_bank(s, taps, basis):
@@ -53,18 +59,17 @@ def measured_change(s, s_hat, taps, basis: Basis) -> float:
     return float(np.linalg.norm(change_operator(s, s_hat, taps, basis), 2))
 
 
-def _divided(taps_cols, w, basis):
-    """``h^[1](w_i, w_j)`` per filter, ``(F, N, N)``."""
+def divided_differences(taps_cols, w, basis):
+    """First divided differences ``h^[1](w_i, w_j) = (h(w_i) - h(w_j)) /
+    (w_i - w_j)`` per filter, ``(F, N, N)``, with ``h'`` at the midpoint for
+    (nearly) equal ``w_i, w_j`` (Bhatia, "Matrix Analysis", 1997, ch. V)."""
     hw = frequency_response(taps_cols, w, basis).T  # (F, N)
-    dw = response_derivative(taps_cols, w, basis).T
     gap = w[:, None] - w[None, :]
     close = np.abs(gap) <= 1e-7 * max(1.0, np.abs(w).max())
     mid = 0.5 * (w[:, None] + w[None, :])
     dmid = response_derivative(taps_cols, mid.ravel(), basis).T.reshape(-1, *gap.shape)
     safe = np.where(close, 1.0, gap)
-    out = np.where(close[None], dmid, (hw[:, :, None] - hw[:, None, :]) / safe[None])
-    del dw
-    return out
+    return np.where(close[None], dmid, (hw[:, :, None] - hw[:, None, :]) / safe[None])
 
 
 @dataclasses.dataclass(frozen=True)
@@ -104,7 +109,7 @@ def worst_perturbation(s, taps, basis: Basis, eps: float, *, restarts: int = 6, 
     for i in (0, n - 1):
         starts.append((f"v{i}v{i}", np.outer(v0[:, i], v0[:, i])))
     # Worst pairs of the first-order kernel 2 lam h' / divided differences.
-    g = (w0[:, None] + w0[None, :]) * _divided(cols, w0, basis)
+    g = (w0[:, None] + w0[None, :]) * divided_differences(cols, w0, basis)
     gn = np.sqrt(np.sum(g**2, axis=0))
     for idx in np.argsort(gn, axis=None)[::-1][:2]:
         i, j = divmod(int(idx), n)
@@ -114,11 +119,15 @@ def worst_perturbation(s, taps, basis: Basis, eps: float, *, restarts: int = 6, 
         e = rng.standard_normal((n, n))
         starts.append(("random", e + e.T))
     best = SearchResult(np.zeros((n, n)), 0.0, "none", ())
+    eye = np.eye(n)
     for name, e in starts:
-        e = _project(e, eps)
+        # Scale the start onto the ball (keeping its direction), then project.
+        e = 0.5 * (e + e.T)
+        top = float(np.max(np.abs(np.linalg.eigvalsh(e))))
+        e = project_ball(e * (eps / top) if top > eps else e, eps)
         hist = []
         for _ in range(iters):
-            s_hat = s + e @ s + s @ e
+            s_hat = relative_product(s, e, eye)
             d = change_operator(s, s_hat, taps, basis)
             uu, sv, vt = np.linalg.svd(d)
             val = float(sv[0])
@@ -129,7 +138,7 @@ def worst_perturbation(s, taps, basis: Basis, eps: float, *, restarts: int = 6, 
             u = uu[:, 0].reshape(fout, n).T  # (N, F_out)
             x = vt[0].reshape(fin, n).T  # (N, F_in)
             w, v = np.linalg.eigh(s_hat)
-            dd = _divided(cols, w, basis).reshape(fin, fout, n, n)
+            dd = divided_differences(cols, w, basis).reshape(fin, fout, n, n)
             ut, xt = v.T @ u, v.T @ x
             gs = np.einsum("fgij,ig,jf->ij", dd, ut, xt)
             gs = v @ gs @ v.T
@@ -143,24 +152,127 @@ def worst_perturbation(s, taps, basis: Basis, eps: float, *, restarts: int = 6, 
                 break
             e = new
         # Measure the last iterate too.
-        val = measured_change(s, s + e @ s + s @ e, taps, basis)
+        val = measured_change(s, relative_product(s, e, eye), taps, basis)
         if val > best.change:
             best = SearchResult(e.copy(), val, name, tuple(hist + [val]))
     return best
-
-
-def _project(e, eps):
-    """Nearest point of the ball ``||E||_2 <= eps`` (clip eigenvalues)."""
-    e = 0.5 * (e + e.T)
-    lam, q = np.linalg.eigh(e)
-    scale = np.max(np.abs(lam))
-    if scale == 0:
-        return e
-    lam = np.clip(lam * (eps / scale) if scale > eps else lam, -eps, eps)
-    return (q * lam) @ q.T
 
 
 def _extreme(g, eps):
     """``argmax_{||E|| <= eps} <G, E> = eps Q sign(Lambda) Q^T``."""
     lam, q = np.linalg.eigh(g)
     return (q * (eps * np.where(lam >= 0, 1.0, -1.0))) @ q.T
+
+
+# ---------------------------------------------------------------------------
+# Realised changes on the given graph (the ``lower`` figure of a certificate).
+
+
+#: Largest graph for which eigenvectors are used to build worst-pair
+#: perturbations for the ``lower`` figure.
+LOWER_EIG_LIMIT = 600
+
+
+def _bank_apply(matvec, taps, x, basis, transpose=False):
+    t = np.swapaxes(taps, 1, 2) if (transpose and taps.ndim == 3) else taps
+    return run_filter(matvec, t, x, basis)
+
+
+def realised_change(mv_a, mv_b, taps, basis: Basis, n: int, *, start=None, iters: int = 40, seed: int = 0) -> float:
+    """A realised lower bound on ``||H_a - H_b||`` (operator 2-norm) by power
+    iteration on ``D^T D`` with ``D = H_a - H_b``: every iterate gives
+    ``||D x|| / ||x||``, the change of an actual signal ``x``.
+
+    ``mv_a``, ``mv_b``: products with the two shift operators.
+    """
+    taps = np.asarray(taps, dtype=np.float64)
+    fin = taps.shape[1] if taps.ndim == 3 else 1
+    rng = np.random.default_rng(seed)
+    x = rng.standard_normal((n, fin)) if start is None else np.asarray(start, dtype=np.float64).reshape(n, fin)
+    if taps.ndim == 1:
+        x = x[:, 0]
+
+    def d(z, tr=False):
+        return _bank_apply(mv_a, taps, z, basis, tr) - _bank_apply(mv_b, taps, z, basis, tr)
+
+    best = 0.0
+    for _ in range(iters):
+        nx = np.linalg.norm(x)
+        if nx == 0 or not np.isfinite(nx):
+            break
+        x = x / nx
+        y = d(x)
+        best = max(best, float(np.linalg.norm(y)))
+        x = d(y, True)
+    return best
+
+
+def _worst_pairs(lam, vecs, taps, basis, count=3):
+    """Eigenpair indices ``(i, j)`` with the largest first-order change
+    ``|Gamma_ij|`` (Frobenius over the filters of a bank)."""
+    cols, _ = flat_taps(taps)
+    k = cols.shape[0]
+    lo, hi = float(np.min(lam)), float(np.max(lam))
+    split = Basis("chebyshev", (lo, hi)) if hi > lo else Basis()  # monomials cancel away from 0
+    m = np.einsum("abj,jf->fab", kernel_transform(k, basis, split), cols)
+    phi = basis_values(lam, k, split)
+    g = np.einsum("ia,fab,jb->ij", phi, m, phi) if cols.shape[1] == 1 else np.sqrt(
+        np.einsum("fij->ij", np.einsum("ia,fab,jb->fij", phi, m, phi) ** 2))
+    g = np.abs(g)
+    flat = np.argsort(g, axis=None)[::-1]
+    out = []
+    for idx in flat:
+        i, j = divmod(int(idx), g.shape[0])
+        if (j, i) not in out:
+            out.append((i, j))
+        if len(out) >= count:
+            break
+    return out
+
+
+class LowerChange(NamedTuple):
+    """A change actually realised, and the perturbation that realised it."""
+
+    value: float
+    perturbation: str
+
+
+def lower_change(op: ShiftOperator, taps, basis: Basis, eps: float, *, eig=None, iters: int = 40) -> LowerChange:
+    """The largest change actually realised by perturbations built here:
+    ``E = +-eps I`` (scaling) and, when eigenvectors are at hand,
+    ``E = +-eps (v_i v_j^T + v_j v_i^T)`` (or ``+-eps v_i v_i^T``) for the
+    pairs with the largest ``|Gamma_ij|`` (docs/theory.md section 5 item 3).
+
+    Returns a :class:`LowerChange`.
+    """
+    s = op.matrix
+    n = s.shape[0]
+
+    def s_mv(x):
+        return s @ x
+
+    best, how = 0.0, "none"
+    for sign in (1.0, -1.0):
+        e = sign * eps
+        v = realised_change(functools.partial(relative_product, s, lambda x, e=e: e * x), s_mv, taps, basis, n, iters=iters)
+        if v > best:
+            best, how = v, f"scaling E = {sign * eps:+g} I"
+    if eig is not None:
+        lam, vecs = eig
+        for i, j in _worst_pairs(lam, vecs, taps, basis):
+            vi, vj = vecs[:, i], vecs[:, j]
+            for sign in (1.0, -1.0):
+                e = sign * eps
+                if i == j:
+                    def e_mv(x, vi=vi, e=e):
+                        return e * np.multiply.outer(vi, vi @ x)
+                else:
+                    def e_mv(x, vi=vi, vj=vj, e=e):
+                        return e * (np.multiply.outer(vi, vj @ x) + np.multiply.outer(vj, vi @ x))
+                fin = taps.shape[1] if np.ndim(taps) == 3 else 1
+                start = np.repeat(vj[:, None], fin, axis=1) + 1e-3 * np.repeat(vi[:, None], fin, axis=1)
+                v = realised_change(functools.partial(relative_product, s, e_mv), s_mv, taps, basis, n, start=start, iters=iters)
+                if v > best:
+                    kind = f"v_{i} v_{i}^T" if i == j else f"(v_{i} v_{j}^T + v_{j} v_{i}^T)"
+                    best, how = v, f"E = {sign * eps:+g} {kind}"
+    return LowerChange(best, how)

@@ -14,7 +14,7 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.spatial import cKDTree
 
-from ._graph import ShiftOperator, shift_operator
+from ._graph import ShiftOperator
 
 
 @dataclasses.dataclass(frozen=True)
@@ -43,17 +43,6 @@ def make_orchard(sensors: int = 120, rows: int = 2, cols: int = 3, neighbours: i
     a = sp.coo_array((w, (r, c)), shape=(sensors, sensors)).tocsr()
     a = a.maximum(a.T)
     return Orchard(pos, block, rows * cols, sp.csr_array(a))
-
-
-def season_drift(orchard: Orchard, eps: float, seed: int) -> ShiftOperator:
-    """The sensor graph re-estimated next season: every sensor's link weights
-    scaled by ``1 + e_i + e_j`` with ``|e_i| <= eps`` (a diagonal relative
-    perturbation; docs/theory.md section 2)."""
-    rng = np.random.default_rng(seed)
-    e = rng.uniform(-eps, eps, orchard.adjacency.shape[0])
-    a = orchard.adjacency.tocoo()
-    w = a.data * (1 + e[a.row] + e[a.col])
-    return shift_operator(sp.coo_array((w, (a.row, a.col)), shape=a.shape).tocsr())
 
 
 def leak_snapshots(orchard: Orchard, op: ShiftOperator, count: int, seed: int, spread: float = 0.6,

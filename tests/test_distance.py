@@ -73,7 +73,7 @@ def test_sylvester_matches_scipy(name, change):
     lam = np.linalg.eigvalsh(s)
     assert np.min(lam[:, None] + lam[None, :]) > 0.05  # every lam_i + lam_j away from 0
     op = sf.shift_operator(s)
-    p = pt.perturb(op, change, 0.03, 5)
+    p = getattr(pt, change)(op, 0.03, 5)
     s_hat = p.op.dense()
     d = s_hat - s
     ref = sla.solve_sylvester(s, s, d)

@@ -13,7 +13,7 @@ from reference import gamma
 
 import stablefilt as sf
 from stablefilt._exact import kernel_transform
-from stablefilt._kernel import as_series
+from stablefilt._series import as_series
 
 
 def _spectrum(kind):

@@ -12,7 +12,7 @@ import scipy.linalg as sla
 from reference import random_symmetric, relative
 
 import stablefilt as sf
-from stablefilt._certify import relative_matvec
+from stablefilt._perturb import relative_product
 
 
 @pytest.mark.parametrize("eps", [1e-4, 1e-2, 0.1, -0.3])
@@ -55,14 +55,20 @@ def test_diagonal_e_keeps_the_sparsity_pattern():
     assert np.linalg.norm(np.diag(e), 2) == pytest.approx(np.abs(e).max(), rel=1e-15)
 
 
-def test_relative_matvec_matches_dense(family):
+def test_relative_product_matches_dense(family):
     _, op = family
     s = op.dense()
     rng = np.random.default_rng(702)
     e = random_symmetric(rng, op.nodes, 0.1)
     x = rng.standard_normal((op.nodes, 3))
-    mv = relative_matvec(lambda z: op.matrix @ z, lambda z: e @ z)
-    np.testing.assert_allclose(mv(x), relative(s, e) @ x, atol=1e-13 * max(1.0, np.abs(s).max()))
+    tol = 1e-13 * max(1.0, np.abs(s).max())
+    # S as a sparse matrix or a function, E dense or a function: reference tests/reference.py::relative.
+    for s_arg, e_arg in ((op.matrix, e), (lambda z: op.matrix @ z, lambda z: e @ z)):
+        np.testing.assert_allclose(relative_product(s_arg, e_arg, x), relative(s, e) @ x, atol=tol)
+    # A diagonal E as its vector, and the dense S_hat as the product with I.
+    d = np.diag(e).copy()
+    np.testing.assert_allclose(relative_product(op.matrix, d, x), relative(s, np.diag(d)) @ x, atol=tol)
+    np.testing.assert_allclose(relative_product(s, e, np.eye(op.nodes)), relative(s, e), atol=tol)
 
 
 def test_relative_perturbation_moves_spectrum_by_at_most_2_eps_r(family):

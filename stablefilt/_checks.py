@@ -1,0 +1,43 @@
+"""Checks of the numbers a user gives: a perturbation size eps and a
+spectral interval. Each raises the library's own error with one sentence."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ._errors import FilterError, StablefiltError
+
+
+def check_eps(eps, what: str = "eps", *, positive: bool = False, error: type = StablefiltError) -> float:
+    """``eps`` as a float, finite and ``>= 0`` (``> 0`` with ``positive``); a
+    negative or non-finite size would give a negative or NaN figure called
+    certified.
+
+    Args:
+      eps: the value as given (a number or a string).
+      what: its name in the message (``eps``, ``--eps``, ``jitter size``).
+      positive: refuse 0 too.
+      error: the exception type to raise.
+    """
+    try:
+        e = float(eps)
+    except (TypeError, ValueError):
+        raise error(f"{what} {eps!r} is not a number.") from None
+    if not math.isfinite(e) or e < 0 or (positive and e == 0):
+        raise error(f"{what} must be a finite number {'> 0' if positive else '>= 0'}; got {eps!r}.")
+    return e
+
+
+def check_interval(interval) -> tuple[float, float]:
+    """``(a, b)`` as floats, both finite with ``a <= b``."""
+    try:
+        iv = np.asarray(interval, dtype=np.float64).ravel()
+    except (TypeError, ValueError):
+        iv = np.zeros(0)
+    if iv.shape != (2,) or not np.all(np.isfinite(iv)) or iv[0] > iv[1]:
+        raise FilterError(f"the spectral interval must be two finite numbers a <= b; got {interval!r}.")
+    return float(iv[0]), float(iv[1])
+
+
