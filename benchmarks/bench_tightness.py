@@ -3,7 +3,7 @@
 For each case (graph family x shift kind x basis, cycled), a single filter
 with random taps of decaying size, ``c_k ~ N(0, 1) 0.5^k``, is certified at
 ``eps`` by ``stablefilt.certify_filter``, and the strongest change actually
-realised is the larger of ``stablefilt._search.worst_perturbation(...).change``
+realised is the larger of ``stablefilt.stress.worst_perturbation(...).change``
 (a search over ``E``, measured on the perturbed matrix) and the certificate's
 own ``lower``. Printed: the median, min and max of
 ``certified / strongest change`` over the suite, the same for the published
@@ -29,7 +29,7 @@ import scipy.sparse as sp
 from _common import blas_threads, geometric_adjacency, machine_note
 
 import stablefilt as sf
-from stablefilt._search import worst_perturbation
+from stablefilt.stress import worst_perturbation
 
 TARGET = 1.25
 FAMILIES = ("erdos-renyi", "geometric", "bipartite")

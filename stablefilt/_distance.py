@@ -13,6 +13,7 @@ bound on the true distance modulo permutation.
 from __future__ import annotations
 
 import dataclasses
+from typing import NamedTuple
 
 import numpy as np
 from scipy.optimize import linear_sum_assignment, quadratic_assignment
@@ -103,9 +104,27 @@ def misalignment(s: np.ndarray, e: np.ndarray, vs=None) -> float:
     return float((gap + 1) ** 2 - 1)
 
 
-def sylvester_relative(s: np.ndarray, s_hat: np.ndarray):
-    """``(E, residual, singular_pairs)`` with ``S E + E S`` closest to
-    ``S_hat - S``; ``E`` is zero on pairs with ``lam_i + lam_j`` near zero."""
+class SylvesterSolution(NamedTuple):
+    """The relative error ``E`` of a change of ``S`` (docs/theory.md s.2).
+
+    Attributes:
+      e: symmetric ``(N, N)`` with ``S E + E S`` closest to ``S_hat - S``.
+      residual: ``||S E + E S - (S_hat - S)||_2``.
+      singular_pairs: eigenvalue pairs with ``lam_i + lam_j`` near zero
+        (``E`` set to zero there).
+      eigenvectors: of ``S`` (``numpy.linalg.eigh``).
+    """
+
+    e: np.ndarray
+    residual: float
+    singular_pairs: int
+    eigenvectors: np.ndarray
+
+
+def sylvester_relative(s: np.ndarray, s_hat: np.ndarray) -> SylvesterSolution:
+    """Solve ``S E + E S = S_hat - S`` in the eigenbasis of ``S``:
+    ``Et_ij = Dt_ij / (lam_i + lam_j)``; ``E`` is zero on pairs with
+    ``lam_i + lam_j`` near zero. Returns a :class:`SylvesterSolution`."""
     lam, v = np.linalg.eigh(s)
     d = s_hat - s
     dt = v.T @ d @ v
@@ -116,7 +135,7 @@ def sylvester_relative(s: np.ndarray, s_hat: np.ndarray):
     e = v @ et @ v.T
     e = 0.5 * (e + e.T)
     resid = float(np.linalg.norm(s @ e + e @ s - d, 2))
-    return e, resid, int(np.count_nonzero(sing)), v
+    return SylvesterSolution(e, resid, int(np.count_nonzero(sing)), v)
 
 
 def align(a: ShiftOperator, b: ShiftOperator, seed: int = 0) -> np.ndarray:
@@ -148,7 +167,8 @@ def distance(a: ShiftOperator, b: ShiftOperator, *, align_nodes: bool = False, s
     perm = align(a, b, seed) if align_nodes else None
     s = a.dense()
     s_hat = b.dense() if perm is None else b.dense()[perm][:, perm]
-    e, resid, nsing, v = sylvester_relative(s, s_hat)
+    sol = sylvester_relative(s, s_hat)
+    e, resid, nsing, v = sol.e, sol.residual, sol.singular_pairs, sol.eigenvectors
     add = float(np.linalg.norm(s_hat - s, 2))
     ok = resid <= 1e-8 * max(add, np.finfo(float).tiny) or add == 0.0
     return Distance(float(np.linalg.norm(e, 2)), resid, bool(ok), misalignment(s, e, v), add, align_nodes, perm,

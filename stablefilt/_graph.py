@@ -16,6 +16,7 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from ._errors import GraphError
+from ._interval import spectral_interval
 
 #: Kinds of shift operator built from a weighted adjacency matrix.
 KINDS = ("as-is", "scaled-adjacency", "laplacian", "normalized-laplacian")
@@ -227,8 +228,6 @@ def shift_operator(source, kind: str = "as-is", *, tol: float = SYMMETRY_TOL, na
         eye = sp.diags_array(pos.astype(np.float64))
         return ShiftOperator(symmetric(eye - d @ m @ d), kind)
     # scaled-adjacency: divide by a certified bound on the spectral radius.
-    from ._interval import spectral_interval
-
     iv = spectral_interval(ShiftOperator(m, "as-is"))
     s = max(abs(iv.lower), abs(iv.upper))
     if s == 0.0:

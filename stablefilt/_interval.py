@@ -23,13 +23,15 @@ from __future__ import annotations
 
 import dataclasses
 import warnings
+from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from ._graph import ShiftOperator
+if TYPE_CHECKING:  # only op.matrix and op.kind are read; _graph imports this module
+    from ._graph import ShiftOperator
 
 #: Relative outward widening of every computed end, far above float64
 #: round-off in the eigenvalues of a stored matrix (common practice).

@@ -82,6 +82,14 @@ _ACTIVATIONS = {
 }
 
 
+def spec_from(m: dict, basis: Basis, in_features: int, outputs: int) -> ModelSpec:
+    """The :class:`ModelSpec` of a config's ``[model]`` table. Without a
+    readout the last layer is linear (no nonlinearity on the output)."""
+    return ModelSpec(tuple([in_features] + list(m["features"])), taps=m["taps"], basis=basis,
+                     nonlinearity=m["nonlinearity"], bias=m["bias"], readout=m["readout"], outputs=outputs,
+                     final_nonlinearity=m["readout"] != "none")
+
+
 def init_params(spec: ModelSpec, seed: int | jax.Array) -> dict:
     """Deterministic initialisation: taps ``~ N(0, 1/(F_in K))`` scaled down
     by ``1/(k+1)`` for tap ``k`` (so responses start smooth), zero biases,

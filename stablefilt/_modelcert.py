@@ -14,11 +14,12 @@ unperturbed path, weighted per filter.
 from __future__ import annotations
 
 import dataclasses
+from typing import NamedTuple
 
 import numpy as np
 
 from ._certify import MODEL, NORM
-from ._filterbounds import combine, filter_bounds, filter_constants, gain_constants
+from ._filterbounds import FilterConstants, combine, filter_bounds, filter_constants, gain_constants
 from ._filters import frequency_response
 from ._interval import SpectralInterval
 from ._kernel import spectral_first_order
@@ -32,12 +33,17 @@ def _np(params):
     return jax.tree_util.tree_map(lambda a: np.asarray(a, dtype=np.float64), params)
 
 
+def _key(eps: float) -> str:
+    """An eps as a JSON key (the run log, summary.json and --json formats)."""
+    return f"{eps:g}"
+
+
 def readout_factor(params, spec: ModelSpec, nodes: int) -> float:
     """Bound on the readout's Lipschitz constant in the Frobenius norm:
     ``||W||_2`` (node), ``/ sqrt(N)`` (mean), ``* sqrt(N)`` (sum), 1 (none)."""
     if spec.readout == "none":
         return 1.0
-    w = float(np.linalg.norm(np.asarray(params["readout"]["weight"], dtype=np.float64), 2)) * (1 + 1e-9)
+    w = float(with_allowance(np.linalg.norm(np.asarray(params["readout"]["weight"], dtype=np.float64), 2), 0.0))
     if spec.readout == "mean":
         return w / np.sqrt(nodes)
     if spec.readout == "sum":
@@ -46,48 +52,42 @@ def readout_factor(params, spec: ModelSpec, nodes: int) -> float:
 
 
 @dataclasses.dataclass(frozen=True)
-class LayerReport:
-    """Per-layer constants (max over the bank's filters) and bounds."""
+class LayerConstants:
+    """A layer's reported constants, the max over its bank's filters:
+    integral Lipschitz ``C``, kernel ``kappa`` (over the eigenvalues when
+    known) and ``sup ||H||``."""
 
     integral_lipschitz: float
     kernel: float
     sup: float
-    change: dict  # eps (str) -> Delta_l
 
 
 @dataclasses.dataclass(frozen=True)
-class ModelCertificate:
-    """Certified and reference bounds of a model on one graph.
+class ModelConstants:
+    """The eps-free part of a model's certificate on one graph, computed once
+    (:func:`model_constants`) and reused for every eps (:func:`model_bounds`).
 
     Attributes:
-      certified: eps -> rigorous bound on ``||Phi(S) x - Phi(S_hat) x||_F``
-        for every input with ``||x||_F <= rho``.
-      published: eps -> the published GNN form (first order, reference only).
-      per_unit: eps -> ``certified / eps``.
-      layers: per-layer constants and ``Delta_l``.
-      assumptions: model, norm, interval, rho, methods.
+      params: the model's params in float64 numpy.
+      spec: the :class:`ModelSpec`.
+      interval: the certified spectral interval of ``S``.
+      nodes: ``N``.
+      eigenvalues: all eigenvalues of ``S``, or None.
+      filters: per layer, the bank's :class:`FilterConstants` (no ``C2``).
+      gains: per layer, a bound ``B_l`` on ``||H_l(S)||_2``.
+      readout: bound on the readout's Lipschitz constant.
+      layers: per layer, the reported :class:`LayerConstants`.
     """
 
-    certified: dict
-    published: dict
-    per_unit: dict
-    layers: tuple[LayerReport, ...]
-    rho: float
-    assumptions: dict
-
-    def as_dict(self) -> dict:
-        return {
-            "certified": self.certified,
-            "published": self.published,
-            "per_unit": self.per_unit,
-            "layers": [dataclasses.asdict(x) for x in self.layers],
-            "rho": self.rho,
-            "assumptions": self.assumptions,
-        }
-
-
-def _eps_key(e: float) -> str:
-    return f"{e:g}"
+    params: dict
+    spec: ModelSpec
+    interval: SpectralInterval
+    nodes: int
+    eigenvalues: np.ndarray | None
+    filters: tuple[FilterConstants, ...]
+    gains: tuple[float, ...]
+    readout: float
+    layers: tuple[LayerConstants, ...]
 
 
 def _bank_sup_eig(taps, basis, lam):
@@ -95,38 +95,146 @@ def _bank_sup_eig(taps, basis, lam):
     all the eigenvalues, with a round-off allowance."""
     cols = taps.reshape(taps.shape[0], -1)
     h = frequency_response(cols, lam, basis).reshape(len(lam), *taps.shape[1:])
-    return float(np.max(np.linalg.norm(h, ord=2, axis=(1, 2)))) * (1 + 1e-9) + 1e-12
+    return float(with_allowance(np.max(np.linalg.norm(h, ord=2, axis=(1, 2))), 1.0))
 
 
-def layer_bounds(params, spec: ModelSpec, interval: SpectralInterval, eps: float, eigenvalues=None,
-                 consts=None, with_parts: bool = False):
-    """Per layer: ``(beta_l, B_l, B_hat_l)``: the ``F_in x F_out`` matrix of
-    per-filter change bounds, a bound on ``||H_l(S)||`` and on
-    ``||H_l(S_hat)||`` (spectrum of ``S_hat`` within ``2 eps R`` of that of
-    ``S``, Weyl's inequality)."""
+def model_constants(params, spec: ModelSpec, interval: SpectralInterval, nodes: int,
+                    eigenvalues=None) -> ModelConstants:
+    """The eps-free constants of a model on a graph with spectrum in
+    ``interval`` (and, when given, these ``eigenvalues``)."""
     p = _np(params)
+    iv = (interval.lower, interval.upper)
+    filters, gains, layers = [], [], []
+    for layer in p["layers"]:
+        taps = layer["taps"]
+        c = filter_constants(taps, spec.basis, iv, eigenvalues, pairwise=False)
+        filters.append(c)
+        gains.append(c.bank_sup if eigenvalues is None else min(c.bank_sup, _bank_sup_eig(taps, spec.basis, eigenvalues)))
+        kap = c.kernel if c.kernel_spectrum is None else np.minimum(c.kernel, c.kernel_spectrum)
+        layers.append(LayerConstants(float(np.max(c.integral_lipschitz)), float(np.max(kap)), float(c.bank_sup)))
+    return ModelConstants(p, spec, interval, int(nodes), eigenvalues, tuple(filters), tuple(gains),
+                          readout_factor(p, spec, nodes), tuple(layers))
+
+
+class LayerBound(NamedTuple):
+    """One layer's bounds at one eps.
+
+    Attributes:
+      beta: ``(F_in, F_out)`` per-filter bounds on the change of ``H_l``.
+      remainder: ``(F_in, F_out)`` their second-order remainder part.
+      gain: a bound ``B_l`` on ``||H_l(S)||_2``.
+      gain_perturbed: a bound ``B_hat_l`` on ``||H_l(S_hat)||_2``.
+    """
+
+    beta: np.ndarray
+    remainder: np.ndarray
+    gain: float
+    gain_perturbed: float
+
+
+def layer_bounds(constants: ModelConstants, eps: float) -> tuple[LayerBound, ...]:
+    """Per layer, its :class:`LayerBound` at ``eps``. The spectrum of
+    ``S_hat`` lies within ``w = 2 eps R`` of that of ``S`` (Weyl's
+    inequality), so ``B_hat_l`` is taken over the widened interval, or, with
+    the eigenvalues, as ``B_l + w ||C0||_F``."""
+    spec, interval, lam = constants.spec, constants.interval, constants.eigenvalues
     a, b = interval.lower, interval.upper
     w = 2.0 * eps * interval.radius
     out = []
-    for i, layer in enumerate(p["layers"]):
+    for layer, c, b_now in zip(constants.params["layers"], constants.filters, constants.gains):
         taps = layer["taps"]
-        c = consts[i] if consts is not None else filter_constants(taps, spec.basis, (a, b), eigenvalues, pairwise=False)
-        fb = filter_bounds(taps, spec.basis, (a, b), eps, c, eigenvalues)
-        first, rem = fb.first_order, fb.remainder
-        beta = first + rem
+        fb = filter_bounds(taps, spec.basis, (a, b), eps, c, lam)
         b_hat, c0_wide = gain_constants(taps, spec.basis, (a - w, b + w)) if w > 0 else (c.bank_sup, c.lipschitz)
-        if eigenvalues is not None:
-            b_now = min(c.bank_sup, _bank_sup_eig(taps, spec.basis, eigenvalues))
+        if lam is not None:
             # ||H(mu) - H(lam_i)||_2 <= |mu - lam_i| ||C0||_F over the widened interval.
-            b_hat = min(b_hat, b_now + w * float(np.linalg.norm(np.asarray(c0_wide))) * (1 + 1e-9))
-        else:
-            b_now = c.bank_sup
-        out.append((np.asarray(beta), b_now, b_hat) + ((np.asarray(rem),) if with_parts else ()))
-    return out
+            b_hat = min(b_hat, b_now + float(with_allowance(w * float(np.linalg.norm(np.asarray(c0_wide))), 0.0)))
+        out.append(LayerBound(np.asarray(fb.first_order + fb.remainder), np.asarray(fb.remainder), b_now, b_hat))
+    return tuple(out)
+
+
+@dataclasses.dataclass(frozen=True)
+class ModelEpsBound:
+    """A model's bounds at one ``eps``.
+
+    Attributes:
+      eps: the size of the relative perturbation.
+      certified: rigorous bound on ``||Phi(S) x - Phi(S_hat) x||_F`` for
+        every input with ``||x||_F <= rho``.
+      published: the published GNN form (first order, reference only).
+      per_unit: ``certified / eps`` (0 at eps 0).
+      layer_changes: per layer, ``Delta_l``, the bound on the change of ``H_l``.
+    """
+
+    eps: float
+    certified: float
+    published: float
+    per_unit: float
+    layer_changes: tuple[float, ...]
+
+
+def model_bounds(constants: ModelConstants, eps: float, *, rho: float, delta: float = 8.0) -> ModelEpsBound:
+    """The model's bounds at ``eps`` for inputs with ``||x||_F <= rho``, by
+    the layer recursion of the module docstring (docs/theory.md s.5 item 6,
+    s.8); ``delta`` is the eigenvector misalignment of the published form."""
+    eps = float(eps)
+    p, spec, nodes = constants.params, constants.spec, constants.nodes
+    norm_in = float(rho)
+    diff = 0.0
+    changes = []
+    for i, lb in enumerate(layer_bounds(constants, eps)):
+        delta_l = combine(lb.beta)
+        changes.append(delta_l)
+        diff = delta_l * norm_in + lb.gain_perturbed * diff
+        bias = p["layers"][i].get("bias")
+        norm_in = lb.gain * norm_in + (np.sqrt(nodes) * float(np.linalg.norm(bias)) if bias is not None else 0.0)
+    rf = constants.readout
+    certified = float(with_allowance(rf * diff, 0.0))
+    c_max = max(float(np.max(c.integral_lipschitz)) for c in constants.filters)
+    f_max = max(spec.features[1:])
+    published = float(2 * c_max * (1 + delta * np.sqrt(nodes)) * spec.depth * f_max ** (spec.depth - 1) * eps * rf * rho)
+    return ModelEpsBound(eps, certified, published, certified / eps if eps > 0 else 0.0, tuple(changes))
+
+
+@dataclasses.dataclass(frozen=True)
+class ModelCertificate:
+    """Certified and reference bounds of a model on one graph.
+
+    Attributes:
+      bounds: one :class:`ModelEpsBound` per eps, in the order asked.
+      layers: per-layer constants.
+      rho: the input norm bound.
+      assumptions: model, norm, interval, rho, methods.
+    """
+
+    bounds: tuple[ModelEpsBound, ...]
+    layers: tuple[LayerConstants, ...]
+    rho: float
+    assumptions: dict
+
+    def at(self, eps: float) -> ModelEpsBound:
+        """The bounds at ``eps`` (the last of them if ``eps`` was given twice)."""
+        found = [b for b in self.bounds if b.eps == float(eps)]
+        if not found:
+            raise KeyError(f"no bound at eps {eps:g}; this certificate has eps "
+                           f"{', '.join(_key(b.eps) for b in self.bounds)}.")
+        return found[-1]
+
+    def as_dict(self) -> dict:
+        """The JSON form (run log, summary.json, ``certify --json``): per-eps
+        figures keyed by ``f"{eps:g}"``."""
+        return {
+            "certified": {_key(b.eps): b.certified for b in self.bounds},
+            "published": {_key(b.eps): b.published for b in self.bounds},
+            "per_unit": {_key(b.eps): b.per_unit for b in self.bounds},
+            "layers": [dict(dataclasses.asdict(lc), change={_key(b.eps): b.layer_changes[i] for b in self.bounds})
+                       for i, lc in enumerate(self.layers)],
+            "rho": self.rho,
+            "assumptions": self.assumptions,
+        }
 
 
 def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: int, eps_list, *, rho: float,
-                  eigenvalues=None, delta: float = 8.0) -> ModelCertificate:
+                  eigenvalues=None, delta: float = 8.0, constants: ModelConstants | None = None) -> ModelCertificate:
     """Operator-level certificate of a model for inputs with ``||x||_F <= rho``.
 
     Args:
@@ -138,35 +246,12 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
       rho: input norm bound.
       eigenvalues: all eigenvalues of ``S`` (tighter bounds) or None.
       delta: eigenvector misalignment in the published form.
+      constants: the :func:`model_constants` of these arguments, when
+        already computed.
     """
-    p = _np(params)
-    consts = [filter_constants(layer["taps"], spec.basis, (interval.lower, interval.upper), eigenvalues,
-                               pairwise=False) for layer in p["layers"]]
-    rf = readout_factor(p, spec, nodes)
-    certified, published, per_unit = {}, {}, {}
-    changes = [dict() for _ in consts]
-    for eps in eps_list:
-        eps = float(eps)
-        lb = layer_bounds(p, spec, interval, eps, eigenvalues, consts)
-        norm_in = float(rho)
-        diff = 0.0
-        for i, (beta, b_now, b_hat) in enumerate(lb):
-            delta_l = combine(beta)
-            changes[i][_eps_key(eps)] = delta_l
-            diff = delta_l * norm_in + b_hat * diff
-            bias = p["layers"][i].get("bias")
-            norm_in = b_now * norm_in + (np.sqrt(nodes) * float(np.linalg.norm(bias)) if bias is not None else 0.0)
-        certified[_eps_key(eps)] = float(with_allowance(rf * diff, 0.0))
-        per_unit[_eps_key(eps)] = certified[_eps_key(eps)] / eps if eps > 0 else 0.0
-        c_max = max(float(np.max(c.integral_lipschitz)) for c in consts)
-        f_max = max(spec.features[1:])
-        published[_eps_key(eps)] = float(2 * c_max * (1 + delta * np.sqrt(nodes)) * spec.depth
-                                         * f_max ** (spec.depth - 1) * eps * rf * rho)
-    layers = tuple(
-        LayerReport(float(np.max(c.integral_lipschitz)),
-                    float(np.max(c.kernel if c.kernel_spectrum is None else np.minimum(c.kernel, c.kernel_spectrum))),
-                    float(c.bank_sup), ch)
-        for c, ch in zip(consts, changes))
+    if constants is None:
+        constants = model_constants(params, spec, interval, nodes, eigenvalues)
+    bounds = tuple(model_bounds(constants, eps, rho=rho, delta=delta) for eps in eps_list)
     assumptions = {
         "perturbation_model": MODEL,
         "norm": NORM + "; model output in the Frobenius norm",
@@ -179,34 +264,35 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
         "published": f"2 C (1 + delta sqrt(N)) L F^(L-1) eps rho ||readout||, delta = {delta:g}, first order, "
                      "assumes |h| <= 1 (Gama, Bruna, Ribeiro 2020, Thm 4; form from memory); reference only",
     }
-    return ModelCertificate(certified, published, per_unit, layers, float(rho), assumptions)
+    return ModelCertificate(bounds, constants.layers, float(rho), assumptions)
 
 
 def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterval, x, eps: float,
-                   eigenvalues=None, eigenvectors=None) -> np.ndarray:
+                   eigenvalues=None, eigenvectors=None, constants: ModelConstants | None = None) -> np.ndarray:
     """Input-specific certificate per signal: for ``x`` of shape
     ``(B, N, F_0)``, a bound on ``||Phi(S) x_b - Phi(S_hat) x_b||_F`` for each
     ``b``, using the measured per-feature norms of the unperturbed path
     (``||beta_l^T n_{l-1}||_2`` in place of ``||beta_l||_2 ||x_{l-1}||``) and,
     when ``eigenvectors`` of ``S`` are given (with ``eigenvalues``), the
-    spectrum of each feature (:func:`spectral_first_order`)."""
-    p = _np(params)
+    spectrum of each feature (:func:`spectral_first_order`). ``constants``:
+    the :func:`model_constants` of these arguments, when already computed."""
     n = op_matrix.shape[0]
-    lb = layer_bounds(p, spec, interval, eps, eigenvalues, with_parts=True)
-    rf = readout_factor(p, spec, n)
+    if constants is None:
+        constants = model_constants(params, spec, interval, n, eigenvalues)
+    p = constants.params
     z = np.asarray(x, dtype=np.float64)
     diff = np.zeros(z.shape[0])
     no_readout = dataclasses.replace(spec, readout="none", final_nonlinearity=True)
     use_spec = eigenvalues is not None and eigenvectors is not None
-    for i, (beta, b_now, b_hat, rem) in enumerate(lb):
+    for i, lb in enumerate(layer_bounds(constants, eps)):
         feat = np.sqrt(np.sum(z**2, axis=1))  # (B, F_in) per-feature norms
-        per = feat[:, :, None] * beta[None]  # (B, F_in, F_out): beta_fg ||x_f||
+        per = feat[:, :, None] * lb.beta[None]  # (B, F_in, F_out): beta_fg ||x_f||
         if use_spec:
             spec_first = spectral_first_order(p["layers"][i]["taps"], spec.basis, eigenvalues, eigenvectors, z, eps)
-            per = np.minimum(per, spec_first + feat[:, :, None] * rem[None])
+            per = np.minimum(per, spec_first + feat[:, :, None] * lb.remainder[None])
         contrib = np.linalg.norm(per.sum(axis=1), axis=1)  # ||sum_f beta_fg n_f||_2 over g
-        diff = contrib * (1 + 1e-9) + b_hat * diff
+        diff = with_allowance(contrib, 0.0) + lb.gain_perturbed * diff
         sub = dataclasses.replace(no_readout, features=spec.features[i:i + 2],
                                   final_nonlinearity=(i < spec.depth - 1) or spec.final_nonlinearity)
         z = forward_np({"layers": [p["layers"][i]]}, op_matrix, z, sub)
-    return rf * diff * (1 + 1e-9)
+    return with_allowance(constants.readout * diff, 0.0)

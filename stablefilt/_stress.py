@@ -18,17 +18,23 @@ import numpy as np
 
 from ._attack import DENSE_ATTACK_LIMIT, attack
 from ._distance import DISTANCE_LIMIT, sylvester_relative
-from ._interval import spectral_interval
 from ._model import forward_np
-from ._modelcert import certify_inputs, certify_model
+from ._modelcert import certify_inputs, model_bounds
 from ._perturb import DENSE_LIMIT, diagonal, jitter, relabel, relative, scaling
-from ._train import Run
+from ._runcert import run_constants, run_spectrum
+from ._runs import Run
 
 KINDS = ("relative", "diagonal", "scaling", "edges", "relabel")
 
 
-@dataclasses.dataclass
+@dataclasses.dataclass(frozen=True)
 class StressRow:
+    """One eps and kind of perturbation: the certificates, what was measured,
+    and how many measured changes exceeded their certificate (``violations``,
+    0 for a sound certificate). Attack rows add the ``attack_*`` fields: the
+    strongest fixed-input change and its input-specific certificate, and the
+    strongest change with a free input of norm ``rho``."""
+
     eps: float
     kind: str
     certified: float
@@ -49,6 +55,9 @@ class StressRow:
     attack_free_change: float | None = None
     attack_free_ratio: float | None = None
     attack_mode: str | None = None
+
+    def as_dict(self) -> dict:
+        return dataclasses.asdict(self)
 
 
 def _ratio(cert, change):
@@ -85,24 +94,22 @@ def _draw(run: Run, kind: str, eps: float, seed: int, sample: int = 0):
         p = jitter(op, 2 * eps, seed)
         if op.nodes > DISTANCE_LIMIT:
             return p.op, None, None
-        e, resid, _, _ = sylvester_relative(op.dense(), p.op.dense())
+        sol = sylvester_relative(op.dense(), p.op.dense())
         add = np.linalg.norm(p.op.dense() - op.dense(), 2)
-        if resid > 1e-8 * max(add, 1e-300):
+        if sol.residual > 1e-8 * max(add, 1e-300):
             return p.op, None, None
-        return p.op, float(np.linalg.norm(e, 2)), None
+        return p.op, float(np.linalg.norm(sol.e, 2)), None
     raise ValueError(kind)
 
 
-def stress(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_signals: int = 0, seed: int = 0,
-           attack_iters: int = 30, progress=None) -> list[StressRow]:
+def stress_run(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_signals: int = 0, seed: int = 0,
+               attack_iters: int = 30, progress=None) -> list[StressRow]:
     """Stress a run; see the module docstring. ``attack_signals > 0`` also
-    attacks that many test signals (and one free input) per eps."""
-    iv = spectral_interval(run.op)
-    lam = iv.eigenvalues
-    vecs = None
-    if lam is not None:
-        lam, vecs = np.linalg.eigh(run.op.dense())
-    rho = float(run.manifest.get("rho"))
+    attacks that many test signals (and one free input) per eps. The model's
+    constants are computed once for every eps and sample."""
+    spectrum = run_spectrum(run)
+    constants = run_constants(run, spectrum)
+    iv, lam, vecs, rho = spectrum.interval, spectrum.eigenvalues, spectrum.eigenvectors, spectrum.rho
     x = np.asarray(run.test_x, dtype=np.float64)
     y = run.test_y
     task = run.manifest.get("task", "classify")
@@ -116,12 +123,12 @@ def stress(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_sign
         """Input-specific bounds of the test signals at ``e_used`` (cached)."""
         key = round(float(e_used), 15)
         if key not in cache:
-            cache[key] = certify_inputs(run.params, run.spec, s, iv, x, e_used, lam, vecs)
+            cache[key] = certify_inputs(run.params, run.spec, s, iv, x, e_used, lam, vecs, constants)
         return cache[key]
 
     for eps in eps_list:
-        cert = certify_model(run.params, run.spec, iv, run.op.nodes, [eps], rho=rho, eigenvalues=lam)
-        c_op = cert.certified[f"{eps:g}"]
+        bound = model_bounds(constants, eps, rho=rho)
+        c_op = bound.certified
         c_in = input_bound(eps)
         for kind in kinds:
             changes, metrics, viol, covered, dists = [], [], 0, 0, []
@@ -140,14 +147,15 @@ def stress(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_sign
                 covered += 1
                 dists.append(dist)
                 per = input_bound(dist)
-                opb = certify_model(run.params, run.spec, iv, run.op.nodes, [dist], rho=rho,
-                                    eigenvalues=lam).certified[f"{dist:g}"] if dist != eps else c_op
+                opb = model_bounds(constants, dist, rho=rho).certified if dist != eps else c_op
                 viol += int(np.sum(diff > per)) + int(np.sum(diff > opb))
             ch = np.concatenate(changes)
-            row = StressRow(eps, kind, c_op, cert.published[f"{eps:g}"], float(c_in.max()), samples, covered,
-                            float(ch.mean()), float(ch.max()),
-                            (c_op / float(ch.max())) if ch.max() > 0 else None,
-                            float(np.mean(metrics)), clean, viol, max(dists) if dists else None)
+            row = StressRow(eps=eps, kind=kind, certified=c_op, published=bound.published,
+                            input_certified_max=float(c_in.max()), samples=samples, covered=covered,
+                            mean_change=float(ch.mean()), max_change=float(ch.max()),
+                            ratio=(c_op / float(ch.max())) if ch.max() > 0 else None,
+                            metric_perturbed=float(np.mean(metrics)), metric_clean=clean, violations=viol,
+                            distance_max=max(dists) if dists else None)
             rows.append(row)
             if progress:
                 progress(f"eps {eps:g} {kind}: max change {row.max_change:.4g}, certified {c_op:.4g}, "
@@ -165,10 +173,14 @@ def stress(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_sign
             free = attack(run.params, run.spec, run.op, x[order[0]], eps, mode=mode, free_input=True, rho=rho,
                           iters=attack_iters, seed=seed)
             viol = int(best.change > best_c) + int(free.change > c_op)
-            row = StressRow(eps, "attack", c_op, cert.published[f"{eps:g}"], float(c_in.max()), 1, 1,
-                            best.change, max(best.change, free.change), _ratio(c_op, max(best.change, free.change)),
-                            None, clean, viol, eps, best.change, best_c, _ratio(best_c, best.change),
-                            free.change, _ratio(c_op, free.change), mode)
+            worst = max(best.change, free.change)
+            row = StressRow(eps=eps, kind="attack", certified=c_op, published=bound.published,
+                            input_certified_max=float(c_in.max()), samples=1, covered=1,
+                            mean_change=best.change, max_change=worst, ratio=_ratio(c_op, worst),
+                            metric_perturbed=None, metric_clean=clean, violations=viol, distance_max=eps,
+                            attack_change=best.change, attack_certified=best_c,
+                            attack_ratio=_ratio(best_c, best.change), attack_free_change=free.change,
+                            attack_free_ratio=_ratio(c_op, free.change), attack_mode=mode)
             rows.append(row)
             if progress:
                 progress(f"eps {eps:g} attack ({mode}): {best.change:.4g} <= true worst case <= {best_c:.4g} "

@@ -1,34 +1,32 @@
 """The trainer: task loss plus stability penalty, optax, early stopping, a
-float64 certificate every epoch, atomic checkpoints and resume."""
+float64 certificate every epoch, atomic checkpoints and resume. The run
+directory it writes is described in :mod:`stablefilt._runs`."""
 
 from __future__ import annotations
 
 import dataclasses
-import datetime
 import functools
 import json
 import os
-import platform
-import shutil
-import sys
 import time
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 import optax
-import scipy
 
 from ._config import Config
 from ._data import Dataset, build_dataset
-from ._errors import ConfigError, FilterError, RunError, TrainingDiverged
-from ._filters import Basis, make_basis
+from ._errors import ConfigError, RunError, TrainingDiverged
+from ._filters import Basis
 from ._graph import reorder
 from ._interval import SpectralInterval, spectral_interval
-from ._model import ModelSpec, forward, init_params
+from ._model import ModelSpec, forward, init_params, spec_from
 from ._modelcert import certify_model
 from ._penalty import model_penalty, penalty
-from ._runs import (
+from ._runs import check_out_dir, new_manifest, now, prepare_out_dir, read_manifest_or_empty, run_paths, set_aside
+from ._sparse import jax_operator
+from ._store import (
     FORMAT,
     append_log,
     atomic_write,
@@ -41,7 +39,6 @@ from ._runs import (
     save_params,
     write_json,
 )
-from ._sparse import jax_operator
 
 
 def model_spec(config: Config, interval: SpectralInterval, in_features: int, outputs: int) -> ModelSpec:
@@ -57,14 +54,6 @@ def model_spec(config: Config, interval: SpectralInterval, in_features: int, out
         raise ConfigError(f"model.readout = 'none' needs the last of model.features to be {outputs} "
                           f"(the outputs of the task); got {m['features'][-1]}.")
     return spec_from(m, basis, in_features, outputs)
-
-
-def spec_from(m: dict, basis: Basis, in_features: int, outputs: int) -> ModelSpec:
-    """The :class:`ModelSpec` of a config's ``[model]`` table. Without a
-    readout the last layer is linear (no nonlinearity on the output)."""
-    return ModelSpec(tuple([in_features] + list(m["features"])), taps=m["taps"], basis=basis,
-                     nonlinearity=m["nonlinearity"], bias=m["bias"], readout=m["readout"], outputs=outputs,
-                     final_nonlinearity=m["readout"] != "none")
 
 
 def task_loss(out, y, task: str):
@@ -203,52 +192,6 @@ def _build_step_cached(key):
     return tx, step, evaluate
 
 
-def _versions() -> dict:
-    import optax as _o
-
-    from . import __version__
-
-    return {"stablefilt": __version__, "python": sys.version.split()[0], "jax": jax.__version__,
-            "optax": _o.__version__, "numpy": np.__version__, "scipy": scipy.__version__,
-            "platform": platform.platform()}
-
-
-def _now() -> str:
-    return datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")
-
-
-def check_out_dir(out: str, resume: bool, force: bool) -> None:
-    """Refuse an output path that cannot hold this run; changes nothing."""
-    if os.path.exists(out) and not os.path.isdir(out):
-        raise RunError(f"output {out!r} is a file; expected a directory for the run.")
-    if resume:
-        if not os.path.isfile(os.path.join(out, "checkpoint.npz")):
-            raise RunError(f"cannot resume: {out!r} holds no checkpoint.npz.")
-        return
-    if os.path.isdir(out) and os.listdir(out) and not force:
-        raise RunError(f"run directory {out!r} already exists and is not empty; pass --force to write into it "
-                       "or --resume to continue it.")
-
-
-def prepare_out_dir(out: str, need_bytes: int) -> None:
-    """Create the run directory and prove it takes writes of the run's size,
-    before any training work."""
-    try:
-        os.makedirs(out, exist_ok=True)
-        free = shutil.disk_usage(out).free
-        if free < need_bytes:
-            raise RunError(f"run directory {out!r} has {free / 2**20:.1f} MiB free; the run needs about "
-                           f"{need_bytes / 2**20:.1f} MiB.")
-        probe = os.path.join(out, ".write-test")
-        with open(probe, "wb") as fh:
-            fh.write(b"x" * 4096)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.unlink(probe)
-    except OSError as exc:
-        raise RunError(f"cannot write to run directory {out!r} ({exc.strerror or type(exc).__name__}).") from None
-
-
 def _run_bytes(trainer: Trainer, params) -> int:
     """Rough upper estimate of a run's files: three copies of the params and
     Adam's two moments in the checkpoint, the graph, the test data, logs."""
@@ -296,9 +239,7 @@ def train(config: Config, out: str, *, epochs: int | None = None, seed: int | No
     opt_state = tx.init(params)
     best = params
     best_val, bad, start_epoch = None, 0, 1
-    paths = {k: os.path.join(out, f) for k, f in (("log", "log.jsonl"), ("ckpt", "checkpoint.npz"),
-                                                   ("manifest", "manifest.json"), ("params", "params.npz"),
-                                                   ("summary", "summary.json"))}
+    paths = run_paths(out)
     if resume:
         state, meta = load_checkpoint(paths["ckpt"], {"params": params, "opt_state": opt_state, "best": best})
         if meta.get("fingerprint") != trainer.data.op.fingerprint() or meta.get("seed") != trainer.seed:
@@ -314,23 +255,11 @@ def train(config: Config, out: str, *, epochs: int | None = None, seed: int | No
         te = trainer.data.test
         atomic_write(os.path.join(out, "test.npz"), npz_bytes({"x": trainer.data.x[te], "y": trainer.data.y[te]}))
         for k in ("log", "ckpt", "params", "summary"):
-            _set_aside(paths[k])
-        manifest = {
-            "format": FORMAT,
-            "name": config.name,
-            "versions": _versions(),
-            "seed": trainer.seed,
-            "graph": {"fingerprint": trainer.data.op.fingerprint(), "nodes": trainer.data.op.nodes,
-                      "edges": trainer.data.op.edges, "kind": trainer.data.op.kind},
-            "spectral_interval": [trainer.interval.lower, trainer.interval.upper],
-            "interval_method": {"lower": trainer.interval.lower_method, "upper": trainer.interval.upper_method},
-            "basis": {"kind": trainer.spec.basis.kind, "interval": trainer.spec.basis.interval},
-            "task": trainer.data.task, "classes": trainer.data.classes,
-            "signals": {"train": len(trainer.data.train), "val": len(trainer.data.val), "test": len(trainer.data.test)},
-            "rho": trainer.rho,
-            "started": _now(),
-            "finished": None,
-        }
+            set_aside(paths[k])
+        d = trainer.data
+        manifest = new_manifest(config.name, trainer.seed, d.op, trainer.interval, trainer.spec.basis, d.task,
+                                d.classes, {"train": len(d.train), "val": len(d.val), "test": len(d.test)},
+                                trainer.rho)
         write_json(paths["manifest"], manifest)
     x, y, op = trainer.x, trainer.y, trainer.op
     tr, va = jnp.asarray(trainer.data.train), jnp.asarray(trainer.data.val)
@@ -358,11 +287,12 @@ def train(config: Config, out: str, *, epochs: int | None = None, seed: int | No
         va_l, va_m = evaluate(params, op, x[va], y[va])
         tr_m, va_m, va_l = float(tr_m), float(va_m), float(va_l)
         cert = trainer.certificate(params)
+        cert_json = cert.as_dict()
         seconds = time.perf_counter() - t0
         record = {
             "epoch": epoch, "loss": loss, "task_loss": tl, "penalty": pen,
             f"train_{mname}": tr_m, f"val_{mname}": va_m, "val_loss": va_l,
-            "certified": cert.certified, "published": cert.published,
+            "certified": cert_json["certified"], "published": cert_json["published"],
             "layers": [{"integral_lipschitz": lr.integral_lipschitz, "kernel": lr.kernel, "sup": lr.sup}
                        for lr in cert.layers],
             "seconds": seconds,
@@ -377,33 +307,14 @@ def train(config: Config, out: str, *, epochs: int | None = None, seed: int | No
                         {"format": FORMAT, "epoch": epoch, "epochs": n_epochs, "best_val": best_val, "bad": bad,
                          "seed": trainer.seed, "fingerprint": trainer.data.op.fingerprint()})
         e0 = f"{trainer.eps[0]:g}"
+        c0 = cert.at(trainer.eps[0]).certified
         progress(f"epoch {epoch:3d}/{n_epochs}  loss {loss:.4f} (task {tl:.4f}, penalty {pen:.4f})  "
-                 f"train {mname} {tr_m:.4f}  val {mname} {va_m:.4f}  certified@{e0} {cert.certified[e0]:.4g}  "
+                 f"train {mname} {tr_m:.4f}  val {mname} {va_m:.4f}  certified@{e0} {c0:.4g}  "
                  f"{seconds:.2f}s")
         if patience and bad >= patience:
             progress(f"early stop: validation {mname} did not improve for {patience} epochs")
             break
     return finish(trainer, best, evaluate, out, manifest, paths, epoch)
-
-
-def _set_aside(path: str) -> None:
-    """Rename an earlier run's file (``--force``) to the first free
-    ``<name>.previous``, ``<name>.previous.2``, ...: results are kept, never
-    overwritten, and a crashed new run cannot be resumed from the old
-    checkpoint."""
-    if not os.path.exists(path):
-        return
-    target, k = path + ".previous", 1
-    while os.path.exists(target):
-        k += 1
-        target = f"{path}.previous.{k}"
-    os.replace(path, target)
-
-
-def read_manifest_or_empty(path: str) -> dict:
-    from ._runs import read_json
-
-    return read_json(path, "manifest") if os.path.exists(path) else {}
 
 
 def finish(trainer: Trainer, params, evaluate, out: str, manifest: dict, paths: dict, last_epoch: int) -> dict:
@@ -429,90 +340,8 @@ def finish(trainer: Trainer, params, evaluate, out: str, manifest: dict, paths: 
         "certificate": cert.as_dict(),
     }
     write_json(paths["summary"], summary)
-    manifest["finished"] = _now()
+    manifest["finished"] = now()
     write_json(paths["manifest"], manifest)
     return summary
 
 
-@dataclasses.dataclass(frozen=True)
-class Run:
-    """A finished run directory, loaded."""
-
-    path: str
-    config: Config
-    manifest: dict
-    summary: dict | None
-    op: object  # ShiftOperator
-    spec: ModelSpec
-    params: dict
-    test_x: np.ndarray
-    test_y: np.ndarray
-
-
-def open_run(path: str) -> Run:
-    """Load a run directory written by :func:`train`.
-
-    Raises:
-      RunError: missing, half-written, or from a newer format.
-    """
-    from ._config import parse_config
-    from ._graph import ShiftOperator, shift_operator
-    from ._runs import arrays_to_params, load_graph_npz, load_npz, read_json
-
-    if not os.path.isdir(path):
-        raise RunError(f"run directory {path!r} does not exist." if not os.path.exists(path)
-                       else f"run {path!r} is a file; expected a run directory.")
-    manifest = read_json(os.path.join(path, "manifest.json"), "run manifest")
-    if not isinstance(manifest, dict) or "format" not in manifest:
-        raise RunError(f"run manifest in {path!r} has no format field; is it a run directory?")
-    if manifest["format"] != FORMAT:
-        raise RunError(f"run {path!r} is format {manifest['format']}; this version reads format {FORMAT}.")
-    cpath = os.path.join(path, "config.toml")
-    if not os.path.isfile(cpath):
-        raise RunError(f"run {path!r} has no config.toml.")
-    with open(cpath, encoding="utf-8") as fh:
-        config = parse_config(fh.read(), path, f"run config {cpath!r}")
-    matrix = load_graph_npz(os.path.join(path, "graph.npz"))
-    op = shift_operator(matrix, name=f"run graph in {path!r}")
-    op = ShiftOperator(op.matrix, manifest.get("graph", {}).get("kind", "as-is"))
-    if op.fingerprint() != manifest.get("graph", {}).get("fingerprint"):
-        raise RunError(f"run graph in {path!r} does not match the fingerprint in its manifest.")
-    tpath = os.path.join(path, "test.npz")
-    test = load_npz(tpath, "run test data")
-    if "x" not in test or "y" not in test:
-        raise RunError(f"run test data {tpath!r} lacks x or y.")
-    tx, ty = test["x"], test["y"]
-    if (tx.ndim != 3 or tx.shape[0] == 0 or tx.shape[1] != op.nodes or not np.issubdtype(tx.dtype, np.floating)
-            or not np.all(np.isfinite(tx))):
-        raise RunError(f"run test data {tpath!r}: x must be finite real signals of shape (signals, {op.nodes}, "
-                       f"features); got {tx.dtype} of shape {tx.shape}.")
-    if ty.ndim < 1 or ty.shape[0] != tx.shape[0]:
-        raise RunError(f"run test data {tpath!r}: y must hold one target per signal of x ({tx.shape[0]}); "
-                       f"got shape {ty.shape}.")
-    spec = spec_from(config["model"], _manifest_basis(manifest, path), int(tx.shape[2]), _manifest_classes(manifest, path))
-    ppath = os.path.join(path, "params.npz")
-    if not os.path.isfile(ppath):
-        raise RunError(f"run {path!r} has no params.npz; it did not finish (resume it with --resume).")
-    params = arrays_to_params(load_npz(ppath, "run parameters"), init_params(spec, 0), f"parameters in {path!r}")
-    spath = os.path.join(path, "summary.json")
-    summary = read_json(spath, "run summary") if os.path.exists(spath) else None
-    return Run(path, config, manifest, summary, op, spec, params, tx, ty)
-
-
-def _manifest_basis(manifest: dict, path: str) -> Basis:
-    """The filter basis a run's manifest records, checked by :func:`make_basis`."""
-    b = manifest.get("basis", {})
-    try:
-        if not isinstance(b, dict):
-            raise FilterError(f"expected a table, got {b!r}.")
-        return make_basis(b.get("kind"), b.get("interval"))
-    except FilterError as exc:
-        raise RunError(f"run manifest in {path!r}: basis must be monomial, or chebyshev with an interval of two "
-                       f"finite numbers a < b ({str(exc).rstrip('.')}).") from None
-
-
-def _manifest_classes(manifest: dict, path: str) -> int:
-    c = manifest.get("classes", 1)
-    if isinstance(c, bool) or not isinstance(c, int) or c < 1:
-        raise RunError(f"run manifest in {path!r}: classes must be a positive integer; got {c!r}.")
-    return c

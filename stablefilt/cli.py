@@ -7,13 +7,12 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import os
 import sys
 
-import numpy as np
-
+from ._checks import check_eps
 from ._errors import StablefiltError, TrainingDiverged
+from ._text import compare_table, distance_text, filter_certificate_text, run_certificate_text, stress_text, table
 
 
 class _Parser(argparse.ArgumentParser):
@@ -25,61 +24,8 @@ class UsageError(StablefiltError):
     """A command-line option is malformed."""
 
 
-def _eps_list(values) -> list[float]:
-    out = []
-    for v in values or []:
-        try:
-            e = float(v)
-        except ValueError:
-            raise UsageError(f"--eps {v!r} is not a number") from None
-        if not math.isfinite(e) or e < 0:
-            raise UsageError(f"--eps must be a finite number >= 0; got {v}")
-        out.append(e)
-    return out
-
-
-def _fmt(x) -> str:
-    if x is None:
-        return "-"
-    return f"{x:.4g}"
-
-
-def _table(rows, header) -> str:
-    cells = [header] + [[str(c) for c in r] for r in rows]
-    widths = [max(len(r[i]) for r in cells) for i in range(len(header))]
-    lines = ["  ".join(c.rjust(w) for c, w in zip(r, widths)) for r in cells]
-    lines.insert(1, "  ".join("-" * w for w in widths))
-    return "\n".join(lines)
-
-
-def _print_certificate(cert, out=None) -> None:
-    out = out or sys.stdout  # looked up at call time: callers may redirect sys.stdout
-    d = cert.as_dict()
-    c = cert.constants
-    print(f"graph: {cert.nodes} nodes; spectral interval [{cert.interval.lower:.6g}, {cert.interval.upper:.6g}] "
-          f"({cert.interval.method})", file=out)
-    b = cert.basis
-    print(f"filter basis: {b.kind}" + (f" on [{b.interval[0]:g}, {b.interval[1]:g}]" if b.interval else ""), file=out)
-
-    def big(x):
-        import numpy as np
-
-        return float(np.max(x)) if x is not None else None
-
-    print("constants (max over filters): "
-          f"integral Lipschitz {_fmt(big(c.integral_lipschitz))}, Lipschitz {_fmt(big(c.lipschitz))}, "
-          f"sup |h| {_fmt(big(c.sup))}, pairwise {_fmt(big(c.pairwise))}, kernel (interval) {_fmt(big(c.kernel))}, "
-          f"kernel (eigenvalues) {_fmt(big(c.kernel_spectrum))}", file=out)
-    rows = [[_fmt(x["eps"]), _fmt(x["certified"]), _fmt(x["first_order"]), _fmt(x["remainder"]),
-             _fmt(x["published"]), _fmt(x["aligned"]), _fmt(x["lower"]),
-             _fmt(x["certified"] / x["lower"]) if x["lower"] else "-"] for x in d["bounds"]]
-    print(_table(rows, ["eps", "certified", "first-order", "remainder", "published", "aligned", "lower",
-                        "cert/lower"]), file=out)
-    print("assumptions:", file=out)
-    for k, v in d["assumptions"].items():
-        print(f"  {k}: {v}", file=out)
-    print("A certificate covers only the stated perturbation model and eps; it is no assurance of real-world safety.",
-          file=out)
+def _eps_list(values, positive: bool = False) -> list[float]:
+    return [check_eps(v, "--eps", positive=positive, error=UsageError) for v in values or []]
 
 
 def cmd_bound(args) -> int:
@@ -98,7 +44,7 @@ def cmd_bound(args) -> int:
         json.dump(cert.as_dict(), sys.stdout)
         sys.stdout.write("\n")
     else:
-        _print_certificate(cert)
+        print(filter_certificate_text(cert))
     return 0
 
 
@@ -122,90 +68,24 @@ def cmd_train(args) -> int:
     return 0
 
 
-def certify_run(run, eps_list):
-    """Float64 certificate of a run: over the eigenvalues when the graph is
-    small enough to decompose, else over its interval; plus the
-    input-specific bound on the run's test signals."""
-    from ._interval import spectral_interval
-    from ._modelcert import certify_inputs, certify_model
-
-    iv = spectral_interval(run.op)
-    lam = iv.eigenvalues
-    vecs = None
-    if lam is not None:
-        lam, vecs = np.linalg.eigh(run.op.dense())
-    rho = float(run.manifest.get("rho") or np.max(np.linalg.norm(run.test_x.reshape(len(run.test_x), -1), axis=1)))
-    cert = certify_model(run.params, run.spec, iv, run.op.nodes, eps_list, rho=rho, eigenvalues=lam)
-    inputs = {}
-    for e in eps_list:
-        per = certify_inputs(run.params, run.spec, run.op.matrix, iv, run.test_x, e, lam, vecs)
-        inputs[f"{e:g}"] = float(per.max())
-    return cert, iv, inputs
-
-
 def cmd_certify(args) -> int:
-    from ._train import open_run
+    from ._runcert import certify_run
+    from ._runs import open_run
 
     run = open_run(args.run)
     eps = _eps_list(args.eps) or [float(e) for e in run.config["certify"]["eps"]]
-    cert, iv, inputs = certify_run(run, eps)
+    rc = certify_run(run, eps)
     if args.json:
-        d = cert.as_dict()
-        d.update({"run": args.run, "nodes": run.op.nodes, "interval": [iv.lower, iv.upper],
-                  "interval_method": iv.method, "input_specific_test_max": inputs})
-        json.dump(d, sys.stdout)
+        json.dump(rc.as_dict(), sys.stdout)
         sys.stdout.write("\n")
-        return 0
-    print(f"run {args.run}: {run.op.nodes} nodes, spectral interval [{iv.lower:.6g}, {iv.upper:.6g}] ({iv.method}), "
-          f"model {list(run.spec.features)} with K = {run.spec.taps} ({run.spec.basis.kind})")
-    rows = [[str(i + 1), _fmt(lr.integral_lipschitz), _fmt(lr.kernel), _fmt(lr.sup)]
-            + [_fmt(lr.change[f"{e:g}"]) for e in eps] for i, lr in enumerate(cert.layers)]
-    print(_table(rows, ["layer", "integral Lipschitz", "kernel", "sup ||H||"] + [f"change@{e:g}" for e in eps]))
-    rows = [[f"{e:g}", _fmt(cert.certified[f"{e:g}"]), _fmt(cert.per_unit[f"{e:g}"]), _fmt(inputs[f"{e:g}"]),
-             _fmt(cert.published[f"{e:g}"])] for e in eps]
-    print(_table(rows, ["eps", "certified", "per unit eps", "input-specific (test max)", "published"]))
-    print("assumptions:")
-    for k, v in cert.assumptions.items():
-        print(f"  {k}: {v}")
-    print("A certificate covers only the stated perturbation model and eps; it is no assurance of real-world safety.")
+    else:
+        print(run_certificate_text(run, rc, eps))
     return 0
 
 
-def compare_rows(paths) -> list[dict]:
-    from ._runs import read_json
-
-    rows = []
-    for p in paths:
-        if not os.path.isdir(p):
-            raise UsageError(f"run directory {p!r} does not exist")
-        s = read_json(os.path.join(p, "summary.json"), "run summary")
-        try:
-            m = s["metric"]
-            cert = s["certificate"]
-            rows.append({
-                "run": p,
-                "name": s.get("name"),
-                "penalty_mode": s["penalty"]["mode"],
-                "penalty_weight": s["penalty"]["weight"],
-                "model": s["model"],
-                "metric": m,
-                f"test_{m}": s["metrics"][f"test_{m}"],
-                "layers": [{"integral_lipschitz": lr["integral_lipschitz"], "kernel": lr["kernel"], "sup": lr["sup"]}
-                           for lr in cert["layers"]],
-                "certified": cert["certified"],
-                "published": cert["published"],
-                "rho": cert["rho"],
-            })
-        except (KeyError, TypeError):
-            from ._errors import RunError
-
-            raise RunError(f"run summary in {p!r} lacks the fields compare needs; is it from this version?") from None
-    first = lambda r: min(r["certified"].items(), key=lambda kv: float(kv[0]))[1]  # noqa: E731
-    rows.sort(key=lambda r: (first(r), -r.get("test_acc", 0.0), r.get("test_rmse", 0.0)))
-    return rows
-
-
 def cmd_compare(args) -> int:
+    from ._runs import compare_rows
+
     rows = compare_rows(args.runs)
     csv_file = None
     if args.csv:
@@ -218,32 +98,19 @@ def cmd_compare(args) -> int:
         except OSError as exc:
             raise UsageError(f"--csv {args.csv!r} cannot be created ({exc.strerror or type(exc).__name__}); "
                              "give a new file in an existing, writable folder") from None
-    eps = sorted({k for r in rows for k in r["certified"]}, key=float)
-    depth = max(len(r["layers"]) for r in rows)
-    header = ["run", "penalty", "test metric"] + [f"IL layer {i + 1}" for i in range(depth)]
-    header += [f"certified@{e}" for e in eps] + [f"published@{e}" for e in eps]
-    table = []
-    for r in rows:
-        m = r["metric"]
-        il = [_fmt(lr["integral_lipschitz"]) for lr in r["layers"]]
-        w = r["penalty_weight"]
-        pen = "none" if (max(w) if isinstance(w, list) else w) == 0 else f"{r['penalty_mode']} x {w}"
-        line = [r["name"] or r["run"], pen, f"{m} {r[f'test_{m}']:.4f}"]
-        line += il + ["-"] * (depth - len(il))
-        line += [_fmt(r["certified"].get(e)) for e in eps] + [_fmt(r["published"].get(e)) for e in eps]
-        table.append(line)
+    header, lines = compare_table(rows)
     if args.json:
         json.dump(rows, sys.stdout)
         sys.stdout.write("\n")
     else:
-        print(_table(table, header))
+        print(table(lines, header))
     if csv_file is not None:
         import csv
 
         with csv_file as fh:
             w = csv.writer(fh)
             w.writerow(header)
-            w.writerows(table)
+            w.writerows(lines)
     return 0
 
 
@@ -260,22 +127,13 @@ def cmd_distance(args) -> int:
         json.dump(out, sys.stdout)
         sys.stdout.write("\n")
         return 0
-    print(f"{args.graph_a} -> {args.graph_b}: {a.nodes} nodes" + (", nodes aligned by quadratic assignment" if args.align else ""))
-    bound = " (an upper bound)" if out["upper_bound"] else ""
-    print(f"  relative distance ||E||_2: {_fmt(d.relative)}{bound}")
-    print(f"  residual ||S E + E S - (S_hat - S)||_2: {_fmt(d.residual)} -> "
-          + ("expressible as a relative perturbation" if d.expressible else
-             "NOT expressible as a relative perturbation; the relative distance covers only part of the change"))
-    if d.singular_pairs:
-        print(f"  {d.singular_pairs} eigenvalue pairs with lam_i + lam_j = 0: E is not determined there (set to 0)")
-    print(f"  eigenvector misalignment delta: {_fmt(d.delta)}")
-    print(f"  additive distance ||S_hat - S||_2: {_fmt(d.additive)}")
+    print(distance_text(d, args.graph_a, args.graph_b, a.nodes, args.align))
     return 0
 
 
 def cmd_stress(args) -> int:
-    from ._stress import KINDS, stress
-    from ._train import open_run
+    from ._runs import open_run
+    from ._stress import KINDS, stress_run
 
     kinds = [k.strip() for k in args.kinds.split(",") if k.strip()]
     bad = [k for k in kinds if k not in KINDS]
@@ -284,32 +142,18 @@ def cmd_stress(args) -> int:
     if args.samples < 1:
         raise UsageError(f"--samples must be at least 1; got {args.samples}")
     run = open_run(args.run)
-    eps = _eps_list(args.eps) or [float(e) for e in run.config["certify"]["eps"]]
-    if any(e <= 0 for e in eps):
-        raise UsageError("--eps must be > 0 for a stress test")
+    eps = _eps_list(args.eps, positive=True) or [float(e) for e in run.config["certify"]["eps"]]
     show = None if args.json else (lambda m: print(m, flush=True))
-    rows = stress(run, eps, kinds=kinds, samples=args.samples, attack_signals=2 if args.attack else 0, progress=show)
+    rows = stress_run(run, eps, kinds=kinds, samples=args.samples, attack_signals=2 if args.attack else 0,
+                      progress=show)
     violations = sum(r.violations for r in rows)
     if args.json:
-        import dataclasses
-
         json.dump({"run": args.run, "nodes": run.op.nodes, "rho": run.manifest.get("rho"),
-                   "rows": [dataclasses.asdict(r) for r in rows], "violations": violations}, sys.stdout)
+                   "rows": [r.as_dict() for r in rows], "violations": violations}, sys.stdout)
         sys.stdout.write("\n")
     else:
-        m = "acc" if run.manifest.get("task", "classify") == "classify" else "rmse"
-        table = [[_fmt(r.eps), r.kind, f"{r.covered}/{r.samples}", _fmt(r.certified), _fmt(r.published),
-                  _fmt(r.mean_change), _fmt(r.max_change), _fmt(r.ratio),
-                  "-" if r.kind == "attack" else f"{r.metric_perturbed:.4f}", str(r.violations)] for r in rows]
-        print(_table(table, ["eps", "kind", "covered", "certified", "published", "mean change", "max change",
-                             "cert/max", f"test {m}", "violations"]))
-        print(f"clean test {m}: {rows[0].metric_clean:.4f}; certified bounds hold for inputs with "
-              f"||x||_F <= {run.manifest.get('rho'):.4g}")
-        for r in rows:
-            if r.kind == "attack":
-                print(f"eps {r.eps:g}: attack {r.attack_change:.4g} <= true worst case <= {r.attack_certified:.4g} "
-                      f"(input-specific; ratio {r.attack_ratio:.3g}); free input {r.attack_free_change:.4g} <= "
-                      f"{r.certified:.4g} (ratio {r.attack_free_ratio:.3g})")
+        metric = "acc" if run.manifest.get("task", "classify") == "classify" else "rmse"
+        print(stress_text(rows, metric, run.manifest.get("rho")))
     if violations:
         print(f"stablefilt stress: SOUNDNESS FAILURE: {violations} measured changes exceed their certificate.",
               file=sys.stderr)

@@ -8,6 +8,8 @@ import os
 
 from ._config import load_config
 from ._errors import ConfigError
+from ._runs import compare_rows
+from ._text import CAUTION, compare_table, table
 from ._train import train
 
 CONFIGS = ("configs/demo.toml", "configs/no-penalty.toml")
@@ -26,8 +28,6 @@ def _find(config: str) -> str:
 
 
 def run_demo(out: str | None = None, epochs: int | None = None) -> int:
-    from .cli import cmd_compare
-
     configs = [_find(c) for c in CONFIGS]
     stamp = datetime.datetime.now().strftime("%Y%m%d-%H%M%S")
     out = out or os.path.join("runs", f"demo-{stamp}")
@@ -39,14 +39,9 @@ def run_demo(out: str | None = None, epochs: int | None = None) -> int:
         train(config, path, epochs=epochs, progress=_every(10))
         runs.append(path)
     print("\n== comparison (test accuracy vs certified bound for inputs with ||x|| <= rho)")
-
-    class Args:
-        pass
-
-    args = Args()
-    args.runs, args.json, args.csv = runs, False, None
-    cmd_compare(args)
-    print("\nA certificate covers only the stated perturbation model and eps; it is no assurance of real-world safety.")
+    header, lines = compare_table(compare_rows(runs))
+    print(table(lines, header))
+    print("\n" + CAUTION)
     return 0
 
 

@@ -230,8 +230,7 @@ def plain_run(tmp_path_factory):
     """The tiny config trained straight through for 6 epochs (run A), by
     ``stablefilt._train.train`` in-process, counting compilations per epoch."""
     if "plain" not in _RUNS:
-        from stablefilt._config import load_config
-        from stablefilt._train import train
+        from stablefilt import load_config, train
 
         base = tmp_path_factory.mktemp("plain")
         cfg = write(os.path.join(base, "config.toml"), tiny_text(name="tiny-plain"))

@@ -12,10 +12,8 @@ import sys
 import _train_helpers as H
 import pytest
 
-from stablefilt import cli
-from stablefilt._config import load_config, parse_config
+from stablefilt import ConfigError, cli, load_config, parse_config
 from stablefilt._data import build_dataset
-from stablefilt._errors import ConfigError
 
 ACCEPTED = {
     "": ["certify", "data", "model", "name", "penalty", "train"],

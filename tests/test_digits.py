@@ -22,8 +22,7 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from stablefilt import cli
-from stablefilt._train import open_run
+from stablefilt import cli, open_run
 
 sklearn_datasets = pytest.importorskip("sklearn.datasets")
 

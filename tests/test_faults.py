@@ -27,7 +27,7 @@ import numpy as np
 import pytest
 
 import stablefilt as sf
-import stablefilt._train as train_module
+import stablefilt._runs as runs_module
 from stablefilt.cli import main
 
 # 30 sensors, 60 snapshots, one layer of 4 features with 3 taps, batches of 16
@@ -314,8 +314,8 @@ Usage = collections.namedtuple("Usage", "total used free")
 
 @pytest.fixture
 def full_disk(monkeypatch):
-    """``shutil.disk_usage`` as _train sees it, with 4 KiB free."""
-    monkeypatch.setattr(train_module.shutil, "disk_usage", lambda path: Usage(1 << 30, (1 << 30) - 4096, 4096))
+    """``shutil.disk_usage`` as _runs sees it, with 4 KiB free."""
+    monkeypatch.setattr(runs_module.shutil, "disk_usage", lambda path: Usage(1 << 30, (1 << 30) - 4096, 4096))
 
 
 def test_full_disk_is_refused_before_writing(tmp_path, full_disk, capsys):
@@ -354,7 +354,7 @@ def test_unwritable_folder_is_refused_and_the_run_left_alone(tmp_path, finished,
             raise PermissionError(errno.EACCES, "Permission denied", str(path))
         return real_open(path, *args, **kwargs)
 
-    monkeypatch.setattr(train_module, "open", refusing_open, raising=False)
+    monkeypatch.setattr(runs_module, "open", refusing_open, raising=False)
     run = tmp_path / "run"
     shutil.copytree(finished, run)
     (tmp_path / "c.toml").write_text(tiny())

@@ -17,13 +17,19 @@ import networkx as nx
 import numpy as np
 import pytest
 
-from stablefilt._errors import ConfigError
-from stablefilt._filters import Basis
-from stablefilt._graph import shift_operator
-from stablefilt._interval import spectral_interval
-from stablefilt._model import ModelSpec, forward, forward_np, init_params
-from stablefilt._modelcert import certify_inputs, certify_model
-from stablefilt._sparse import jax_operator
+from stablefilt import (
+    Basis,
+    ConfigError,
+    ModelSpec,
+    certify_inputs,
+    certify_model,
+    forward,
+    forward_np,
+    init_params,
+    jax_operator,
+    shift_operator,
+    spectral_interval,
+)
 
 NONLINS = ("relu", "leaky_relu", "tanh", "none")
 READOUTS = ("node", "mean", "sum", "none")
@@ -309,9 +315,8 @@ def test_measured_change_never_exceeds_certificate(graph_ops, case):
     y = _ref(params, s, x, spec)
     worst = 0.0
     for eps in EPS:
-        key = f"{eps:g}"
-        bound = cert.certified[key]
-        assert np.isfinite(bound) and bound <= cert_iv.certified[key] * (1 + 1e-12)
+        bound = cert.at(eps).certified
+        assert np.isfinite(bound) and bound <= cert_iv.at(eps).certified * (1 + 1e-12)
         per_norms = certify_inputs(params, spec, op.matrix, iv, x, eps, iv.eigenvalues)
         per_spec = certify_inputs(params, spec, op.matrix, iv, x, eps, w, v)  # as `stablefilt certify` calls it
         assert per_norms.shape == per_spec.shape == (len(x),)
@@ -359,7 +364,7 @@ def test_linear_models_worst_input_stays_below_certificate(graph_ops, graph, kin
     cert = certify_model(params, spec, iv, n, EPS, rho=RHO, eigenvalues=iv.eigenvalues)
     tightest = 0.0
     for eps in EPS:
-        bound = cert.certified[f"{eps:g}"]
+        bound = cert.at(eps).certified
         errors = [H.pair_error(v, i, j, eps) for i, j in itertools.combinations_with_replacement(idx, 2)]
         errors += [H.random_error(rng, n, eps) for _ in range(3)] + [eps * np.eye(n), -eps * np.eye(n)]
         for e in errors:

@@ -14,9 +14,7 @@ import numpy as np
 import optax
 import pytest
 
-from stablefilt._errors import ConfigError
-from stablefilt._filters import Basis
-from stablefilt._penalty import find_taps, model_penalty, penalty, stability_penalty
+from stablefilt import Basis, ConfigError, find_taps, model_penalty, penalty, stability_penalty
 
 GRID = 101
 PAIR = 40  # below the pairwise grid cap, so the reference grid is the same

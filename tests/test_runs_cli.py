@@ -12,8 +12,7 @@ import _train_helpers as H
 import numpy as np
 import pytest
 
-from stablefilt import cli
-from stablefilt._train import open_run
+from stablefilt import cli, open_run
 
 
 @pytest.fixture(scope="module")

@@ -8,7 +8,8 @@ import pytest
 from reference import change, filter_operator, random_symmetric, relative, wider_interval
 
 import stablefilt as sf
-from stablefilt._search import change_operator, measured_change, worst_perturbation
+from stablefilt._search import change_operator, measured_change
+from stablefilt.stress import worst_perturbation
 
 
 @pytest.mark.parametrize("shape", [(4,), (3, 2, 3)], ids=["single", "bank"])

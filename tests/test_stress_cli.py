@@ -23,9 +23,9 @@ import numpy as np
 import pytest
 
 import stablefilt as sf
-from stablefilt import _stress
-from stablefilt._train import open_run
+from stablefilt import _stress, open_run
 from stablefilt.cli import main
+from stablefilt.stress import stress_run
 
 TOML = textwrap.dedent("""\
     name = "stress-tiny"
@@ -157,13 +157,13 @@ def test_stress_missing_run(tmp_path, capsys):
 def test_stress_exit_3_when_the_operator_certificate_is_too_small(run_dir, monkeypatch, capsys):
     """A certificate scaled by 1e-6 must be caught: exit 3 and a loud message,
     never a quiet 0."""
-    real = _stress.certify_model
+    real = _stress.model_bounds
 
     def small(*args, **kwargs):
-        c = real(*args, **kwargs)
-        return dataclasses.replace(c, certified={k: v * 1e-6 for k, v in c.certified.items()})
+        b = real(*args, **kwargs)
+        return dataclasses.replace(b, certified=b.certified * 1e-6)
 
-    monkeypatch.setattr(_stress, "certify_model", small)
+    monkeypatch.setattr(_stress, "model_bounds", small)
     rc = main(["stress", run_dir, "--eps", "0.01", "--samples", "1", "--kinds", "relative,scaling", "--json"])
     out, err = capsys.readouterr()
     assert rc == 3
@@ -192,7 +192,7 @@ def test_scaling_rows_remeasured_independently(run):
     the samples equals the larger of the two changes of ``(1 +/- 2 eps) S``
     measured here, and both signs are drawn."""
     eps = 0.02
-    rows = _stress.stress(run, [eps], kinds=("scaling",), samples=2)
+    rows = stress_run(run, [eps], kinds=("scaling",), samples=2)
     s = run.op.dense()
     x = np.asarray(run.test_x, dtype=np.float64)
     changes = {}
@@ -207,7 +207,7 @@ def test_scaling_rows_remeasured_independently(run):
 
 
 def test_relabel_changes_nothing(run):
-    rows = _stress.stress(run, [0.01], kinds=("relabel",), samples=2)
+    rows = stress_run(run, [0.01], kinds=("relabel",), samples=2)
     (row,) = rows
     assert row.violations == 0 and row.covered == 2 and row.distance_max == 0.0
     assert row.max_change <= 1e-12
@@ -222,7 +222,7 @@ def test_edges_covered_on_a_combinatorial_laplacian(run):
     adj = ((s != 0) & ~np.eye(len(s), dtype=bool)).astype(float)
     lap = sf.shift_operator(adj, "laplacian")
     fake = dataclasses.replace(run, op=lap)
-    rows = _stress.stress(fake, [0.01], kinds=("edges",), samples=2)
+    rows = stress_run(fake, [0.01], kinds=("edges",), samples=2)
     (row,) = rows
     assert row.covered == 2 and row.distance_max > 0
     assert row.violations == 0
@@ -234,13 +234,13 @@ def test_graph_independent_model_reports_no_ratio(run, run_dir, monkeypatch, cap
     by zero."""
     import jax.numpy as jnp
 
-    import stablefilt._train as train_mod
+    import stablefilt._runs as runs_mod
 
     params = dict(run.params)
     params["readout"] = {"weight": jnp.zeros_like(run.params["readout"]["weight"]),
                          "bias": run.params["readout"]["bias"]}
     flat = dataclasses.replace(run, params=params)
-    monkeypatch.setattr(train_mod, "open_run", lambda path: flat)
+    monkeypatch.setattr(runs_mod, "open_run", lambda path: flat)
     rc = main(["stress", run_dir, "--eps", "0.01", "--samples", "1", "--kinds", "scaling", "--attack", "--json"])
     out, err = capsys.readouterr()
     assert rc == 0, err

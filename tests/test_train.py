@@ -21,11 +21,9 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from stablefilt import cli
-from stablefilt._config import load_config, parse_config
-from stablefilt._model import init_params
-from stablefilt._runs import load_checkpoint, read_log
-from stablefilt._train import Trainer, build_step, open_run, train
+from stablefilt import cli, init_params, load_config, open_run, parse_config, train
+from stablefilt._store import load_checkpoint, read_log
+from stablefilt._train import Trainer, build_step
 
 CompileCounter = H.CompileCounter
 

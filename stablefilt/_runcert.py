@@ -1,0 +1,102 @@
+"""Certificates of a trained run, in float64: the run's spectral data computed
+once (certified interval, and the eigenvalues and eigenvectors when the graph
+is small enough to decompose; the input norm bound ``rho``), the
+operator-level model certificate and the input-specific bounds on the run's
+test signals (docs/theory.md sections 5 and 8)."""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from ._interval import SpectralInterval, spectral_interval
+from ._modelcert import ModelCertificate, ModelConstants, certify_inputs, certify_model, model_constants
+from ._runs import Run
+
+
+@dataclasses.dataclass(frozen=True)
+class RunSpectrum:
+    """A run's graph, measured once.
+
+    Attributes:
+      interval: certified spectral interval of ``S``.
+      eigenvalues, eigenvectors: of ``S`` (``numpy.linalg.eigh``) when the
+        interval was computed exactly, else None.
+      rho: the input norm bound (the manifest's, else the largest test-signal
+        norm).
+    """
+
+    interval: SpectralInterval
+    eigenvalues: np.ndarray | None
+    eigenvectors: np.ndarray | None
+    rho: float
+
+
+def run_spectrum(run: Run) -> RunSpectrum:
+    """The :class:`RunSpectrum` of a run."""
+    iv = spectral_interval(run.op)
+    lam, vecs = None, None
+    if iv.eigenvalues is not None:
+        lam, vecs = np.linalg.eigh(run.op.dense())
+    rho = float(run.manifest.get("rho") or np.max(np.linalg.norm(run.test_x.reshape(len(run.test_x), -1), axis=1)))
+    return RunSpectrum(iv, lam, vecs, rho)
+
+
+def run_constants(run: Run, spectrum: RunSpectrum) -> ModelConstants:
+    """The eps-free constants of the run's model on its graph."""
+    return model_constants(run.params, run.spec, spectrum.interval, run.op.nodes, spectrum.eigenvalues)
+
+
+def input_bounds(run: Run, spectrum: RunSpectrum, eps: float, constants: ModelConstants | None = None) -> np.ndarray:
+    """Input-specific bounds ``(signals,)`` of the run's test signals at ``eps``."""
+    return certify_inputs(run.params, run.spec, run.op.matrix, spectrum.interval, run.test_x, eps,
+                          spectrum.eigenvalues, spectrum.eigenvectors, constants)
+
+
+@dataclasses.dataclass(frozen=True)
+class RunCertificate:
+    """A run's certificate.
+
+    Attributes:
+      run: the run directory.
+      nodes: ``N``.
+      spectrum: the run's :class:`RunSpectrum`.
+      model: the operator-level :class:`ModelCertificate`.
+      input_test_max: per eps of ``model.bounds``, the largest
+        input-specific bound over the test signals.
+    """
+
+    run: str
+    nodes: int
+    spectrum: RunSpectrum
+    model: ModelCertificate
+    input_test_max: tuple[float, ...]
+
+    def input_at(self, eps: float) -> float:
+        """The largest input-specific bound over the test signals at ``eps``."""
+        found = [v for b, v in zip(self.model.bounds, self.input_test_max) if b.eps == float(eps)]
+        if not found:
+            raise KeyError(f"no bound at eps {eps:g}.")
+        return found[-1]
+
+    def as_dict(self) -> dict:
+        """The ``certify --json`` form."""
+        iv = self.spectrum.interval
+        d = self.model.as_dict()
+        d.update({"run": self.run, "nodes": self.nodes, "interval": [iv.lower, iv.upper],
+                  "interval_method": iv.method,
+                  "input_specific_test_max": {f"{b.eps:g}": v for b, v in zip(self.model.bounds, self.input_test_max)}})
+        return d
+
+
+def certify_run(run: Run, eps_list) -> RunCertificate:
+    """Float64 certificate of a run: over the eigenvalues when the graph is
+    small enough to decompose, else over its interval; plus the
+    input-specific bound on the run's test signals."""
+    spectrum = run_spectrum(run)
+    constants = run_constants(run, spectrum)
+    cert = certify_model(run.params, run.spec, spectrum.interval, run.op.nodes, eps_list, rho=spectrum.rho,
+                         eigenvalues=spectrum.eigenvalues, constants=constants)
+    inputs = tuple(float(input_bounds(run, spectrum, e, constants).max()) for e in eps_list)
+    return RunCertificate(run.path, run.op.nodes, spectrum, cert, inputs)

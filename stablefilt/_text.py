@@ -1,0 +1,130 @@
+"""Text for people: number formatting, plain tables, certificates and stress
+results as printed by the command line and the demo, and the one caution
+sentence that goes with every certificate."""
+
+from __future__ import annotations
+
+import numpy as np
+
+#: Printed after every certificate.
+CAUTION = "A certificate covers only the stated perturbation model and eps; it is no assurance of real-world safety."
+
+
+def fmt(x) -> str:
+    """A figure to 4 significant digits, or ``-`` for None."""
+    if x is None:
+        return "-"
+    return f"{x:.4g}"
+
+
+def table(rows, header) -> str:
+    """Right-aligned columns under a header and a rule."""
+    cells = [header] + [[str(c) for c in r] for r in rows]
+    widths = [max(len(r[i]) for r in cells) for i in range(len(header))]
+    lines = ["  ".join(c.rjust(w) for c, w in zip(r, widths)) for r in cells]
+    lines.insert(1, "  ".join("-" * w for w in widths))
+    return "\n".join(lines)
+
+
+def _g3(x) -> str:
+    return "-" if x is None else f"{x:.3g}"
+
+
+def _assumptions(assumptions: dict) -> list[str]:
+    return ["assumptions:"] + [f"  {k}: {v}" for k, v in assumptions.items()]
+
+
+def _big(x):
+    return float(np.max(x)) if x is not None else None
+
+
+def filter_certificate_text(cert) -> str:
+    """A filter :class:`~stablefilt._certify.Certificate`: graph, basis,
+    constants, the per-eps table, assumptions and the caution."""
+    d = cert.as_dict()
+    c = cert.constants
+    b = cert.basis
+    lines = [
+        f"graph: {cert.nodes} nodes; spectral interval [{cert.interval.lower:.6g}, {cert.interval.upper:.6g}] "
+        f"({cert.interval.method})",
+        f"filter basis: {b.kind}" + (f" on [{b.interval[0]:g}, {b.interval[1]:g}]" if b.interval else ""),
+        "constants (max over filters): "
+        f"integral Lipschitz {fmt(_big(c.integral_lipschitz))}, Lipschitz {fmt(_big(c.lipschitz))}, "
+        f"sup |h| {fmt(_big(c.sup))}, pairwise {fmt(_big(c.pairwise))}, kernel (interval) {fmt(_big(c.kernel))}, "
+        f"kernel (eigenvalues) {fmt(_big(c.kernel_spectrum))}",
+    ]
+    rows = [[fmt(x["eps"]), fmt(x["certified"]), fmt(x["first_order"]), fmt(x["remainder"]),
+             fmt(x["published"]), fmt(x["aligned"]), fmt(x["lower"]),
+             fmt(x["certified"] / x["lower"]) if x["lower"] else "-"] for x in d["bounds"]]
+    lines.append(table(rows, ["eps", "certified", "first-order", "remainder", "published", "aligned", "lower",
+                              "cert/lower"]))
+    return "\n".join(lines + _assumptions(d["assumptions"]) + [CAUTION])
+
+
+def run_certificate_text(run, rc, eps_list) -> str:
+    """A run's :class:`~stablefilt._runcert.RunCertificate` at ``eps_list``:
+    per-layer constants and changes, the per-eps table, assumptions and the
+    caution."""
+    iv = rc.spectrum.interval
+    cert = rc.model
+    lines = [f"run {rc.run}: {rc.nodes} nodes, spectral interval [{iv.lower:.6g}, {iv.upper:.6g}] ({iv.method}), "
+             f"model {list(run.spec.features)} with K = {run.spec.taps} ({run.spec.basis.kind})"]
+    at = [cert.at(e) for e in eps_list]
+    rows = [[str(i + 1), fmt(lc.integral_lipschitz), fmt(lc.kernel), fmt(lc.sup)]
+            + [fmt(b.layer_changes[i]) for b in at] for i, lc in enumerate(cert.layers)]
+    lines.append(table(rows, ["layer", "integral Lipschitz", "kernel", "sup ||H||"] + [f"change@{e:g}" for e in eps_list]))
+    rows = [[f"{e:g}", fmt(b.certified), fmt(b.per_unit), fmt(rc.input_at(e)), fmt(b.published)]
+            for e, b in zip(eps_list, at)]
+    lines.append(table(rows, ["eps", "certified", "per unit eps", "input-specific (test max)", "published"]))
+    return "\n".join(lines + _assumptions(cert.assumptions) + [CAUTION])
+
+
+def compare_table(rows) -> tuple[list[str], list[list[str]]]:
+    """``(header, lines)`` of the comparison of runs (rows of
+    :func:`~stablefilt._runs.compare_rows`)."""
+    eps = sorted({k for r in rows for k in r["certified"]}, key=float)
+    depth = max(len(r["layers"]) for r in rows)
+    header = ["run", "penalty", "test metric"] + [f"IL layer {i + 1}" for i in range(depth)]
+    header += [f"certified@{e}" for e in eps] + [f"published@{e}" for e in eps]
+    lines = []
+    for r in rows:
+        m = r["metric"]
+        il = [fmt(lr["integral_lipschitz"]) for lr in r["layers"]]
+        w = r["penalty_weight"]
+        pen = "none" if (max(w) if isinstance(w, list) else w) == 0 else f"{r['penalty_mode']} x {w}"
+        line = [r["name"] or r["run"], pen, f"{m} {r[f'test_{m}']:.4f}"]
+        line += il + ["-"] * (depth - len(il))
+        line += [fmt(r["certified"].get(e)) for e in eps] + [fmt(r["published"].get(e)) for e in eps]
+        lines.append(line)
+    return header, lines
+
+
+def stress_text(rows, metric: str, rho) -> str:
+    """The stress table of :func:`~stablefilt._stress.stress_run` rows, the
+    clean metric, and one line per attack."""
+    body = [[fmt(r.eps), r.kind, f"{r.covered}/{r.samples}", fmt(r.certified), fmt(r.published),
+             fmt(r.mean_change), fmt(r.max_change), fmt(r.ratio),
+             "-" if r.kind == "attack" else f"{r.metric_perturbed:.4f}", str(r.violations)] for r in rows]
+    lines = [table(body, ["eps", "kind", "covered", "certified", "published", "mean change", "max change",
+                          "cert/max", f"test {metric}", "violations"]),
+             f"clean test {metric}: {rows[0].metric_clean:.4f}; certified bounds hold for inputs with "
+             f"||x||_F <= {rho:.4g}"]
+    for r in rows:
+        if r.kind == "attack":
+            lines.append(f"eps {r.eps:g}: attack {r.attack_change:.4g} <= true worst case <= {r.attack_certified:.4g} "
+                         f"(input-specific; ratio {_g3(r.attack_ratio)}); free input {r.attack_free_change:.4g} <= "
+                         f"{r.certified:.4g} (ratio {_g3(r.attack_free_ratio)})")
+    return "\n".join(lines)
+
+
+def distance_text(d, name_a: str, name_b: str, nodes: int, aligned: bool) -> str:
+    """A :class:`~stablefilt._distance.Distance` between two graph files."""
+    lines = [f"{name_a} -> {name_b}: {nodes} nodes" + (", nodes aligned by quadratic assignment" if aligned else ""),
+             f"  relative distance ||E||_2: {fmt(d.relative)}" + (" (an upper bound)" if d.as_dict()["upper_bound"] else ""),
+             f"  residual ||S E + E S - (S_hat - S)||_2: {fmt(d.residual)} -> "
+             + ("expressible as a relative perturbation" if d.expressible else
+                "NOT expressible as a relative perturbation; the relative distance covers only part of the change")]
+    if d.singular_pairs:
+        lines.append(f"  {d.singular_pairs} eigenvalue pairs with lam_i + lam_j = 0: E is not determined there (set to 0)")
+    lines += [f"  eigenvector misalignment delta: {fmt(d.delta)}", f"  additive distance ||S_hat - S||_2: {fmt(d.additive)}"]
+    return "\n".join(lines)
