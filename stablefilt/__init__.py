@@ -9,7 +9,7 @@ Perturbations, distances, searches, attacks and stress tests are in
 # The public API, grouped by concept rather than sorted by module.
 # ruff: noqa: I001
 
-from importlib.metadata import PackageNotFoundError, version
+from ._version import __version__ as __version__
 
 # Errors.
 from ._errors import ConfigError as ConfigError
@@ -85,8 +85,3 @@ from ._runs import Run as Run
 from ._runs import compare_rows as compare_rows
 from ._runs import open_run as open_run
 from ._train import train as train
-
-try:
-    __version__ = version("stablefilt")
-except PackageNotFoundError:  # run from a source tree that was never installed
-    __version__ = "0+unknown"

@@ -101,7 +101,7 @@ def _versions() -> dict:
     import optax
     import scipy
 
-    from . import __version__
+    from ._version import __version__
 
     return {"stablefilt": __version__, "python": sys.version.split()[0], "jax": jax.__version__,
             "optax": optax.__version__, "numpy": np.__version__, "scipy": scipy.__version__,

@@ -19,7 +19,7 @@ a constructed one allow 1e-5 relative; re-measurements are float64 (1e-10).
 
 from __future__ import annotations
 
-import jax
+import helpers as H
 import jax.numpy as jnp
 import networkx as nx
 import numpy as np
@@ -35,60 +35,11 @@ from stablefilt import stress as st
 # Independent float64 reference.
 
 
-def _f64(params):
-    return jax.tree_util.tree_map(lambda a: np.asarray(a, dtype=np.float64), params)
-
-
-def _act(name, z):
-    if name == "relu":
-        return np.maximum(z, 0.0)
-    if name == "leaky_relu":
-        return np.where(z >= 0, z, 0.1 * z)
-    if name == "tanh":
-        return np.tanh(z)
-    return z
-
-
-def ref_forward(params, spec, s, x):
-    """Model output on the dense shift ``s`` for one signal ``x`` (``(N, F_0)``):
-    each bank ``sum_k p_k(S) X c_k`` by the monomial or Chebyshev three-term
-    recurrence on dense matrices, then bias, nonlinearity and readout."""
-    p = _f64(params)
-    n = s.shape[0]
-    if spec.basis.kind == "chebyshev":
-        a, b = spec.basis.interval
-        m = (2.0 * s - (a + b) * np.eye(n)) / (b - a)
-    else:
-        m = s
-    z = np.asarray(x, dtype=np.float64)
-    for li, layer in enumerate(p["layers"]):
-        taps = layer["taps"]
-        terms = [z]
-        if taps.shape[0] > 1:
-            terms.append(m @ z)
-        for _ in range(2, taps.shape[0]):
-            nxt = m @ terms[-1]
-            terms.append(2 * nxt - terms[-2] if spec.basis.kind == "chebyshev" else nxt)
-        z = sum(t @ c for t, c in zip(terms, taps))
-        if "bias" in layer:
-            z = z + layer["bias"]
-        if li < spec.depth - 1 or spec.final_nonlinearity:
-            z = _act(spec.nonlinearity, z)
-    if spec.readout == "none":
-        return z
-    r = p["readout"]
-    if spec.readout == "mean":
-        z = z.mean(axis=0)
-    elif spec.readout == "sum":
-        z = z.sum(axis=0)
-    return z @ r["weight"] + r["bias"]
-
-
 def ref_change(params, spec, s, e, x):
     """``||Phi(S + E S + S E) x - Phi(S) x||_F``, ``E`` dense or its diagonal."""
     e = np.diag(e) if np.ndim(e) == 1 else np.asarray(e)
     s_hat = s + e @ s + s @ e
-    return float(np.linalg.norm(ref_forward(params, spec, s_hat, x) - ref_forward(params, spec, s, x)))
+    return float(np.linalg.norm(H.ref_forward(params, spec, s_hat, x) - H.ref_forward(params, spec, s, x)))
 
 
 def _response(c, lam, basis):
@@ -185,7 +136,7 @@ def test_reference_forward_agrees_with_library():
             x = _signals(op.nodes, 2, 2, 0)
             got = sf.forward_np(params, op.matrix, x, spec)
             for b in range(2):
-                want = ref_forward(params, spec, op.dense(), x[b])
+                want = H.ref_forward(params, spec, op.dense(), x[b])
                 assert np.max(np.abs(got[b] - want)) <= 1e-10 * max(1.0, np.max(np.abs(want)))
 
 

@@ -28,6 +28,7 @@ import shutil
 import warnings
 from typing import Callable, NamedTuple
 
+import helpers as H
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -44,33 +45,7 @@ GOOD = np.array([[0.0, 1.0, 0.0, 0.5],
                  [0.0, 2.0, 0.0, 1.0],
                  [0.5, 0.0, 1.0, 0.0]])
 
-TINY = """\
-name = "tiny"
-
-[data]
-source = "orchard"
-sensors = 30
-samples = 60
-noise = 0.1
-seed = 0
-
-[model]
-features = [4]
-taps = 3
-basis = "chebyshev"
-
-[penalty]
-weight = 0.1
-
-[train]
-epochs = 2
-batch_size = 16
-learning_rate = 0.05
-seed = 0
-
-[certify]
-eps = [0.001, 0.01]
-"""
+TINY = H.small_run_text()
 
 FILES = """\
 name = "from-files"

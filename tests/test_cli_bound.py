@@ -5,12 +5,12 @@ here, and bad input exits with status 2 and one line on stderr."""
 
 from __future__ import annotations
 
-import json
 import math
 import subprocess
 import sys
 from pathlib import Path
 
+import helpers as H
 import networkx as nx
 import numpy as np
 import pytest
@@ -23,15 +23,6 @@ from stablefilt.cli import main
 
 BOUND_KEYS = {"eps", "certified", "first_order", "remainder", "published", "aligned", "lower"}
 TOP_KEYS = {"nodes", "interval", "interval_method", "constants", "bounds"}
-
-
-def _strict_json(text):
-    """Parse exactly one JSON object; NaN and Infinity are not JSON (RFC 8259)."""
-    def bad(name):
-        raise ValueError(f"non-standard JSON constant {name}")
-    obj, end = json.JSONDecoder(parse_constant=bad).raw_decode(text.strip())
-    assert text.strip()[end:] == "", "more than one JSON value on stdout"
-    return obj
 
 
 @pytest.fixture
@@ -63,7 +54,7 @@ def test_three_graph_formats_give_the_same_certificate(files, capsys):
     for g in ("g.npy", "g.npz", "g.csv"):
         code, out, err = _run(["bound", d / g, d / "mono.npz", "--eps", "0.01", "--eps", "0.1", "--json"], capsys)
         assert code == 0 and err == ""
-        results.append(_strict_json(out))
+        results.append(H.strict_json(out))
     assert results[0] == results[1] == results[2]
 
 
@@ -73,7 +64,7 @@ def test_json_shape_and_soundness(files, capsys, filt, shift):
     code, out, err = _run(["bound", d / "g.npy", d / filt, "--eps", "0.001", "--eps", "0.05", "--shift", shift,
                            "--json"], capsys)
     assert code == 0 and err == ""
-    obj = _strict_json(out)
+    obj = H.strict_json(out)
     assert TOP_KEYS <= set(obj)
     assert obj["nodes"] == 77
     lo, hi = obj["interval"]
@@ -171,7 +162,7 @@ def test_console_script_subprocess(files):
     ok = subprocess.run([exe, "bound", d / "g.csv", d / "mono.npz", "--eps", "0.01", "--json"],
                         capture_output=True, text=True, timeout=120)
     assert ok.returncode == 0, ok.stderr
-    obj = _strict_json(ok.stdout)
+    obj = H.strict_json(ok.stdout)
     assert TOP_KEYS <= set(obj) and len(obj["bounds"]) == 1
     table = subprocess.run([exe, "bound", d / "g.npz", d / "cheb.npz", "--eps", "0.01", "--shift", "laplacian"],
                            capture_output=True, text=True, timeout=120)

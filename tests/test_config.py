@@ -9,7 +9,7 @@ import os
 import subprocess
 import sys
 
-import _train_helpers as H
+import helpers as H
 import pytest
 
 from stablefilt import ConfigError, cli, load_config, parse_config

@@ -8,7 +8,7 @@ with and without the integral-Lipschitz penalty, through the command line.
 Checked: accuracy far above chance (1/3) on held-out images; the penalty
 shrinks the certified bound; and no measured change of the trained model
 under random relative perturbations of the grid and scalings exceeds its
-certificate (float64 numpy eigh reference model, tests/_train_helpers.py).
+certificate (float64 numpy eigh reference model, tests/helpers.py).
 """
 
 from __future__ import annotations
@@ -16,7 +16,7 @@ from __future__ import annotations
 import json
 import os
 
-import _train_helpers as H
+import helpers as H
 import networkx as nx
 import numpy as np
 import pytest

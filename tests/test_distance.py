@@ -18,11 +18,11 @@ Sources of the check values:
 
 from __future__ import annotations
 
-import json
 import os
 import subprocess
 import sys
 
+import helpers as H
 import networkx as nx
 import numpy as np
 import pytest
@@ -35,14 +35,6 @@ from stablefilt._distance import sylvester_relative
 from stablefilt.cli import main
 
 KARATE = nx.to_numpy_array(nx.karate_club_graph(), weight=None)  # Zachary 1977
-
-
-def _strict_json(text):
-    """``json.loads`` refusing NaN and Infinity (not JSON, RFC 8259)."""
-    def bad(name):
-        raise ValueError(f"{name} is not JSON")
-
-    return json.loads(text, parse_constant=bad)
 
 
 def _pd_shifts():
@@ -301,7 +293,7 @@ def test_cli_distance_json(graph_files, capsys):
     out, err = capsys.readouterr()
     assert rc == 0 and err == ""
     assert len(out.strip().splitlines()) == 1
-    d = _strict_json(out)
+    d = H.strict_json(out)
     assert d["relative"] == pytest.approx(0.01, rel=1e-9)  # (1.02) A: t = 0.02
     assert d["expressible"] is True and d["aligned"] is False
     assert d["delta"] <= 1e-8
@@ -313,7 +305,7 @@ def test_cli_distance_align_json(graph_files, capsys):
     rc = main(["distance", graph_files["A"], graph_files["P"], "--align", "--json"])
     out, _ = capsys.readouterr()
     assert rc == 0
-    d = _strict_json(out)
+    d = H.strict_json(out)
     assert d["aligned"] is True and d["upper_bound"] is True
     assert d["relative"] <= 1e-12 and d["additive"] == 0.0
     assert "upper bound" in d["model"]
@@ -323,7 +315,7 @@ def test_cli_distance_not_expressible_json(graph_files, capsys):
     rc = main(["distance", graph_files["bip"], graph_files["bip2"], "--json"])
     out, _ = capsys.readouterr()
     assert rc == 0
-    d = _strict_json(out)
+    d = H.strict_json(out)
     assert d["expressible"] is False and d["residual"] > 0 and d["singular_pairs"] > 0
 
 

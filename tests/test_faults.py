@@ -23,6 +23,7 @@ import time
 import tomllib
 import warnings
 
+import helpers as H
 import numpy as np
 import pytest
 
@@ -32,41 +33,13 @@ from stablefilt.cli import main
 
 # 30 sensors, 60 snapshots, one layer of 4 features with 3 taps, batches of 16
 # (two steps an epoch): the smallest run that still exercises every file.
-TINY = """\
-name = "tiny"
-
-[data]
-source = "orchard"
-sensors = 30
-samples = 60
-noise = 0.1
-seed = 0
-
-[model]
-features = [4]
-taps = 3
-basis = "chebyshev"
-
-[penalty]
-weight = 0.1
-
-[train]
-epochs = {epochs}
-batch_size = 16
-learning_rate = {lr}
-clip = {clip}
-seed = 0
-
-[certify]
-eps = [0.001, 0.01]
-"""
 
 RUN_FILES = {"config.toml", "manifest.json", "graph.npz", "test.npz", "log.jsonl", "checkpoint.npz", "params.npz",
              "summary.json"}
 
 
 def tiny(epochs=2, lr=0.05, clip=1.0) -> str:
-    return TINY.format(epochs=epochs, lr=lr, clip=clip)
+    return H.small_run_text(epochs=epochs, lr=lr, clip=clip)
 
 
 def quiet(msg):

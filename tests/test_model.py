@@ -1,7 +1,7 @@
 """The GNN model (float32 JAX and float64 numpy paths) and its certificate.
 
 Every expected value comes from an independent float64 reference in
-tests/_train_helpers.py (numpy.linalg.eigh and numpy.polynomial); the graphs
+tests/helpers.py (numpy.linalg.eigh and numpy.polynomial); the graphs
 are networkx's bundled and seeded generators.
 """
 
@@ -10,7 +10,7 @@ from __future__ import annotations
 import dataclasses
 import itertools
 
-import _train_helpers as H
+import helpers as H
 import jax
 import jax.numpy as jnp
 import networkx as nx
@@ -67,12 +67,6 @@ def _f32(params):
     return jax.tree_util.tree_map(lambda a: jnp.asarray(a, jnp.float32), params)
 
 
-def _ref(params, s, x, spec):
-    b = spec.basis
-    return H.ref_model(params, s, x, kind=b.kind, interval=b.interval, nonlinearity=spec.nonlinearity,
-                       readout=spec.readout, final_nonlinearity=spec.final_nonlinearity)
-
-
 # ---------------------------------------------------------------------------
 # forward (float32 JAX) vs forward_np (float64) vs the eigh reference.
 
@@ -98,7 +92,7 @@ def test_forward_float32_matches_float64(karate, basis, nonlinearity, readout):
     scale = float(np.max(np.abs(y64)))
     np.testing.assert_allclose(y32, y64, rtol=1e-5, atol=1e-5 * scale)
     # And forward_np against the numpy.linalg.eigh reference, float64 tolerance.
-    ref = _ref(H.to_numpy(p32), op.dense(), x, spec)
+    ref = H.ref_forward(H.to_numpy(p32), spec, op.dense(), x)
     np.testing.assert_allclose(y64, ref, rtol=1e-10, atol=1e-10 * max(scale, 1.0))
 
 
@@ -115,7 +109,7 @@ def test_forward_np_matches_eigh_reference_on_adjacency(layers, basis, bias, fin
     params = _random_params(spec, seed=layers, scale=0.3)
     x = np.random.default_rng(9).standard_normal((2, 25, 3))
     got = forward_np(params, op.matrix, x, spec)
-    ref = _ref(params, adj, x, spec)
+    ref = H.ref_forward(params, spec, adj, x)
     np.testing.assert_allclose(got, ref, rtol=1e-10, atol=1e-10 * np.max(np.abs(ref)))
 
 
@@ -285,8 +279,8 @@ def _perturbed_graphs(rng, s, eps, v):
 def _measure(params, spec, s_hat, perm, x):
     """Output on the perturbed graph in the original node order."""
     if perm is None:
-        return _ref(params, s_hat, x, spec)
-    y = _ref(params, s_hat, x[:, perm], spec)
+        return H.ref_forward(params, spec, s_hat, x)
+    y = H.ref_forward(params, spec, s_hat, x[:, perm])
     if spec.readout in ("node", "none"):
         inv = np.argsort(perm)
         y = y[:, inv]
@@ -312,7 +306,7 @@ def test_measured_change_never_exceeds_certificate(graph_ops, case):
     # input-specific bound is at its tightest), all of norm rho.
     eig_sig = np.stack([v[:, [0, 0]], v[:, [n - 1, 0]], v[:, [n // 2, n - 1]]]) * (RHO / np.sqrt(2))
     x = np.concatenate([H.signals(rng, 5, n, 2, RHO), eig_sig])
-    y = _ref(params, s, x, spec)
+    y = H.ref_forward(params, spec, s, x)
     worst = 0.0
     for eps in EPS:
         bound = cert.at(eps).certified
@@ -355,7 +349,7 @@ def test_linear_models_worst_input_stays_below_certificate(graph_ops, graph, kin
     eye = np.eye(n).reshape(n, n, 1)  # every unit input signal
 
     def operator(m):
-        return _ref(params, m, eye, spec).reshape(n, -1)  # rows: inputs
+        return H.ref_forward(params, spec, m, eye).reshape(n, -1)  # rows: inputs
 
     base = operator(s)
     w, v = np.linalg.eigh(s)

@@ -7,7 +7,7 @@ polyder/polyval, chebder/chebval; numpy.linalg.eigh/lstsq) on the same grid:
 
 from __future__ import annotations
 
-import _train_helpers as H
+import helpers as H
 import jax
 import jax.numpy as jnp
 import numpy as np

@@ -8,7 +8,7 @@ import json
 import os
 import shutil
 
-import _train_helpers as H
+import helpers as H
 import numpy as np
 import pytest
 

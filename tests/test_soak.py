@@ -14,6 +14,7 @@ from __future__ import annotations
 import os
 import time
 
+import helpers as H
 import jax
 import jax.monitoring
 import jax.numpy as jnp
@@ -23,33 +24,7 @@ import stablefilt as sf
 
 COMPILE_EVENT = "/jax/core/compile/backend_compile_duration"
 
-TEXT = """\
-name = "soak"
-
-[data]
-source = "orchard"
-sensors = 30
-samples = 60
-noise = 0.1
-seed = 0
-
-[model]
-features = [4]
-taps = 3
-basis = "chebyshev"
-
-[penalty]
-weight = 0.1
-
-[train]
-epochs = 3
-batch_size = 16
-learning_rate = 0.05
-seed = 0
-
-[certify]
-eps = [0.001, 0.01]
-"""
+TEXT = H.small_run_text(name="soak", epochs=3)
 
 RUNS = 30
 

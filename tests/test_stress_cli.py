@@ -15,10 +15,9 @@ Sources of the check values:
 from __future__ import annotations
 
 import dataclasses
-import json
 import textwrap
 
-import jax
+import helpers as H
 import numpy as np
 import pytest
 
@@ -52,14 +51,6 @@ TOML = textwrap.dedent("""\
 KINDS = ("relative", "diagonal", "scaling", "edges")
 
 
-def _strict_json(text):
-    """``json.loads`` refusing NaN and Infinity (not JSON, RFC 8259)."""
-    def bad(name):
-        raise ValueError(f"{name} is not JSON")
-
-    return json.loads(text, parse_constant=bad)
-
-
 @pytest.fixture(scope="module")
 def run_dir(tmp_path_factory):
     base = tmp_path_factory.mktemp("stress")
@@ -71,23 +62,6 @@ def run_dir(tmp_path_factory):
 @pytest.fixture(scope="module")
 def run(run_dir):
     return open_run(run_dir)
-
-
-def _ref_forward(params, spec, s, x):
-    """One signal ``x`` (``(N, F_0)``) through the model on the dense ``s``:
-    Chebyshev recurrence, bias, relu, per-node readout."""
-    p = jax.tree_util.tree_map(lambda a: np.asarray(a, dtype=np.float64), params)
-    a, b = spec.basis.interval
-    n = s.shape[0]
-    m = (2.0 * s - (a + b) * np.eye(n)) / (b - a)
-    z = np.asarray(x, dtype=np.float64)
-    for layer in p["layers"]:
-        taps = layer["taps"]
-        terms = [z, m @ z]
-        for _ in range(2, taps.shape[0]):
-            terms.append(2 * (m @ terms[-1]) - terms[-2])
-        z = np.maximum(sum(t @ c for t, c in zip(terms, taps)) + layer["bias"], 0.0)
-    return z @ p["readout"]["weight"] + p["readout"]["bias"]
 
 
 def _one_line(err):
@@ -106,7 +80,7 @@ def test_stress_json_rows_and_no_violations(run_dir, run, capsys):
     out, err = capsys.readouterr()
     assert rc == 0, err
     assert len(out.strip().splitlines()) == 1
-    d = _strict_json(out)
+    d = H.strict_json(out)
     assert d["violations"] == 0 and d["nodes"] == run.op.nodes
     rows = d["rows"]
     assert [r["kind"] for r in rows] == list(KINDS) + ["attack"]
@@ -167,7 +141,7 @@ def test_stress_exit_3_when_the_operator_certificate_is_too_small(run_dir, monke
     rc = main(["stress", run_dir, "--eps", "0.01", "--samples", "1", "--kinds", "relative,scaling", "--json"])
     out, err = capsys.readouterr()
     assert rc == 3
-    assert _strict_json(out)["violations"] > 0
+    assert H.strict_json(out)["violations"] > 0
     assert "SOUNDNESS FAILURE" in _one_line(err)
     rc = main(["stress", run_dir, "--eps", "0.01", "--samples", "1", "--kinds", "diagonal", "--attack"])
     out, err = capsys.readouterr()
@@ -179,7 +153,7 @@ def test_stress_exit_3_when_the_input_certificate_is_too_small(run_dir, monkeypa
     monkeypatch.setattr(_stress, "certify_inputs", lambda *a, **k: real(*a, **k) * 1e-6)
     rc = main(["stress", run_dir, "--eps", "0.01", "--samples", "1", "--kinds", "scaling", "--json"])
     out, err = capsys.readouterr()
-    assert rc == 3 and _strict_json(out)["violations"] > 0
+    assert rc == 3 and H.strict_json(out)["violations"] > 0
     assert "SOUNDNESS FAILURE" in err
 
 
@@ -198,8 +172,8 @@ def test_scaling_rows_remeasured_independently(run):
     changes = {}
     for sign in (1.0, -1.0):
         s_hat = (1 + 2 * sign * eps) * s
-        changes[sign] = [float(np.linalg.norm(_ref_forward(run.params, run.spec, s_hat, xb)
-                                              - _ref_forward(run.params, run.spec, s, xb))) for xb in x]
+        changes[sign] = [float(np.linalg.norm(H.ref_forward(run.params, run.spec, s_hat, xb)
+                                              - H.ref_forward(run.params, run.spec, s, xb))) for xb in x]
     (row,) = rows
     assert row.violations == 0 and row.covered == 2
     assert row.max_change == pytest.approx(max(max(v) for v in changes.values()), rel=1e-9)
@@ -244,7 +218,7 @@ def test_graph_independent_model_reports_no_ratio(run, run_dir, monkeypatch, cap
     rc = main(["stress", run_dir, "--eps", "0.01", "--samples", "1", "--kinds", "scaling", "--attack", "--json"])
     out, err = capsys.readouterr()
     assert rc == 0, err
-    rows = _strict_json(out)["rows"]
+    rows = H.strict_json(out)["rows"]
     assert [r["kind"] for r in rows] == ["scaling", "attack"]
     for r in rows:
         assert r["max_change"] == 0.0 and r["ratio"] is None and r["violations"] == 0

@@ -14,7 +14,7 @@ import math
 import os
 import shutil
 
-import _train_helpers as H
+import helpers as H
 import jax
 import networkx as nx
 import numpy as np

@@ -1,6 +1,6 @@
-"""Helpers for the training-side tests: independent float64 references built
-from numpy and numpy.polynomial only (nothing from stablefilt), relative
-perturbations of dense shift operators, and tiny run configs.
+"""Shared test helpers: independent float64 references built from numpy and
+numpy.polynomial only (nothing from stablefilt), relative perturbations of
+dense shift operators, the tiny run configs, and strict JSON parsing.
 
 References
 - Frequency responses: tests/reference.py (``numpy.polynomial`` polyval /
@@ -13,6 +13,7 @@ References
 
 from __future__ import annotations
 
+import json
 import os
 import textwrap
 
@@ -65,6 +66,16 @@ def ref_model(params, s, x, *, kind, interval, nonlinearity, readout, final_nonl
     elif readout == "sum":
         z = z.sum(axis=1)
     return z @ w + b
+
+
+def ref_forward(params, spec, s, x):
+    """:func:`ref_model` for a ``ModelSpec``: ``x`` is one signal ``(N, F_0)``
+    or a batch ``(B, N, F_0)``, the output shaped to match."""
+    b = spec.basis
+    z = np.asarray(x, dtype=np.float64)
+    y = ref_model(to_numpy(params), s, z[None] if z.ndim == 2 else z, kind=b.kind, interval=b.interval,
+                  nonlinearity=spec.nonlinearity, readout=spec.readout, final_nonlinearity=spec.final_nonlinearity)
+    return y[0] if z.ndim == 2 else y
 
 
 def to_numpy(tree):
@@ -139,6 +150,7 @@ weight = {weight}
 epochs = {epochs}
 batch_size = {batch_size}
 learning_rate = {lr}
+clip = {clip}
 patience = {patience}
 seed = {seed}
 
@@ -152,9 +164,25 @@ def tiny_text(**kw) -> str:
     The defaults make the validation accuracy still improve after epoch 3,
     so the saved (best) parameters come from late epochs."""
     opts = dict(name="tiny", sensors=30, samples=60, noise=0.1, features="[8]", taps=4, basis="chebyshev",
-                mode="integral_lipschitz", weight=0.0, epochs=6, batch_size=8, lr=0.05, patience=0, seed=0)
+                mode="integral_lipschitz", weight=0.0, epochs=6, batch_size=8, lr=0.05, clip=1.0, patience=0, seed=0)
     opts.update(kw)
     return TINY.format(**opts)
+
+
+def small_run_text(**kw) -> str:
+    """The smallest run that still exercises every file: :func:`tiny_text`
+    with one layer of 4 features, 3 taps, penalty weight 0.1, 2 epochs of
+    two batches of 16."""
+    return tiny_text(**{**dict(features="[4]", taps=3, weight=0.1, epochs=2, batch_size=16), **kw})
+
+
+def strict_json(text: str):
+    """Exactly one JSON value; NaN and Infinity are refused (not JSON,
+    RFC 8259), as is anything after the value."""
+    def bad(name):
+        raise ValueError(f"non-standard JSON constant {name}")
+
+    return json.loads(text, parse_constant=bad)
 
 
 def write(path, text: str) -> str:
