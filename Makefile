@@ -29,4 +29,4 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/run_all.py
 
 clean:
-	rm -rf $(VENV) build *.egg-info
+	rm -rf $(VENV) build dist *.egg-info
