@@ -33,7 +33,7 @@ def _np(params):
     return jax.tree_util.tree_map(lambda a: np.asarray(a, dtype=np.float64), params)
 
 
-def _key(eps: float) -> str:
+def eps_key(eps: float) -> str:
     """An eps as a JSON key (the run log, summary.json and --json formats)."""
     return f"{eps:g}"
 
@@ -216,17 +216,17 @@ class ModelCertificate:
         found = [b for b in self.bounds if b.eps == float(eps)]
         if not found:
             raise KeyError(f"no bound at eps {eps:g}; this certificate has eps "
-                           f"{', '.join(_key(b.eps) for b in self.bounds)}.")
+                           f"{', '.join(eps_key(b.eps) for b in self.bounds)}.")
         return found[-1]
 
     def as_dict(self) -> dict:
         """The JSON form (run log, summary.json, ``certify --json``): per-eps
         figures keyed by ``f"{eps:g}"``."""
         return {
-            "certified": {_key(b.eps): b.certified for b in self.bounds},
-            "published": {_key(b.eps): b.published for b in self.bounds},
-            "per_unit": {_key(b.eps): b.per_unit for b in self.bounds},
-            "layers": [dict(dataclasses.asdict(lc), change={_key(b.eps): b.layer_changes[i] for b in self.bounds})
+            "certified": {eps_key(b.eps): b.certified for b in self.bounds},
+            "published": {eps_key(b.eps): b.published for b in self.bounds},
+            "per_unit": {eps_key(b.eps): b.per_unit for b in self.bounds},
+            "layers": [dict(dataclasses.asdict(lc), change={eps_key(b.eps): b.layer_changes[i] for b in self.bounds})
                        for i, lc in enumerate(self.layers)],
             "rho": self.rho,
             "assumptions": self.assumptions,

@@ -11,7 +11,7 @@ import dataclasses
 import numpy as np
 
 from ._interval import SpectralInterval, spectral_interval
-from ._modelcert import ModelCertificate, ModelConstants, certify_inputs, certify_model, model_constants
+from ._modelcert import ModelCertificate, ModelConstants, certify_inputs, certify_model, eps_key, model_constants
 from ._runs import Run
 
 
@@ -86,7 +86,7 @@ class RunCertificate:
         d = self.model.as_dict()
         d.update({"run": self.run, "nodes": self.nodes, "interval": [iv.lower, iv.upper],
                   "interval_method": iv.method,
-                  "input_specific_test_max": {f"{b.eps:g}": v for b, v in zip(self.model.bounds, self.input_test_max)}})
+                  "input_specific_test_max": {eps_key(b.eps): v for b, v in zip(self.model.bounds, self.input_test_max)}})
         return d
 
 
