@@ -39,6 +39,9 @@ def kernel_matrices(cols, basis, splits):
 
 
 def psd_parts(m):
+    """``(M_+, M_-)``, the positive and negative semidefinite parts of the
+    symmetric part of ``m`` (``..., K, K``): ``M = M_+ - M_-`` by one
+    eigendecomposition (docs/theory.md section 5 item 2)."""
     w, v = np.linalg.eigh(0.5 * (m + np.swapaxes(m, -1, -2)))
     plus = np.einsum("...ai,...i,...bi->...ab", v, np.maximum(w, 0), v)
     minus = np.einsum("...ai,...i,...bi->...ab", v, np.maximum(-w, 0), v)

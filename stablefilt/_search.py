@@ -11,6 +11,10 @@ sparse principal component analysis", JMLR 2010). The gradient ``G`` comes
 from the Daleckii-Krein formula for the derivative of ``H`` (Bhatia, "Matrix
 Analysis", 1997, ch. V). Every value returned is a change measured on an
 actually perturbed matrix.
+
+Also here: the realised ``lower`` figure of a filter certificate
+(:func:`lower_change`), power iteration on the change under constructed
+perturbations (scaling, and eigenvector pairs of the kernel), matrix-free.
 """
 
 from __future__ import annotations
