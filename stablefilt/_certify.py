@@ -20,11 +20,34 @@ import dataclasses
 import numpy as np
 
 from ._checks import check_eps
-from ._filterbounds import FilterConstants, combine, filter_bounds, filter_constants
+from ._compose import bank_change, change_cover, widened
+from ._filterbounds import FilterConstants, combine, filter_bounds, filter_constants, gain_constants
 from ._filters import Basis, check_taps
 from ._graph import ShiftOperator
-from ._interval import SpectralInterval, spectral_interval
+from ._interval import SpectralInterval, construction_interval, spectral_interval
+from ._joint import joint_factor
+from ._kernel import eigenvalue_slack
 from ._search import LOWER_EIG_LIMIT, lower_change
+
+
+def deployed_interval(kind: str):
+    """The interval holding the deployed graph's spectrum when it is rebuilt
+    as an operator of the same ``kind`` (docs/theory.md 9.1), with infinite
+    ends where the kind fixes none; None for ``as-is`` (nothing is known)."""
+    lo, hi = construction_interval(kind)
+    if lo is None and hi is None:
+        return None
+    return (-np.inf if lo is None else float(lo), np.inf if hi is None else float(hi))
+
+
+def deployed_text(deployed) -> str:
+    """The deployment assumption, as recorded beside a certificate."""
+    if deployed is None:
+        return ("any S_hat = S + E S + S E: its spectrum lies within 2 eps R of that of S (Weyl's inequality)")
+    return (f"S_hat keeps the kind of S (rebuilt as the same kind of operator after the change), so its spectrum "
+            f"lies in [{deployed[0]:g}, {deployed[1]:g}] by construction, and so does every S + t (E S + S E) "
+            "(a convex set; theory s.9.1); an assumption about the deployment, not checked here")
+
 
 MODEL = "relative: P^T S_hat P = S + E S + S E, E symmetric, ||E||_2 <= eps, P a permutation"
 
@@ -46,6 +69,7 @@ class EpsBound:
     aligned: float
     lower: float | None
     lower_perturbation: str | None = None
+    method: str = "per-filter kernel + remainder"
 
     def as_dict(self) -> dict:
         return dataclasses.asdict(self)
@@ -77,7 +101,7 @@ class Certificate:
 
 def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: float = 8.0,
                    interval: SpectralInterval | None = None, use_eigenvalues: bool | None = None,
-                   lower: bool = True) -> Certificate:
+                   lower: bool = True, deployed=None, rebalance: bool = True) -> Certificate:
     """Certificate of a filter or bank on one graph for each ``eps``.
 
     Args:
@@ -91,6 +115,9 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
       use_eigenvalues: also bound over the graph's eigenvalues (default:
         when the interval computed them).
       lower: compute the realised ``lower`` figure.
+      deployed: the interval holding the deployed graph's spectrum when it
+        keeps the kind of ``op`` (:func:`deployed_interval`), or None.
+      rebalance: optimise the joint factorisation (docs/theory.md 9.4).
 
     Returns:
       :class:`Certificate`.
@@ -107,16 +134,22 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
     if lower and lam is not None and n <= LOWER_EIG_LIMIT:
         w, v = np.linalg.eigh(op.dense())
         eig = (w, v)
+    slack = 0.0 if lam is None else eigenvalue_slack(lam)
+    radius = interval.radius if lam is None else min(interval.radius, float(np.max(np.abs(lam))) + slack)
+    joint = joint_factor(taps, basis, change_cover(lam, iv, slack), optimise=rebalance).constant
     bounds = []
     for eps in eps_list:
         eps = float(eps)
         fb = filter_bounds(taps, basis, iv, eps, consts, lam)
-        fo, rm = combine(fb.first_order), combine(fb.remainder)
+        wide = widened(iv, eps, interval.radius, deployed)
+        ch = bank_change(taps, basis, eps, first_order=fb.first_order, remainder=fb.remainder, joint=joint,
+                         radius=radius, path_cover=change_cover(lam, iv, 2 * eps * radius + slack, deployed),
+                         gains=(float(consts.bank_sup), gain_constants(taps, basis, wide)[0]))
         published = combine(2 * np.asarray(consts.integral_lipschitz) * (1 + delta * np.sqrt(n)) * eps)
         al = consts.aligned_spectrum if consts.aligned_spectrum is not None else 2 * np.asarray(consts.integral_lipschitz)
         aligned = combine(np.asarray(al) * eps)
         low, how = (lower_change(op, taps, basis, eps, eig=eig) if lower else (None, None))
-        bounds.append(EpsBound(eps, fo + rm, fo, rm, published, aligned, low, how))
+        bounds.append(EpsBound(eps, ch.certified, ch.first, ch.second, published, aligned, low, how, ch.method))
     assumptions = {
         "perturbation_model": MODEL,
         "norm": NORM,
@@ -125,7 +158,12 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
         "first_order": "kernel (Schur) bound: PSD split of the Gamma kernel in Chebyshev and monomial bases, "
                        + ("min over the interval and the graph's eigenvalues" if lam is not None else "over the interval"),
         "remainder": "non-asymptotic second-order remainder, min of origin and centred forms (theory s.5 item 5)",
-        "certified": "first_order + remainder, with a round-off allowance; bank: spectral norm of per-filter bounds",
+        "certified": "the smallest of: per-filter kernel bounds + remainders (bank: spectral norm of the per-filter "
+                     "bounds); joint kernel bound + remainders (theory s.9.2); the whole-path bound (s.9.1); the "
+                     "trivial sup ||H|| over spec S plus over spec S_hat; each with a round-off allowance; "
+                     "first_order and remainder are the parts of the one kept (its 'method')"
+                     + ("; joint factorisation rebalanced (s.9.4)" if rebalance else ""),
+        "deployed_graph": deployed_text(deployed),
         "published": f"2 C (1 + delta sqrt(N)) eps with delta = {delta:g}, first order only "
                      "(Gama, Bruna, Ribeiro 2020, Thm 2; exact form from memory)",
         "aligned": "2 max |lam h'(lam)| eps, first order, for E commuting with S",

@@ -176,6 +176,33 @@ def kernel_transform(k: int, basis: Basis, split: Basis) -> np.ndarray:
     return out
 
 
+@functools.lru_cache(maxsize=512)
+def divided_transform(k: int, basis: Basis, split: Basis) -> np.ndarray:
+    """``T`` of shape ``(k, k, k)``: the kernel matrix ``M1`` of the divided
+    difference ``h^[1](lam, mu) = (h(lam) - h(mu)) / (lam - mu) =
+    phi(lam)^T M1 phi(mu)`` of a filter with taps ``c`` is ``T @ c``
+    (docs/theory.md section 9.1).
+
+    With ``lam = m + r t`` and ``h = sum_n d_n t^n``: ``(t^n - s^n) / (t - s) =
+    sum_{a + b = n - 1} t^a s^b``, so ``N1_ab = d_{a+b+1} / r``; a Chebyshev
+    split takes ``M1 = C^T N1 C``.
+    """
+    if split.kind == "monomial":
+        mid, half = Fraction(0), Fraction(1)
+    else:
+        mid, half = _ends(*split.interval)
+    conv = _power_to_chebyshev(k)
+    out = np.zeros((k, k, k))
+    for j, d in enumerate(_basis_in(basis, k, mid, half)):
+        d = d + [Fraction(0)] * (k + 1 - len(d))
+        n = [[(d[a + b + 1] / half if a + b + 1 <= k - 1 else Fraction(0)) for b in range(k)] for a in range(k)]
+        if split.kind != "monomial":
+            n = _congruence(conv, n, k)
+        out[:, :, j] = [[float(v) for v in row] for row in n]
+    out.setflags(write=False)
+    return out
+
+
 def _congruence(c, n, k):
     """``C^T N C`` for ``k x k`` nested lists, skipping zeros of ``C``."""
     nz = [[(j, v) for j, v in enumerate(row) if v] for row in c]  # row a of C: (j, C_aj)

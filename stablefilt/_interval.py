@@ -151,6 +151,18 @@ def _lanczos_end(m: sp.csr_array, which: str, scale: float) -> float | None:
     return None
 
 
+def construction_interval(kind: str) -> tuple[float | None, float | None]:
+    """Ends known for every operator of ``kind`` (None where unknown):
+    normalised Laplacian ``[0, 2]`` (Chung, "Spectral Graph Theory", 1997),
+    scaled adjacency ``[-1, 1]``, combinatorial Laplacian lower end 0
+    (positive semidefinite; common practice)."""
+    return {
+        "normalized-laplacian": (0.0, 2.0),
+        "scaled-adjacency": (-1.0, 1.0),
+        "laplacian": (0.0, None),
+    }.get(kind, (None, None))
+
+
 def spectral_interval(op: ShiftOperator, *, exact_limit: int = 2000) -> SpectralInterval:
     """A certified interval holding every eigenvalue of ``op``.
 
@@ -173,11 +185,7 @@ def spectral_interval(op: ShiftOperator, *, exact_limit: int = 2000) -> Spectral
         # Never looser than what is known without computing.
         lo, hi = max(lo, g_lo), min(hi, g_hi)
         return SpectralInterval(float(lo), float(hi), "exact", "exact", lam)
-    known = {
-        "normalized-laplacian": (0.0, 2.0),
-        "scaled-adjacency": (-1.0, 1.0),
-        "laplacian": (0.0, None),
-    }.get(op.kind, (None, None))
+    known = construction_interval(op.kind)
     ends = {}
     for side, which, g in (("lower", "SA", g_lo), ("upper", "LA", g_hi)):
         k = known[0] if side == "lower" else known[1]

@@ -18,7 +18,8 @@ from typing import NamedTuple
 
 import numpy as np
 
-from ._certify import MODEL, NORM
+from ._certify import MODEL, NORM, deployed_text
+from ._compose import CompositionConstants, composed_bound, composed_inputs, composition_constants, layer_changes
 from ._filterbounds import FilterConstants, combine, filter_bounds, filter_constants, gain_constants
 from ._filters import frequency_response
 from ._interval import SpectralInterval
@@ -77,6 +78,8 @@ class ModelConstants:
       gains: per layer, a bound ``B_l`` on ``||H_l(S)||_2``.
       readout: bound on the readout's Lipschitz constant.
       layers: per layer, the reported :class:`LayerConstants`.
+      composition: the eps-free constants of the tighter composition
+        (docs/theory.md section 9), or None.
     """
 
     params: dict
@@ -88,6 +91,7 @@ class ModelConstants:
     gains: tuple[float, ...]
     readout: float
     layers: tuple[LayerConstants, ...]
+    composition: CompositionConstants | None = None
 
 
 def _bank_sup_eig(taps, basis, lam):
@@ -99,9 +103,15 @@ def _bank_sup_eig(taps, basis, lam):
 
 
 def model_constants(params, spec: ModelSpec, interval: SpectralInterval, nodes: int,
-                    eigenvalues=None) -> ModelConstants:
+                    eigenvalues=None, *, matrix=None, deployed=None, rebalance: bool = False) -> ModelConstants:
     """The eps-free constants of a model on a graph with spectrum in
-    ``interval`` (and, when given, these ``eigenvalues``)."""
+    ``interval`` (and, when given, these ``eigenvalues``).
+
+    ``matrix`` (the graph's ``S``) enables the bias cross term of the clean
+    path; ``deployed`` is the interval holding the deployed graph's spectrum
+    when it keeps its kind (docs/theory.md 9.1), else None (Weyl's widening);
+    ``rebalance`` optimises the joint factorisations (slower, tighter;
+    docs/theory.md 9.4)."""
     p = _np(params)
     iv = (interval.lower, interval.upper)
     filters, gains, layers = [], [], []
@@ -112,8 +122,10 @@ def model_constants(params, spec: ModelSpec, interval: SpectralInterval, nodes: 
         gains.append(c.bank_sup if eigenvalues is None else min(c.bank_sup, _bank_sup_eig(taps, spec.basis, eigenvalues)))
         kap = c.kernel if c.kernel_spectrum is None else np.minimum(c.kernel, c.kernel_spectrum)
         layers.append(LayerConstants(float(np.max(c.integral_lipschitz)), float(np.max(kap)), float(c.bank_sup)))
+    comp = composition_constants(p, spec, interval, int(nodes), filters, eigenvalues, matrix, deployed=deployed,
+                                 rebalance=rebalance)
     return ModelConstants(p, spec, interval, int(nodes), eigenvalues, tuple(filters), tuple(gains),
-                          readout_factor(p, spec, nodes), tuple(layers))
+                          readout_factor(p, spec, nodes), tuple(layers), comp)
 
 
 class LayerBound(NamedTuple):
@@ -163,6 +175,7 @@ class ModelEpsBound:
       published: the published GNN form (first order, reference only).
       per_unit: ``certified / eps`` (0 at eps 0).
       layer_changes: per layer, ``Delta_l``, the bound on the change of ``H_l``.
+      method: how ``certified`` was obtained.
     """
 
     eps: float
@@ -170,6 +183,23 @@ class ModelEpsBound:
     published: float
     per_unit: float
     layer_changes: tuple[float, ...]
+    method: str = "composition through layers (theory s.5 item 6)"
+
+
+def _chain(constants: ModelConstants, bounds, rho: float) -> tuple[float, list]:
+    """The section 5 item 6 composition for inputs with ``||x||_F <= rho``:
+    ``(certified, per-layer Delta_l)``."""
+    p, nodes = constants.params, constants.nodes
+    norm_in = float(rho)
+    diff = 0.0
+    changes = []
+    for i, lb in enumerate(bounds):
+        delta_l = combine(lb.beta)
+        changes.append(delta_l)
+        diff = delta_l * norm_in + lb.gain_perturbed * diff
+        bias = p["layers"][i].get("bias")
+        norm_in = lb.gain * norm_in + (np.sqrt(nodes) * float(np.linalg.norm(bias)) if bias is not None else 0.0)
+    return float(with_allowance(constants.readout * diff, 0.0)), changes
 
 
 def model_bounds(constants: ModelConstants, eps: float, *, rho: float, delta: float = 8.0) -> ModelEpsBound:
@@ -177,22 +207,22 @@ def model_bounds(constants: ModelConstants, eps: float, *, rho: float, delta: fl
     the layer recursion of the module docstring (docs/theory.md s.5 item 6,
     s.8); ``delta`` is the eigenvector misalignment of the published form."""
     eps = float(eps)
-    p, spec, nodes = constants.params, constants.spec, constants.nodes
-    norm_in = float(rho)
-    diff = 0.0
-    changes = []
-    for i, lb in enumerate(layer_bounds(constants, eps)):
-        delta_l = combine(lb.beta)
-        changes.append(delta_l)
-        diff = delta_l * norm_in + lb.gain_perturbed * diff
-        bias = p["layers"][i].get("bias")
-        norm_in = lb.gain * norm_in + (np.sqrt(nodes) * float(np.linalg.norm(bias)) if bias is not None else 0.0)
+    spec, nodes = constants.spec, constants.nodes
+    bounds = layer_bounds(constants, eps)
+    certified, changes = _chain(constants, bounds, rho)
+    method = "composition through layers (theory s.5 item 6)"
+    if constants.composition is not None:
+        cb = composed_bound(constants, constants.composition, bounds, eps, rho)
+        changes = [min(c, ch.certified) for c, ch in zip(changes, cb.changes)]
+        if cb.certified < certified:
+            certified = cb.certified
+            method = ("trivial bound ||W|| (n_L + n_hat_L)" if cb.trivial <= cb.composed else
+                      "tighter composition (theory s.9): per layer " + "; ".join(ch.method for ch in cb.changes))
     rf = constants.readout
-    certified = float(with_allowance(rf * diff, 0.0))
     c_max = max(float(np.max(c.integral_lipschitz)) for c in constants.filters)
     f_max = max(spec.features[1:])
     published = float(2 * c_max * (1 + delta * np.sqrt(nodes)) * spec.depth * f_max ** (spec.depth - 1) * eps * rf * rho)
-    return ModelEpsBound(eps, certified, published, certified / eps if eps > 0 else 0.0, tuple(changes))
+    return ModelEpsBound(eps, certified, published, certified / eps if eps > 0 else 0.0, tuple(changes), method)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -229,12 +259,14 @@ class ModelCertificate:
             "layers": [dict(dataclasses.asdict(lc), change={eps_key(b.eps): b.layer_changes[i] for b in self.bounds})
                        for i, lc in enumerate(self.layers)],
             "rho": self.rho,
+            "methods": {eps_key(b.eps): b.method for b in self.bounds},
             "assumptions": self.assumptions,
         }
 
 
 def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: int, eps_list, *, rho: float,
-                  eigenvalues=None, delta: float = 8.0, constants: ModelConstants | None = None) -> ModelCertificate:
+                  eigenvalues=None, delta: float = 8.0, constants: ModelConstants | None = None, matrix=None,
+                  deployed=None, rebalance: bool = False) -> ModelCertificate:
     """Operator-level certificate of a model for inputs with ``||x||_F <= rho``.
 
     Args:
@@ -248,9 +280,12 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
       delta: eigenvector misalignment in the published form.
       constants: the :func:`model_constants` of these arguments, when
         already computed.
+      matrix, deployed, rebalance: as :func:`model_constants`.
     """
     if constants is None:
-        constants = model_constants(params, spec, interval, nodes, eigenvalues)
+        constants = model_constants(params, spec, interval, nodes, eigenvalues, matrix=matrix, deployed=deployed,
+                                    rebalance=rebalance)
+    comp = constants.composition
     bounds = tuple(model_bounds(constants, eps, rho=rho, delta=delta) for eps in eps_list)
     assumptions = {
         "perturbation_model": MODEL,
@@ -260,7 +295,11 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
         "interval_method": {"lower": interval.lower_method, "upper": interval.upper_method},
         "over_eigenvalues": eigenvalues is not None,
         "nonlinearity": f"{spec.nonlinearity} (1-Lipschitz, sigma(0) = 0)",
-        "composition": "triangle inequality through layers (theory s.5 item 6, s.8)",
+        "composition": "the smaller of: triangle inequality through layers (theory s.5 item 6, s.8); per layer the "
+                       "smallest of per-filter, joint, whole-path and trivial bank bounds, changes carried through "
+                       "the previous bank and the readout by averaging, capped by the trivial bound (theory s.9)"
+                       + ("; joint factorisations rebalanced (s.9.4)" if comp is not None and comp.balanced else ""),
+        "deployed_graph": deployed_text(None if comp is None else comp.deployed),
         "published": f"2 C (1 + delta sqrt(N)) L F^(L-1) eps rho ||readout||, delta = {delta:g}, first order, "
                      "assumes |h| <= 1 (Gama, Bruna, Ribeiro 2020, Thm 4; form from memory); reference only",
     }
@@ -278,21 +317,44 @@ def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterva
     the :func:`model_constants` of these arguments, when already computed."""
     n = op_matrix.shape[0]
     if constants is None:
-        constants = model_constants(params, spec, interval, n, eigenvalues)
+        constants = model_constants(params, spec, interval, n, eigenvalues, matrix=op_matrix)
     p = constants.params
     z = np.asarray(x, dtype=np.float64)
     diff = np.zeros(z.shape[0])
-    no_readout = dataclasses.replace(spec, readout="none", final_nonlinearity=True)
     use_spec = eigenvalues is not None and eigenvectors is not None
-    for i, lb in enumerate(layer_bounds(constants, eps)):
+    bounds = layer_bounds(constants, eps)
+    contribs = []
+    for i, lb in enumerate(bounds):
         feat = np.sqrt(np.sum(z**2, axis=1))  # (B, F_in) per-feature norms
         per = feat[:, :, None] * lb.beta[None]  # (B, F_in, F_out): beta_fg ||x_f||
         if use_spec:
             spec_first = spectral_first_order(p["layers"][i]["taps"], spec.basis, eigenvalues, eigenvectors, z, eps)
             per = np.minimum(per, spec_first + feat[:, :, None] * lb.remainder[None])
-        contrib = np.linalg.norm(per.sum(axis=1), axis=1)  # ||sum_f beta_fg n_f||_2 over g
-        diff = with_allowance(contrib, 0.0) + lb.gain_perturbed * diff
-        sub = dataclasses.replace(no_readout, features=spec.features[i:i + 2],
-                                  final_nonlinearity=(i < spec.depth - 1) or spec.final_nonlinearity)
-        z = forward_np({"layers": [p["layers"][i]]}, op_matrix, z, sub)
-    return with_allowance(constants.readout * diff, 0.0)
+        contrib = with_allowance(np.linalg.norm(per.sum(axis=1), axis=1), 0.0)  # ||sum_f beta_fg n_f||_2 over g
+        contribs.append(contrib)
+        diff = contrib + lb.gain_perturbed * diff
+        z = _layer(p, spec, op_matrix, i, z)[1]
+    old = with_allowance(constants.readout * diff, 0.0)
+    # Each signal is also an input of norm at most its own norm: the
+    # operator-level bounds at rho = ||x_b|| hold for it.
+    norms = np.sqrt(np.sum(np.asarray(x, dtype=np.float64) ** 2, axis=(1, 2)))
+    comp = constants.composition
+    lc = None if comp is None else layer_changes(constants, comp, bounds, eps)
+    for b, rho_b in enumerate(norms):
+        cap = _chain(constants, bounds, rho_b)[0]
+        if comp is not None:
+            cap = min(cap, composed_bound(constants, comp, bounds, eps, rho_b, changes=lc).certified)
+        old[b] = min(old[b], cap)
+    if comp is None:
+        return old
+    new = composed_inputs(constants, comp, bounds, x, eps, eigenvectors=eigenvectors,
+                          forward_layer=lambda i, v: _layer(p, spec, op_matrix, i, v), known=contribs, changes=lc)
+    return np.minimum(old, new)
+
+
+def _layer(p, spec: ModelSpec, matrix, i: int, z):
+    """Layer ``i`` in float64: ``(pre-activation, output)`` for ``z`` ``(B, N, F)``."""
+    sub = dataclasses.replace(spec, readout="none", features=spec.features[i:i + 2], final_nonlinearity=False)
+    pre = forward_np({"layers": [p["layers"][i]]}, matrix, z, sub)
+    act = (i < spec.depth - 1) or spec.final_nonlinearity
+    return pre, (np.asarray(spec.activation(pre, xp=np)) if act else pre)

@@ -10,6 +10,7 @@ import dataclasses
 
 import numpy as np
 
+from ._certify import deployed_interval
 from ._interval import SpectralInterval, spectral_interval
 from ._modelcert import ModelCertificate, ModelConstants, certify_inputs, certify_model, eps_key, model_constants
 from ._runs import Run
@@ -43,9 +44,12 @@ def run_spectrum(run: Run) -> RunSpectrum:
     return RunSpectrum(iv, lam, vecs, rho)
 
 
-def run_constants(run: Run, spectrum: RunSpectrum) -> ModelConstants:
-    """The eps-free constants of the run's model on its graph."""
-    return model_constants(run.params, run.spec, spectrum.interval, run.op.nodes, spectrum.eigenvalues)
+def run_constants(run: Run, spectrum: RunSpectrum, deployed=None) -> ModelConstants:
+    """The eps-free constants of the run's model on its graph (rebalanced
+    factorisations, docs/theory.md 9.4); ``deployed`` as in
+    :func:`stablefilt.model_constants`."""
+    return model_constants(run.params, run.spec, spectrum.interval, run.op.nodes, spectrum.eigenvalues,
+                           matrix=run.op.matrix, deployed=deployed, rebalance=True)
 
 
 def input_bounds(run: Run, spectrum: RunSpectrum, eps: float, constants: ModelConstants | None = None) -> np.ndarray:
@@ -90,12 +94,16 @@ class RunCertificate:
         return d
 
 
-def certify_run(run: Run, eps_list) -> RunCertificate:
+def certify_run(run: Run, eps_list, *, same_kind: bool = False) -> RunCertificate:
     """Float64 certificate of a run: over the eigenvalues when the graph is
     small enough to decompose, else over its interval; plus the
-    input-specific bound on the run's test signals."""
+    input-specific bound on the run's test signals. With ``same_kind`` the
+    deployed graph is assumed rebuilt as the same kind of operator as the
+    training graph (its spectrum then lies in the kind's interval; recorded
+    in the assumptions; docs/theory.md 9.1)."""
     spectrum = run_spectrum(run)
-    constants = run_constants(run, spectrum)
+    deployed = deployed_interval(run.op.kind) if same_kind else None
+    constants = run_constants(run, spectrum, deployed)
     cert = certify_model(run.params, run.spec, spectrum.interval, run.op.nodes, eps_list, rho=spectrum.rho,
                          eigenvalues=spectrum.eigenvalues, constants=constants)
     inputs = tuple(float(input_bounds(run, spectrum, e, constants).max()) for e in eps_list)

@@ -148,9 +148,11 @@ class Trainer:
         return [order[i * bs:(i + 1) * bs] for i in range(len(tr) // bs)]
 
     def certificate(self, params, eigen: bool = False):
+        """The model certificate: every epoch over the interval (cheap); at the
+        end over the eigenvalues with rebalanced factorisations (tighter)."""
         lam = self.interval.eigenvalues if eigen else None
         return certify_model(params, self.spec, self.interval, self.data.op.nodes, self.eps, rho=self.rho,
-                             eigenvalues=lam)
+                             eigenvalues=lam, matrix=self.data.op.matrix, rebalance=eigen)
 
 
 def build_step(trainer: Trainer, steps: int):

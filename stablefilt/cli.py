@@ -28,6 +28,19 @@ def _eps_list(values, positive: bool = False) -> list[float]:
     return [check_eps(v, "--eps", positive=positive, error=UsageError) for v in values or []]
 
 
+def _deployed(kind: str, same_kind: bool):
+    """The deployed graph's interval under ``--same-kind``, or None."""
+    from ._certify import deployed_interval
+
+    if not same_kind:
+        return None
+    got = deployed_interval(kind)
+    if got is None:
+        raise UsageError(f"--same-kind needs an operator whose spectrum is known by construction (laplacian, "
+                         f"normalized-laplacian or scaled-adjacency); this one is {kind}")
+    return got
+
+
 def cmd_bound(args) -> int:
     from ._certify import certify_filter
     from ._io import load_filter, load_graph
@@ -39,7 +52,8 @@ def cmd_bound(args) -> int:
         raise UsageError(f"--delta must lie in [0, 8]; got {args.delta}")
     op = load_graph(args.graph, args.shift)
     taps, basis = load_filter(args.filter)
-    cert = certify_filter(op, taps, basis, eps, delta=8.0 if args.delta is None else args.delta)
+    cert = certify_filter(op, taps, basis, eps, delta=8.0 if args.delta is None else args.delta,
+                          deployed=_deployed(op.kind, args.same_kind))
     if args.json:
         json.dump(cert.as_dict(), sys.stdout)
         sys.stdout.write("\n")
@@ -74,7 +88,8 @@ def cmd_certify(args) -> int:
 
     run = open_run(args.run)
     eps = _eps_list(args.eps) or [float(e) for e in run.config["certify"]["eps"]]
-    rc = certify_run(run, eps)
+    _deployed(run.op.kind, args.same_kind)
+    rc = certify_run(run, eps, same_kind=args.same_kind)
     if args.json:
         json.dump(rc.as_dict(), sys.stdout)
         sys.stdout.write("\n")
@@ -183,6 +198,7 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--shift", choices=KINDS, default="as-is", help="build this kind of shift operator from the graph")
     b.add_argument("--delta", type=float, default=None, help="eigenvector misalignment for the published bound (default 8)")
     b.add_argument("--json", action="store_true", help="print one JSON object")
+    b.add_argument("--same-kind", action="store_true", help="assume the deployed graph is rebuilt as the same kind of operator, so its spectrum lies in that kind's interval; recorded with the certificate")
     b.set_defaults(func=cmd_bound)
     t = sub.add_parser("train", help="train a model from a TOML config")
     t.add_argument("config")
@@ -196,6 +212,7 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("run")
     c.add_argument("--eps", action="append")
     c.add_argument("--json", action="store_true")
+    c.add_argument("--same-kind", action="store_true", help="assume the deployed graph is rebuilt as the same kind of operator, so its spectrum lies in that kind's interval; recorded with the certificate")
     c.set_defaults(func=cmd_certify)
     m = sub.add_parser("compare", help="compare runs on accuracy and certified bound")
     m.add_argument("runs", nargs="+")

@@ -1,0 +1,384 @@
+"""Combining bounds: the change of one bank as the smallest of several valid
+bounds, and the tighter composition through a model's layers
+(docs/theory.md section 9).
+
+Per bank, ``Delta`` is the smallest of the per-filter kernel bounds combined
+by ``||beta||_2`` (section 5), the joint first-order bound plus the
+per-filter remainders (9.2), the whole-path bound (9.1) and the trivial
+``B + B_hat``. Through the layers, ``e_l = D_l (delta_l + H_hat_l e_{l-1})``
+with ``D_l`` diagonal in ``[alpha, 1]``; ``delta_l`` is bounded through the
+previous bank where that is smaller, the clean-path norms use the bias cross
+term, a per-node readout passes through the last nonlinearity by averaging,
+and the result never exceeds the trivial bound ``||W|| (n_L + n_hat_L)``
+(9.3). Input-specific bounds use the measured features, their spectra and
+the last layer's activation pattern.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from ._filterbounds import FilterConstants, combine, filter_bounds, filter_constants, gain_constants
+from ._filters import run_filter
+from ._joint import (
+    JointFactor,
+    eigen_cover,
+    input_first_order,
+    interval_cover,
+    joint_factor,
+    path_bound,
+    schur_constant,
+)
+from ._kernel import eigenvalue_slack
+from ._series import ABS_ALLOW, REL_ALLOW
+
+#: Slopes of each nonlinearity lie in ``[alpha, 1]`` (relu and tanh: 0; leaky relu: 0.1; none: D = I).
+SLOPE_LOW = {"relu": 0.0, "leaky_relu": 0.1, "tanh": 0.0, "none": 1.0}
+
+
+@dataclasses.dataclass(frozen=True)
+class BankChange:
+    """Bounds on ``||H(S_hat) - H(S)||`` at one eps by each method, and the one kept.
+
+    Attributes:
+      per_filter, joint, path, trivial: the four bounds (docs/theory.md 9).
+      certified: the smallest; ``first`` its first-order part, ``second`` the rest.
+      method: which one was kept.
+    """
+
+    per_filter: float
+    joint: float
+    path: float
+    trivial: float
+    certified: float
+    first: float
+    second: float
+    method: str
+
+
+def change_cover(lam, interval, slack: float, deployed=None):
+    """Points covering where the spectra of ``S + t (E S + S E)`` may lie: the
+    eigenvalues (or the interval) widened by ``slack``, intersected with the
+    deployed graph's interval when it keeps its kind (docs/theory.md 9.1)."""
+    if lam is not None:
+        return eigen_cover(lam, slack, deployed)
+    lo, hi = interval[0] - slack, interval[1] + slack
+    if deployed is not None:
+        lo, hi = max(lo, deployed[0]), min(hi, deployed[1])
+    return interval_cover(lo, hi)
+
+
+def widened(interval, eps: float, radius: float, deployed=None) -> tuple[float, float]:
+    """``[a - 2 eps R, b + 2 eps R]`` (Weyl), intersected with ``deployed``."""
+    lo, hi = interval[0] - 2 * eps * radius, interval[1] + 2 * eps * radius
+    if deployed is not None:
+        lo, hi = max(lo, deployed[0]), min(hi, deployed[1])
+    return lo, hi
+
+
+def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float, radius: float,
+                path_cover, gains) -> BankChange:
+    """``Delta`` of one filter or bank at ``eps``.
+
+    Args:
+      first_order, remainder: the per-filter bounds of :func:`filter_bounds`.
+      joint: the joint first-order constant ``J`` (per unit eps).
+      radius: ``R >= ||S||_2``.
+      path_cover: a cover of the spectra along the path (:func:`change_cover`).
+      gains: ``(B, B_hat)``, bounds on ``||H(S)||`` and ``||H(S_hat)||``.
+    """
+    fo, rem = np.asarray(first_order), np.asarray(remainder)
+    per = combine(fo + rem)
+    rem_c = combine(rem)
+    joint_b = float(eps * joint * (1 + REL_ALLOW) + rem_c)
+    path = path_bound(taps, basis, eps, radius, path_cover)
+    trivial = float(gains[0] + gains[1])
+    options = [(per, combine(fo), "per-filter kernel + remainder"),
+               (joint_b, float(eps * joint), "joint kernel + remainder"),
+               (path.certified, path.first, f"whole path ({path.form})"),
+               (trivial, trivial, "trivial: B + B_hat")]
+    best = min(options, key=lambda o: o[0])
+    # An absolute allowance on the scale of the gains: a float64 evaluation of
+    # the model errs by about that much even where the exact change is 0.
+    cert = best[0] + ABS_ALLOW * trivial
+    return BankChange(per, joint_b, path.certified, trivial, cert, min(best[1], cert), max(cert - best[1], 0.0),
+                      best[2])
+
+
+@dataclasses.dataclass(frozen=True)
+class LayerExtra:
+    """Eps-free constants of one layer for the composition.
+
+    Attributes:
+      joint: the joint factorisation of the bank's first-order kernel.
+      right: ``J`` of the bank after the previous one (per unit eps), or None.
+      cross: a bound on ``||H^T c||_F`` for the bias ``c = 1_N b^T``, or None.
+      bias_norm: ``||c||_F = sqrt(N) ||b||``.
+    """
+
+    joint: JointFactor
+    right: float | None
+    cross: float | None
+    bias_norm: float
+
+
+@dataclasses.dataclass(frozen=True)
+class ReadoutExtra:
+    """The last bank followed by a per-node readout ``W``: the bank with taps ``c_k W``."""
+
+    taps: np.ndarray
+    filters: FilterConstants
+    joint: JointFactor
+    right: float | None
+
+
+@dataclasses.dataclass(frozen=True)
+class CompositionConstants:
+    """Eps-free part of the tighter model certificate.
+
+    Attributes:
+      layers: per layer, its :class:`LayerExtra`.
+      readout: the readout composite (per-node readouts), or None.
+      weight_norm: ``||W||_2`` with an allowance (1 without readout).
+      slope_low: ``alpha``, the least slope of the nonlinearity.
+      deployed: the deployed graph's interval when it keeps its kind, or None.
+      radius, slack: ``R >= ||S||`` and the eigenvalues' float64 error.
+      balanced: whether factorisations were rebalanced.
+    """
+
+    layers: tuple[LayerExtra, ...]
+    readout: ReadoutExtra | None
+    weight_norm: float
+    slope_low: float
+    deployed: tuple | None
+    radius: float
+    slack: float
+    balanced: bool
+
+
+def bias_cross(taps, basis, matrix, bias) -> float:
+    """``||H^T c||_F`` for ``c = 1_N b^T``, computed in float64 by the filter
+    recurrence with the transposed taps (``H`` symmetric in the graph);
+    callers add ``1e-9 B ||c||``, an allowance far above its round-off
+    (common practice)."""
+    n = matrix.shape[0]
+    c = np.ones((n, 1)) * np.asarray(bias, dtype=np.float64)[None, :]
+    t = np.swapaxes(np.asarray(taps, dtype=np.float64), 1, 2)
+    val = float(np.linalg.norm(run_filter(lambda z: matrix @ z, t, c, basis)))
+    return val * (1 + REL_ALLOW)
+
+
+def composition_constants(params, spec, interval, nodes: int, filters, eigenvalues=None, matrix=None, *,
+                          deployed=None, rebalance: bool = False) -> CompositionConstants:
+    """The eps-free constants of :func:`composed_bound` (``params`` in
+    float64 numpy; ``filters`` the layers' :class:`FilterConstants`)."""
+    a, b = interval.lower, interval.upper
+    lam = None if eigenvalues is None else np.asarray(eigenvalues, dtype=np.float64)
+    slack = 0.0 if lam is None else eigenvalue_slack(lam)
+    radius = interval.radius if lam is None else min(interval.radius, float(np.max(np.abs(lam))) + slack)
+    cover0 = change_cover(lam, (a, b), slack)
+    layers = params["layers"]
+    extras = []
+    for i, layer in enumerate(layers):
+        taps = layer["taps"]
+        jf = joint_factor(taps, spec.basis, cover0, optimise=rebalance)
+        right = None if i == 0 else schur_constant(taps, spec.basis, cover0, "gamma", True, right=layers[i - 1]["taps"])
+        bias = layer.get("bias")
+        bias_norm = float(np.sqrt(nodes) * np.linalg.norm(bias)) * (1 + REL_ALLOW) if bias is not None else 0.0
+        cross = bias_cross(taps, spec.basis, matrix, bias) + 1e-9 * float(filters[i].bank_sup) * bias_norm \
+            if (bias is not None and matrix is not None) else None
+        extras.append(LayerExtra(jf, right, cross, bias_norm))
+    readout = None
+    w = params.get("readout", {}).get("weight") if spec.readout != "none" else None
+    wn = float(np.linalg.norm(np.asarray(w, dtype=np.float64), 2)) * (1 + REL_ALLOW) if w is not None else 1.0
+    if spec.readout == "node":
+        comp = np.einsum("kfg,gc->kfc", layers[-1]["taps"], np.asarray(w, dtype=np.float64))
+        cw = filter_constants(comp, spec.basis, (a, b), lam, pairwise=False)
+        jw = joint_factor(comp, spec.basis, cover0, optimise=rebalance)
+        rw = None if len(layers) < 2 else schur_constant(comp, spec.basis, cover0, "gamma", True, right=layers[-2]["taps"])
+        readout = ReadoutExtra(comp, cw, jw, rw)
+    alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
+    return CompositionConstants(tuple(extras), readout, wn, alpha, None if deployed is None else tuple(deployed),
+                                float(radius), float(slack), bool(rebalance))
+
+
+def clean_norm(n_prev: float, gain: float, cross: float | None, bias_norm: float) -> float:
+    """``sup ||H x + c||`` over ``||x|| <= n_prev``: ``sqrt(B^2 n^2 + 2 n ||H^T c|| + ||c||^2)``,
+    never above ``B n + ||c||`` (docs/theory.md 9.3)."""
+    plain = gain * n_prev + bias_norm
+    if cross is None:
+        return plain
+    val = np.sqrt(max(gain * gain * n_prev * n_prev + 2.0 * n_prev * cross + bias_norm * bias_norm, 0.0))
+    return float(min(plain, val * (1 + REL_ALLOW) + 1e-12 * plain))
+
+
+@dataclasses.dataclass(frozen=True)
+class LayerChanges:
+    """Per-layer bank changes at one eps, the gains over ``spec S_hat``, and
+    the readout composite's change and gain (or None)."""
+
+    changes: tuple[BankChange, ...]
+    gains_hat: tuple[float, ...]
+    readout_change: BankChange | None
+    readout_gain_hat: float | None
+
+
+def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChanges:
+    """The :class:`BankChange` of every layer at ``eps``; ``mc`` the model's
+    constants, ``bounds`` its per-layer ``LayerBound`` records at ``eps``."""
+    spec, iv, lam = mc.spec, mc.interval, mc.eigenvalues
+    a, b = iv.lower, iv.upper
+    pcover = change_cover(lam, (a, b), 2 * eps * cc.radius + cc.slack, cc.deployed)
+    wide = widened((a, b), eps, iv.radius, cc.deployed)
+    changes, gains_hat = [], []
+    for layer, lb, extra in zip(mc.params["layers"], bounds, cc.layers):
+        b_hat = lb.gain_perturbed
+        if cc.deployed is not None:
+            b_hat = min(b_hat, gain_constants(layer["taps"], spec.basis, wide)[0])
+        gains_hat.append(float(b_hat))
+        changes.append(bank_change(layer["taps"], spec.basis, eps, first_order=lb.beta - lb.remainder,
+                                   remainder=lb.remainder, joint=extra.joint.constant, radius=cc.radius,
+                                   path_cover=pcover, gains=(lb.gain, b_hat)))
+    rc, rg = None, None
+    if cc.readout is not None:
+        ro = cc.readout
+        rg, _ = gain_constants(ro.taps, spec.basis, wide)
+        fb = filter_bounds(ro.taps, spec.basis, (a, b), eps, ro.filters, lam)
+        rc = bank_change(ro.taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
+                         joint=ro.joint.constant, radius=cc.radius, path_cover=pcover,
+                         gains=(float(ro.filters.bank_sup), rg))
+        rg = float(rg)
+    return LayerChanges(tuple(changes), tuple(gains_hat), rc, rg)
+
+
+@dataclasses.dataclass(frozen=True)
+class ComposedBound:
+    """The tighter operator-level model bound at one eps.
+
+    Attributes:
+      eps: the perturbation size.
+      certified: ``min(composed, trivial)`` with an allowance.
+      composed: the layer composition (docs/theory.md 9.3).
+      trivial: ``||readout|| (n_L + n_hat_L)``.
+      changes: per layer, :class:`BankChange`.
+      clean_norms: bounds ``n_0 = rho, ..., n_L`` on the clean path.
+    """
+
+    eps: float
+    certified: float
+    composed: float
+    trivial: float
+    changes: tuple[BankChange, ...]
+    clean_norms: tuple[float, ...]
+
+
+def _through(i, delta, rem, right, cc, norms, gains, ca, cb):
+    """Bound on ``||(H_i - H_hat_i) x_{i-1}||`` over the inputs: ``Delta
+    n_{i-1}``, or through the previous bank (docs/theory.md 9.3)."""
+    plain = delta * norms[i]
+    if i == 0 or right is None:
+        return plain
+    prev = cc.layers[i - 1]
+    d_right = min(right + rem * gains[i - 1], delta * gains[i - 1])
+    nested = ca * d_right * norms[i - 1] + cb * delta * gains[i - 1] * norms[i - 1] + delta * prev.bias_norm
+    return min(plain, nested)
+
+
+def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
+                   changes: LayerChanges | None = None) -> ComposedBound:
+    """Operator-level bound on ``||Phi(S) x - Phi(S_hat) x||_F`` for every
+    ``||x||_F <= rho`` (docs/theory.md 9.3)."""
+    spec = mc.spec
+    lc = changes or layer_changes(mc, cc, bounds, eps)
+    gains = [lb.gain for lb in bounds]
+    norms, norms_hat = [float(rho)], [float(rho)]
+    for lb, extra, g_hat in zip(bounds, cc.layers, lc.gains_hat):
+        norms.append(clean_norm(norms[-1], lb.gain, extra.cross, extra.bias_norm))
+        norms_hat.append(g_hat * norms_hat[-1] + extra.bias_norm)
+    ca, cb = 0.5 * (1 + cc.slope_low), 0.5 * (1 - cc.slope_low)
+    deltas = []
+    e = 0.0
+    for i, (ch, lb) in enumerate(zip(lc.changes, bounds)):
+        rem = combine(lb.remainder)
+        right = None if cc.layers[i].right is None else eps * cc.layers[i].right
+        d = _through(i, ch.certified, rem, right, cc, norms, gains, ca, cb)
+        deltas.append(d)
+        if i < spec.depth - 1:
+            e = d + lc.gains_hat[i] * e
+    e_last = deltas[-1] + lc.gains_hat[-1] * e
+    rf = mc.readout
+    out = rf * e_last
+    if cc.readout is not None and lc.readout_change is not None:
+        alpha_l = cc.slope_low if spec.final_nonlinearity else 1.0
+        fb = filter_bounds(cc.readout.taps, spec.basis, (mc.interval.lower, mc.interval.upper), eps,
+                           cc.readout.filters, mc.eigenvalues)
+        right = None if cc.readout.right is None else eps * cc.readout.right
+        dw = _through(spec.depth - 1, lc.readout_change.certified, combine(fb.remainder), right, cc, norms, gains, ca, cb)
+        through = dw + lc.readout_gain_hat * e
+        out = min(out, 0.5 * (1 + alpha_l) * through + 0.5 * (1 - alpha_l) * cc.weight_norm * e_last)
+    trivial = rf * (norms[-1] + norms_hat[-1])
+    cert = min(out, trivial) * (1 + REL_ALLOW) + ABS_ALLOW * trivial
+    return ComposedBound(float(eps), float(cert), float(out), float(trivial), lc.changes, tuple(norms))
+
+
+def _masked_readout(w, pre, beta, nonlinearity) -> np.ndarray:
+    """Per signal, ``max_i ||W[U_i, :]||_2`` over nodes ``i``, ``U_i`` the last
+    layer's units whose clean pre-activation is below ``beta`` (off, or able
+    to switch; units at or above ``beta`` stay on, slope 1). For relu and
+    leaky relu only; other nonlinearities get ``||W||_2`` (docs/theory.md 9.3)."""
+    w = np.asarray(w, dtype=np.float64)
+    out = np.full(pre.shape[0], float(np.linalg.norm(w, 2)))
+    if nonlinearity not in ("relu", "leaky_relu"):
+        return out * (1 + REL_ALLOW)
+    for b in range(pre.shape[0]):
+        worst = 0.0
+        for pattern in np.unique(pre[b] < beta[b], axis=0):
+            if pattern.any():
+                worst = max(worst, float(np.linalg.norm(w[pattern], 2)))
+        out[b] = worst
+    return out * (1 + REL_ALLOW)
+
+
+def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eigenvectors=None,
+                    forward_layer, known=None, changes: LayerChanges | None = None) -> np.ndarray:
+    """Input-specific bound per signal on ``||Phi(S) x_b - Phi(S_hat) x_b||_F``
+    (``x``: ``(B, N, F_0)``; docs/theory.md 9.2, 9.3). Per layer the smaller of
+    the joint spectral bound (with eigenvectors) and the bank's operator bound
+    times the measured feature norm; a per-node readout enters through the last
+    layer's activation pattern. ``forward_layer(i, z) -> (pre, out)`` runs
+    layer ``i`` in float64; ``known[i]``, when given, are other valid bounds
+    on layer ``i``'s change of these signals (the smaller is kept)."""
+    spec, lam = mc.spec, mc.eigenvalues
+    lc = changes or layer_changes(mc, cc, bounds, eps)
+    z = np.asarray(x, dtype=np.float64)
+    e = np.zeros(z.shape[0])
+    e_prev, last_in, pre = e, z, None
+    use_spec = lam is not None and eigenvectors is not None
+    for i, (lb, ch, extra) in enumerate(zip(bounds, lc.changes, cc.layers)):
+        feat = np.sqrt(np.sum(z**2, axis=1))  # (B, F_in)
+        d = ch.certified * np.sqrt(np.sum(z**2, axis=(1, 2)))
+        if use_spec:
+            rem = np.linalg.norm(feat @ np.atleast_2d(lb.remainder), axis=1) * (1 + REL_ALLOW)
+            d = np.minimum(d, input_first_order(extra.joint, lam, eigenvectors, z, eps) + rem)
+        if known is not None:
+            d = np.minimum(d, known[i])
+        e_prev, e = e, d + lc.gains_hat[i] * e
+        last_in = z
+        pre, z = forward_layer(i, z)
+    plain = mc.readout * e
+    if cc.readout is None or not spec.final_nonlinearity:
+        return plain * (1 + REL_ALLOW)
+    # W D v with D = I - D_off, D_off on units that are off or may switch:
+    # ||W D v|| <= ||W^T v|| + ||W_U|| ||v||, and ||W^T v|| through the composite bank.
+    ro = cc.readout
+    dw = lc.readout_change.certified * np.sqrt(np.sum(last_in**2, axis=(1, 2)))
+    if use_spec:
+        fb = filter_bounds(ro.taps, spec.basis, (mc.interval.lower, mc.interval.upper), eps, ro.filters, lam)
+        feat = np.sqrt(np.sum(last_in**2, axis=1))
+        remw = np.linalg.norm(feat @ np.asarray(fb.remainder), axis=1) * (1 + REL_ALLOW)
+        dw = np.minimum(dw, input_first_order(ro.joint, lam, eigenvectors, last_in, eps) + remw)
+    masked = _masked_readout(mc.params["readout"]["weight"], pre, e, spec.nonlinearity)
+    through = dw + lc.readout_gain_hat * e_prev + masked * e
+    return np.minimum(plain, through) * (1 + REL_ALLOW)

@@ -1,0 +1,357 @@
+"""Joint and whole-path bounds for a filter bank, in float64
+(docs/theory.md sections 9.1 and 9.2).
+
+A bank's kernel blocks ``M_fg`` (``Gamma_fg`` or the divided difference
+``h^[1]_fg``) are stacked into one ``(F_out K) x (F_in K)`` matrix and
+factored ``M = A^T B + Res`` by a singular value decomposition. The Schur
+multiplier norm of the block kernel over a set of points ``Lambda`` is then at
+most ``sqrt(sup a) sqrt(sup b) + ||Res||_2 sup ||phi||^2`` with ``a(lam) =
+lambda_max(G_A(lam))``, ``G_A(lam)_{gg'} = phi(lam)^T (A^T A)_{gg'} phi(lam)``,
+and ``b`` likewise from ``B^T B``. Suprema are over a :class:`Cover` of
+``Lambda``: points of the Chebyshev variable of a split interval and the gap
+within which every point of ``Lambda`` lies of one of them; the gap is charged
+at ``sum_n n^2 ||C_n||_2`` per unit (Markov), ``G = sum_n C_n T_n``.
+
+The whole-path bound (section 9.1) for ``||E||_2 <= eps`` and ``R >= ||S||``:
+``||H(S_hat) - H(S)|| <= eps J_Gamma(Lambda_eps) + 2 eps^2 R J_div(Lambda_eps)``
+with ``Lambda_eps`` holding the spectra of every ``S + t (E S + S E)``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from ._exact import UNIT, divided_transform, kernel_transform, product_error, response_map
+from ._filters import Basis
+from ._kernel import product_tensor
+from ._series import REL_ALLOW
+
+#: Grid points over a split interval for the rigorous suprema.
+GRID = 4097
+
+
+@dataclasses.dataclass(frozen=True)
+class Cover:
+    """Points covering a set ``Lambda`` of the real line.
+
+    Attributes:
+      split: the Chebyshev basis of the split interval ``[lo, hi]``, which
+        holds ``Lambda``.
+      t: points in the Chebyshev variable ``t = (2 lam - lo - hi)/(hi - lo)``.
+      gap: every point of ``Lambda`` lies within ``gap`` (in ``t``) of one of ``t``.
+      description: how ``Lambda`` was chosen (recorded with the certificate).
+    """
+
+    split: Basis
+    t: np.ndarray
+    gap: float
+    description: str
+
+
+def _split(lo: float, hi: float) -> Basis:
+    if not hi > lo:
+        w = 1e-6 * max(1.0, abs(lo))
+        lo, hi = lo - w, hi + w
+    return Basis("chebyshev", (float(lo), float(hi)))
+
+
+def interval_cover(lo: float, hi: float, grid: int = GRID) -> Cover:
+    """A grid over ``[lo, hi]``: gap ``1 / (grid - 1)``."""
+    split = _split(lo, hi)
+    return Cover(split, np.linspace(-1.0, 1.0, grid), 1.0 / (grid - 1), f"interval [{lo:.6g}, {hi:.6g}]")
+
+
+def eigen_cover(lam, slack: float, clip=None, grid: int = GRID) -> Cover:
+    """Cover of ``union_i [lam_i - slack, lam_i + slack]`` (intersected with
+    ``clip = (lo, hi)`` when given): the eigenvalues themselves when ``slack``
+    is below half a grid step, else the grid points within ``slack`` plus half
+    a step of an eigenvalue."""
+    lam = np.asarray(lam, dtype=np.float64)
+    lo, hi = float(lam.min()) - slack, float(lam.max()) + slack
+    if clip is not None:
+        lo, hi = max(lo, float(clip[0])), min(hi, float(clip[1]))
+    split = _split(lo, hi)
+    a, b = split.interval
+    scale = 2.0 / (b - a)
+    tl = np.clip((2 * lam - a - b) / (b - a), -1.0, 1.0)
+    st = slack * scale * (1 + 4 * UNIT) + 8 * UNIT
+    h = 2.0 / (grid - 1)
+    what = f"eigenvalues +- {slack:.3g}" + (f" within [{clip[0]:.6g}, {clip[1]:.6g}]" if clip is not None else "")
+    if st <= h / 2:
+        return Cover(split, np.unique(tl), st, what)
+    g = np.linspace(-1.0, 1.0, grid)
+    srt = np.sort(tl)
+    pos = np.searchsorted(srt, g)
+    right = srt[np.minimum(pos, len(srt) - 1)]
+    left = srt[np.maximum(pos - 1, 0)]
+    near = np.minimum(np.abs(g - right), np.abs(g - left))
+    return Cover(split, g[near <= st + h / 2 + 1e-15], h / 2, what)
+
+
+def block_kernels(taps, basis: Basis, split: Basis, which: str, joint: bool, right=None):
+    """Block kernel matrices and entrywise bounds on their float64 error.
+
+    Returns ``(M, dM, (F_out, F_in), k_right)`` with ``M`` of shape ``(B,
+    F_out K, F_in K_r)``: one batch entry for the whole bank (``joint``) or one
+    block per filter (``B = F_in F_out``, in ``(f, g)`` order). ``which``:
+    ``gamma`` (the kernel of the first-order change) or ``divided``
+    (``h^[1]``). With ``right`` (taps ``(K, F_0, F_in)`` of a bank applied
+    before this one, in ``basis``) the kernel is ``Gamma(lam, mu) H_right(mu)``,
+    the first-order change of ``H(S) H_right(S)`` (docs/theory.md 9.3), with
+    ``K_r = 2K - 1`` Chebyshev terms on the right (``T_b T_m = (T_{b+m} +
+    T_{|b-m|}) / 2``).
+    """
+    taps = np.asarray(taps, dtype=np.float64)
+    if taps.ndim == 1:
+        taps = taps[:, None, None]
+    k, fin, fout = taps.shape
+    tr = (kernel_transform if which == "gamma" else divided_transform)(k, basis, split)
+    m = np.einsum("abj,jfg->fgab", tr, taps)  # (F_in, F_out, K, K)
+    dm = 2.0 * (k + 2) * UNIT * np.einsum("abj,jfg->fgab", np.abs(tr), np.abs(taps))
+    kr = k
+    if right is not None:
+        rt = np.asarray(right, dtype=np.float64)
+        kk = rt.shape[0]
+        cmap = response_map(kk, basis, split.interval[0], split.interval[1], "h")  # taps -> Chebyshev on split
+        cols = rt.reshape(kk, -1)
+        h = (cmap @ cols).reshape(-1, *rt.shape[1:])  # (K', F_0, F_in)
+        herr = product_error(cmap, cols).reshape(h.shape)
+        kr = k + h.shape[0] - 1
+        pt = np.zeros((k, h.shape[0], kr))
+        for b in range(k):
+            for j in range(h.shape[0]):
+                pt[b, j, b + j] += 0.5
+                pt[b, j, abs(b - j)] += 0.5
+        # M'_{e g}[a, n] = sum_f sum_{b, j} M_fg[a, b] h_{j, e f} P[b, j, n]
+        m2 = np.einsum("fgab,jef,bjn->egan", m, h, pt, optimize=True)
+        dm2 = (np.einsum("fgab,jef,bjn->egan", np.abs(m), herr + 2.0 * (k + kr) * UNIT * np.abs(h), pt, optimize=True)
+               + np.einsum("fgab,jef,bjn->egan", dm, np.abs(h) + herr, pt, optimize=True))
+        m, dm, fin = m2, dm2, rt.shape[1]
+    if not joint:
+        return m.reshape(fin * fout, k, kr), dm.reshape(fin * fout, k, kr), (1, 1), kr
+    big = np.einsum("fgab->gafb", m).reshape(1, fout * k, fin * kr)
+    dbig = np.einsum("fgab->gafb", dm).reshape(1, fout * k, fin * kr)
+    return big, dbig, (fout, fin), kr
+
+
+def _gram(p, p_err, f: int, k: int, t):
+    """``G(t)_{gh} = phi(t)^T P_{gh} phi(t)`` at the points ``t`` (Chebyshev
+    variable), per batch entry: ``(G (B, T, F, F), err (B,), slope (B,))`` with
+    ``err`` bounding ``||G - G_exact||_2`` at every point (``P`` given to
+    within ``p_err`` entrywise; sums and evaluation in float64) and ``slope``
+    bounding ``||dG/dt||_2`` on ``[-1, 1]`` (Markov: ``sum_n n^2 ||C_n||_2``)."""
+    nb = p.shape[0]
+    pk = product_tensor(k)
+    pb = p.reshape(nb, f, k, f, k)
+    c = np.einsum("zgahb,abn->zghn", pb, pk)  # (B, F, F, 2K-1) Chebyshev coefficients of G
+    c = 0.5 * (c + np.swapaxes(c, 1, 2))
+    n = np.arange(c.shape[-1], dtype=np.float64)
+    # Errors: of P (given), of the product-tensor sums, and of evaluating G; |T_n| <= 1.
+    e_entry = np.einsum("zgahb->zgh", p_err.reshape(nb, f, k, f, k) + 2.0 * k * k * UNIT * np.abs(pb))
+    v = np.polynomial.chebyshev.chebvander(np.asarray(t, dtype=np.float64), c.shape[-1] - 1)  # (T, 2K-1)
+    g = np.einsum("tn,zghn->ztgh", v, c, optimize=True)
+    e_eval = 4.0 * c.shape[-1] * UNIT * np.sum(np.abs(c), axis=-1)  # (B, F, F)
+    gnorm = np.linalg.norm(g, axis=(2, 3)).max(axis=1)
+    slope = np.sum(n**2 * np.linalg.norm(np.moveaxis(c, -1, 1), ord=2, axis=(2, 3)), axis=1)
+    err = np.linalg.norm(e_entry, axis=(1, 2)) + np.linalg.norm(e_eval, axis=(1, 2)) + 8.0 * f * UNIT * gnorm
+    return g, err, slope
+
+
+def _sup_lambda_max(p, p_err, f: int, k: int, cover: Cover) -> np.ndarray:
+    """Rigorous ``sup_Lambda lambda_max(G(lam))`` per batch entry (``p``:
+    ``(B, F K, F K)``; ``p_err``: an entrywise bound on how far ``p`` is from
+    the exact matrix)."""
+    g, err, slope = _gram(p, p_err, f, k, cover.t)
+    top = np.linalg.eigvalsh(g)[..., -1].max(axis=1) if f > 1 else g[..., 0, 0].max(axis=1)
+    return np.maximum(top, 0.0) + cover.gap * slope + err
+
+
+def _svd_factor(m):
+    """``(A, B)`` with ``A^T B = M`` from the SVD (``A = Sigma^(1/2) U^T``,
+    ``B = Sigma^(1/2) W^T``), batched: ``(B, r, rows)``, ``(B, r, cols)``."""
+    u, s, wt = np.linalg.svd(m, full_matrices=False)
+    sq = np.sqrt(s)
+    return sq[:, :, None] * np.swapaxes(u, 1, 2), sq[:, :, None] * wt
+
+
+def _checked(m, dm, a, b):
+    """For float64 factors ``A``, ``B`` of ``M`` (given to within ``dM``):
+    ``(P = A^T A, its error, Q = B^T B, its error, a bound on ||M_exact - A^T B||_2)``."""
+    r = a.shape[1]
+    gr = 2.0 * (r + 2) * UNIT
+    pa = np.swapaxes(a, 1, 2) @ a
+    pb = np.swapaxes(b, 1, 2) @ b
+    pa_err = gr * (np.swapaxes(np.abs(a), 1, 2) @ np.abs(a))
+    pb_err = gr * (np.swapaxes(np.abs(b), 1, 2) @ np.abs(b))
+    res = (np.linalg.norm(m - np.swapaxes(a, 1, 2) @ b, axis=(1, 2)) + np.linalg.norm(dm, axis=(1, 2))
+           + gr * np.linalg.norm(np.swapaxes(np.abs(a), 1, 2) @ np.abs(b), axis=(1, 2)))
+    return pa, pa_err, pb, pb_err, res
+
+
+def _factor(m, dm, cover=None, k=None, kr=None, f=None, optimise: bool = False):
+    """A checked factorisation of ``M``; with ``optimise`` the SVD factors are
+    rebalanced as ``(T A, T^-T B)`` by :func:`stablefilt._balance.balance` to
+    lower ``sup a * sup b`` on the points of ``cover`` (any ``T`` is valid:
+    ``(T A)^T T^-T B = A^T B``; the bound is checked afterwards, never taken
+    from the optimiser)."""
+    a, b = _svd_factor(m)
+    if optimise:
+        from ._balance import balance
+
+        fout, fin = f
+        phi_a = np.polynomial.chebyshev.chebvander(cover.t, k - 1)  # (T, K)
+        phi_b = np.polynomial.chebyshev.chebvander(cover.t, kr - 1)
+        alpha = np.einsum("zrga,ta->ztrg", a.reshape(a.shape[0], a.shape[1], fout, k), phi_a)
+        beta = np.einsum("zrfa,ta->ztrf", b.reshape(b.shape[0], b.shape[1], fin, kr), phi_b)
+        t = balance(alpha, beta)
+        a = t @ a
+        b = np.linalg.solve(np.swapaxes(t, 1, 2), b)
+    return _checked(m, dm, a, b)
+
+
+@dataclasses.dataclass(frozen=True)
+class JointFactor:
+    """A checked factorisation ``M = A^T B + Res`` of a bank's block kernel
+    over a cover (docs/theory.md 9.2), kept for input-specific bounds.
+
+    Attributes:
+      cover: the points the suprema are over.
+      k, kr: basis sizes on the output and input side.
+      fout, fin: the bank's output and input features.
+      pb, pb_err: ``B^T B`` (``(F_in K_r, F_in K_r)``) and an entrywise bound on its error.
+      res: a bound on ``||Res||_2``.
+      sup_a: rigorous ``sup lambda_max(G_A)`` over the cover.
+      constant: the joint constant ``J`` (per unit eps).
+      balanced: whether the factorisation was rebalanced.
+    """
+
+    cover: Cover
+    k: int
+    kr: int
+    fout: int
+    fin: int
+    pb: np.ndarray
+    pb_err: np.ndarray
+    res: float
+    sup_a: float
+    constant: float
+    balanced: bool
+
+
+def joint_factor(taps, basis: Basis, cover: Cover, which: str = "gamma", right=None,
+                 optimise: bool = False) -> JointFactor:
+    """The joint factorisation of a bank's block kernel over ``cover``: from
+    the SVD, and with ``optimise`` also rebalanced (:mod:`stablefilt._balance`),
+    keeping the one with the smaller checked constant."""
+    taps = np.asarray(taps, dtype=np.float64)
+    if taps.ndim == 1:
+        taps = taps[:, None, None]
+    k = taps.shape[0]
+    m, dm, (fout, fin), kr = block_kernels(taps, basis, cover.split, which, True, right)
+    best = None
+    for opt in ((False, True) if optimise else (False,)):
+        pa, pa_err, pb, pb_err, res = _factor(m, dm, cover, k, kr, (fout, fin), opt)
+        sa = float(_sup_lambda_max(pa, pa_err, fout, k, cover)[0])
+        sb = float(_sup_lambda_max(pb, pb_err, fin, kr, cover)[0])
+        # ||phi|| ||psi|| <= sqrt(K K_r) for Chebyshev values in [-1, 1].
+        val = (np.sqrt(sa * sb) + float(res[0]) * np.sqrt(k * kr)) * (1 + REL_ALLOW)
+        if best is None or val < best.constant:
+            best = JointFactor(cover, k, kr, fout, fin, pb[0], pb_err[0], float(res[0]), sa, float(val), opt)
+    return best
+
+
+def schur_constant(taps, basis: Basis, cover: Cover, which: str = "gamma", joint: bool = True,
+                   right=None, optimise: bool = False) -> np.ndarray:
+    """Rigorous bound on the Schur multiplier norm of the bank's block kernel
+    over the points ``cover`` covers: a scalar for the whole bank (``joint``),
+    else ``(F_in, F_out)`` per filter (one filter: shape ``()``).
+
+    The bank form: ``||sum_f V (E~ o Gamma_fg) V^T x_f||_F <= J ||E||_2 ||X||_F``
+    for every ``E`` and ``X`` when the eigenvalues lie in the covered set
+    (docs/theory.md section 9.2)."""
+    taps = np.asarray(taps, dtype=np.float64)
+    shape = taps.shape[1:]
+    k = taps.shape[0]
+    if joint:
+        return joint_factor(taps, basis, cover, which, right, optimise).constant
+    m, dm, (fout, fin), kr = block_kernels(taps, basis, cover.split, which, False, right)
+    val = None
+    for opt in ((False, True) if optimise else (False,)):
+        pa, pa_err, pb, pb_err, res = _factor(m, dm, cover, k, kr, (fout, fin), opt)
+        sa = _sup_lambda_max(pa, pa_err, fout, k, cover)
+        sb = _sup_lambda_max(pb, pb_err, fin, kr, cover)
+        v = (np.sqrt(sa * sb) + res * np.sqrt(k * kr)) * (1 + REL_ALLOW)
+        val = v if val is None else np.minimum(val, v)
+    if right is not None:
+        return val.reshape(np.shape(right)[1], shape[1])
+    return val.reshape(shape) if shape else val.reshape(())
+
+
+@dataclasses.dataclass(frozen=True)
+class PathBound:
+    """Whole-path bound on ``||H(S_hat) - H(S)||`` at one ``eps``
+    (docs/theory.md section 9.1): ``certified = first + second``.
+
+    Attributes:
+      eps: the perturbation size.
+      certified: the bound (for a bank, the smaller of the joint and
+        per-filter forms).
+      first: ``eps J_Gamma`` of the form kept.
+      second: ``2 eps^2 R J_div`` of the form kept.
+      form: ``joint`` or ``per-filter``.
+      cover: how the set holding the spectra along the path was covered.
+    """
+
+    eps: float
+    certified: float
+    first: float
+    second: float
+    form: str
+    cover: str
+
+
+def path_bound(taps, basis: Basis, eps: float, radius: float, cover: Cover, optimise: bool = False) -> PathBound:
+    """The whole-path bound of a filter or bank for ``||E||_2 <= eps``,
+    ``radius >= ||S||_2``, with ``cover`` covering a set holding the spectrum
+    of every ``S + t (E S + S E)``, ``t in [0, 1]``."""
+    taps = np.asarray(taps, dtype=np.float64)
+    out = []
+    for joint in (True, False):
+        g = np.asarray(schur_constant(taps, basis, cover, "gamma", joint, optimise=optimise))
+        d = np.asarray(schur_constant(taps, basis, cover, "divided", joint, optimise=optimise))
+        first = eps * g
+        second = 2.0 * eps * eps * radius * d
+        if not joint and taps.ndim == 3:
+            f = _spectral_norm(first + second)
+            out.append((f, _spectral_norm(first), f - _spectral_norm(first), "per-filter"))
+        else:
+            tot = float(np.max(first + second))
+            out.append((tot, float(np.max(first)), float(np.max(second)), "joint" if joint else "per-filter"))
+    best = min(out, key=lambda o: o[0])
+    return PathBound(float(eps), best[0] * (1 + REL_ALLOW), best[1], max(best[0] - best[1], 0.0), best[3],
+                     cover.description)
+
+
+def _spectral_norm(beta) -> float:
+    """``||beta||_2`` of a matrix of per-filter bounds (docs/theory.md s. 8)."""
+    return float(np.linalg.norm(np.asarray(beta, dtype=np.float64), ord=2)) * (1 + REL_ALLOW)
+
+
+def input_first_order(factor: JointFactor, lam, vecs, z, eps: float) -> np.ndarray:
+    """Input-specific joint first-order bound per signal (docs/theory.md 9.2):
+    ``eps [sqrt(sup a) sqrt(sum_j z~_j^T G_B(lam_j) z~_j) + ||Res||_2
+    sqrt(K K_r) ||z||_F]`` with ``z~ = V^T z`` the signals' spectra (``z``:
+    ``(B, N, F_in)``). ``factor`` must come from a cover of the computed
+    eigenvalues ``lam`` (:func:`eigen_cover`); ``vecs`` the eigenvectors."""
+    lo, hi = factor.cover.split.interval
+    t = np.clip((2 * np.asarray(lam, dtype=np.float64) - lo - hi) / (hi - lo), -1.0, 1.0)
+    gb, err, slope = _gram(factor.pb[None], factor.pb_err[None], factor.fin, factor.kr, t)
+    move = err[0] + factor.cover.gap * slope[0]
+    z = np.asarray(z, dtype=np.float64)
+    zt = np.einsum("ni,bnf->bif", vecs, z)  # (B, N, F)
+    quad = np.einsum("bif,ifh,bih->b", zt, gb[0], zt) + move * np.sum(zt**2, axis=(1, 2))
+    zn = np.sqrt(np.sum(z**2, axis=(1, 2)))
+    val = np.sqrt(max(factor.sup_a, 0.0)) * np.sqrt(np.maximum(quad, 0.0)) + factor.res * np.sqrt(factor.k * factor.kr) * zn
+    return eps * val * (1 + REL_ALLOW)
