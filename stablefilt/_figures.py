@@ -71,7 +71,7 @@ def _spans_decades(values) -> bool:
 
 def _rug(ax, eigenvalues, label=None):
     if eigenvalues is not None and len(eigenvalues):
-        ax.vlines(eigenvalues, 0.0, 0.05, transform=ax.get_xaxis_transform(), color=PALETTE[5], linewidth=0.8,
+        ax.vlines(eigenvalues, 0.0, 0.04, transform=ax.get_xaxis_transform(), color=PALETTE[5], linewidth=0.8,
                   label=label)
 
 
@@ -119,13 +119,17 @@ def response_figure(layers, basis, interval, eigenvalues=None, constants=None, p
         _rug(right, eigenvalues)
         for sign in (1, -1):
             right.axhline(sign * c, color=PALETTE[0], linestyle="--", linewidth=1.2,
-                          label=f"+-C = +-{c:.3g} (integral Lipschitz)" if sign == 1 else None)
+                          label=f"±C = ±{c:.3g} (integral Lipschitz constant)" if sign == 1 else None)
+        if c > 0:  # room above +C for the legend, below -C for the eigenvalue marks
+            right.set_ylim(-1.4 * c, 1.5 * c)
         left.set_title(f"layer {i + 1}: frequency responses ({shape}, K = {taps.shape[0]}, {basis.kind})")
-        right.set_title(f"layer {i + 1}: lam h'(lam) within +-C")
+        right.set_title(f"layer {i + 1}: lam h'(lam) within ±C")
         for ax in (left, right):
             ax.set_xlim(lo - pad, hi + pad)
             ax.set_xlabel("graph frequency lam (eigenvalue of S)")
             ax.grid(True, color="#dddddd", linewidth=0.6)
+        y0, y1 = left.get_ylim()
+        left.set_ylim(y0 - 0.08 * (y1 - y0), y1)  # room for the eigenvalue marks
         left.set_ylabel("frequency response h(lam)")
         right.set_ylabel("lam h'(lam)")
         right.legend(loc="upper right", fontsize=8, frameon=False)
@@ -157,7 +161,7 @@ def training_figure(records, metric: str):
     epochs = [r["epoch"] for r in recs]
     fig = _figure(7.0)
     (a, b), (c, d) = fig.subplots(2, 2)
-    for ax, key, label in ((a, "task_loss", "task loss"), (b, "penalty", "penalty (unweighted)")):
+    for ax, key, label in ((a, "task_loss", "task loss"), (b, "penalty", "penalty term (weighted, added to the loss)")):
         ys = _series(recs, key)
         ax.plot(epochs, ys, color=PALETTE[4], marker="o", markersize=3)
         if _spans_decades(ys):
@@ -183,7 +187,7 @@ def training_figure(records, metric: str):
         d.set_yscale("log")
     d.set_ylabel("bound on ||Phi(S) x - Phi(S_hat) x||_F")
     d.set_title("certified bound per epoch")
-    d.legend(fontsize=8, frameon=False)
+    d.legend(fontsize=8, frameon=False, loc="best")
     for ax in (a, b, c, d):
         ax.set_xlabel("epoch")
         ax.grid(True, color="#dddddd", linewidth=0.6)
@@ -238,6 +242,10 @@ def front_figure(rows, eps: float):
     basis. The bound axis is logarithmic when it spans two decades."""
     pts = front_points(rows, eps)
     metric = rows[0]["metric"]
+    logx = _spans_decades([p["bound"] for p in pts])
+    bx = {id(p): (np.log10(p["bound"]) if logx else p["bound"]) for p in pts}  # distances as drawn
+    xr = max(bx.values()) - min(bx.values()) or 1.0
+    yr = max(p["metric"] for p in pts) - min(p["metric"] for p in pts) or 1.0
     fig = _figure(5.5)
     ax = fig.subplots()
     front = sorted((p for p in pts if p["front"]), key=lambda p: p["bound"])
@@ -248,9 +256,13 @@ def front_figure(rows, eps: float):
         ax.plot([p["bound"] for p in dominated], [p["metric"] for p in dominated], color=PALETTE[5], marker="s",
                 markersize=7, linestyle="none", label="dominated runs")
     for p in pts:
+        # A label goes below its point when a run close by (within 5% of both
+        # ranges) sits higher, so neighbouring labels do not overprint.
+        below = any(q["metric"] > p["metric"] and abs(bx[id(q)] - bx[id(p)]) <= 0.05 * xr
+                    and q["metric"] - p["metric"] <= 0.05 * yr for q in pts if q is not p)
         ax.annotate(f"{p['run']}\n{p['label']}", (p["bound"], p["metric"]), textcoords="offset points",
-                    xytext=(6, 6), fontsize=8)
-    if _spans_decades([p["bound"] for p in pts]):
+                    xytext=(6, -8) if below else (6, 6), va="top" if below else "bottom", fontsize=8)
+    if logx:
         ax.set_xscale("log")
     ax.margins(0.2)
     ax.set_xlabel(f"certified bound on the output change at eps = {eps:g} (inputs with ||x||_F <= rho)")

@@ -348,3 +348,17 @@ def test_page_renders_in_a_headless_browser(runs, tmp_path):
     for tag, attrs in page.tags:
         if tag == "img":
             _pixels(base64.b64decode(attrs["src"].split(",", 1)[1]))
+
+
+def test_front_at_an_eps_the_summaries_lack(runs):
+    """--eps not in the summaries: each run is certified at it (float64, as
+    ``certify`` does), and the bound at 0.05 is above the one at 0.01 (the
+    certificate grows with eps, docs/theory.md section 5)."""
+    from stablefilt._report import front_rows
+
+    rows, e = front_rows(list(runs), 0.05)
+    assert e == 0.05
+    for r in rows:
+        assert F._eps_value(r["certified"], 0.05) > r["certified"]["0.01"]
+    rows, e = front_rows(list(runs), None)
+    assert e == 0.001  # the smallest eps both summaries hold (tiny config: 0.001 and 0.01)
