@@ -100,7 +100,7 @@ def run_figures(path: str, prefix: str) -> tuple[list[Figure], dict]:
                    "Frequency responses of every filter over the spectral interval"
                    + (", eigenvalues of S marked" if eig is not None else f" (graph over {EIGEN_LIMIT} nodes: "
                       "eigenvalues not marked)")
-                   + "; right: lam h'(lam) within the integral Lipschitz constant +-C of the layer.",
+                   + "; right: lam h'(lam) within the integral Lipschitz constant ±C of the layer.",
                    F.png_bytes(F.response_figure(layers, run.spec.basis, run.manifest["spectral_interval"], eig,
                                                  consts if len(consts) == len(layers) else None)))]
     log = read_log(os.path.join(path, "log.jsonl"))
@@ -205,8 +205,22 @@ def _table(header, rows, numeric=()) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
 
+def _plain(v) -> str:
+    """A JSON value as words: ``{"lower": "exact"}`` -> ``lower: exact``."""
+    if isinstance(v, dict):
+        return "; ".join(f"{k}: {_plain(x)}" for k, x in v.items())
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_plain(x) for x in v) + "]"
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, float):
+        return f"{v:.6g}"
+    return str(v)
+
+
 def _kv(pairs) -> str:
-    return "<table><tbody>" + "".join(f"<tr><th>{_e(k)}</th><td>{_e(v)}</td></tr>" for k, v in pairs) + "</tbody></table>"
+    return "<table><tbody>" + "".join(f"<tr><th>{_e(str(k).replace('_', ' '))}</th><td>{_e(_plain(v))}</td></tr>"
+                                      for k, v in pairs) + "</tbody></table>"
 
 
 def _img(f: Figure) -> str:
@@ -222,12 +236,12 @@ def _run_section(info: dict, figs: list[Figure], index: int) -> str:
     iv = m.get("spectral_interval", [None, None])
     settings = [("run folder", info["path"]), ("name", s.get("name")),
                 ("graph", f"{graph.get('nodes')} nodes, {graph.get('edges')} edges, shift operator {graph.get('kind')}"),
-                ("spectral interval", f"[{_num(iv[0])}, {_num(iv[1])}] ({m.get('interval_method')})"),
+                ("spectral interval", f"[{_num(iv[0])}, {_num(iv[1])}] ({_plain(m.get('interval_method'))})"),
                 ("model", f"features {model.get('features')}, K = {model.get('taps')} taps, {model.get('basis')} basis, "
                           f"{model.get('nonlinearity')}, readout {model.get('readout')}"),
                 ("penalty", f"{pen.get('mode')}, weight {pen.get('weight')}"),
                 ("epochs", s.get("epochs")), ("seed", m.get("seed")),
-                ("input norm bound rho", _num(cert.get("rho"))),
+                ("input norm bound rho", cert.get("rho")),
                 ("started / finished", f"{m.get('started')} / {m.get('finished')}")]
     metrics = _table(["metric", "value"], sorted(s.get("metrics", {}).items()), numeric=(1,))
     keys = sorted(cert.get("certified", {}), key=float)
