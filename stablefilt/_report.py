@@ -114,8 +114,13 @@ def run_figures(path: str, prefix: str) -> tuple[list[Figure], dict]:
         rows = stress.get("rows") if isinstance(stress, dict) else None
         if not isinstance(rows, list) or not rows:
             raise RunError(f"stress results {spath!r} hold no rows; rewrite them with stablefilt stress --save.")
+        try:
+            png = F.png_bytes(F.stress_figure(rows))
+        except (KeyError, TypeError, ValueError, AttributeError):
+            raise RunError(f"stress results {spath!r} are not in the form stablefilt stress --save writes; "
+                           "rewrite them with stablefilt stress --save.") from None
         figs.append(Figure(f"{prefix}-stress.png", "Measured (random perturbations) and attacked changes against "
-                           "the certified and published bounds, log-log.", F.png_bytes(F.stress_figure(rows))))
+                           "the certified and published bounds, log-log.", png))
     return figs, {"path": path, "summary": summary, "manifest": run.manifest, "stress": stress, "eigen": eig is not None}
 
 

@@ -291,6 +291,13 @@ def test_report_bad_input_changes_nothing(runs, tmp_path, capsys):
     f.write_text("keep")
     msg = _one_line_exit_2(capsys, ["report", runs[0], "--out", str(f)])
     assert "is a file" in msg and f.read_text() == "keep"
+    # Stress results in a form report cannot read: one line, nothing written.
+    copy = str(tmp_path / "bad-stress")
+    shutil.copytree(runs[0], copy)
+    with open(os.path.join(copy, "stress.json"), "w") as fh:
+        json.dump({"rows": [{"eps": "small"}]}, fh)
+    assert "stress --save" in _one_line_exit_2(capsys, ["report", copy, "--out", str(out)])
+    assert not out.exists()
     assert "at most one" in _one_line_exit_2(capsys, ["report", runs[0], "--eps", "1e-3", "--eps", "1e-2",
                                                       "--out", str(out)])
     assert not out.exists()
