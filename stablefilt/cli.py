@@ -102,6 +102,7 @@ def cmd_compare(args) -> int:
     from ._runs import compare_rows
 
     rows = compare_rows(args.runs)
+    plot = _front_plot(args, rows) if args.plot else None
     csv_file = None
     if args.csv:
         # Opened (exclusively) before anything is printed, so a bad path is
@@ -126,7 +127,33 @@ def cmd_compare(args) -> int:
             w = csv.writer(fh)
             w.writerow(header)
             w.writerows(lines)
+    if plot is not None:
+        try:
+            with open(args.plot, "xb") as fh:
+                fh.write(plot)
+        except OSError as exc:
+            raise UsageError(f"--plot {args.plot!r} cannot be created ({exc.strerror or type(exc).__name__})") from None
     return 0
+
+
+def _front_plot(args, rows) -> bytes:
+    """The front of ``compare --plot``, drawn before anything is printed or
+    written; an existing file is refused, as for ``--csv``."""
+    from ._report import front_rows
+
+    ext = os.path.splitext(args.plot)[1].lower().lstrip(".")
+    if ext not in ("png", "svg", "pdf"):
+        raise UsageError(f"--plot {args.plot!r} must end in .png, .svg or .pdf")
+    if os.path.exists(args.plot):
+        raise UsageError(f"--plot {args.plot!r} already exists; choose a new file name")
+    folder = os.path.dirname(os.path.abspath(args.plot))
+    if not os.path.isdir(folder):
+        raise UsageError(f"--plot {args.plot!r} is in a folder that does not exist; give a new file in an existing folder")
+    eps = _eps_list(args.eps, positive=True)
+    from . import _figures
+
+    rows, e = front_rows(args.runs, eps[0] if eps else None)
+    return _figures.image_bytes(_figures.front_figure(rows, e), ext)
 
 
 def cmd_distance(args) -> int:
@@ -162,9 +189,17 @@ def cmd_stress(args) -> int:
     rows = stress_run(run, eps, kinds=kinds, samples=args.samples, attack_signals=2 if args.attack else 0,
                       progress=show)
     violations = sum(r.violations for r in rows)
+    result = {"run": args.run, "nodes": run.op.nodes, "rho": run.manifest.get("rho"),
+              "rows": [r.as_dict() for r in rows], "violations": violations}
+    if args.save:
+        from ._runs import now, set_aside
+        from ._store import write_json
+
+        path = os.path.join(args.run, "stress.json")
+        set_aside(path)  # an earlier result is kept as stress.json.previous
+        write_json(path, {**result, "saved": now(), "samples": args.samples, "kinds": kinds})
     if args.json:
-        json.dump({"run": args.run, "nodes": run.op.nodes, "rho": run.manifest.get("rho"),
-                   "rows": [r.as_dict() for r in rows], "violations": violations}, sys.stdout)
+        json.dump(result, sys.stdout)
         sys.stdout.write("\n")
     else:
         metric = "acc" if run.manifest.get("task", "classify") == "classify" else "rmse"
@@ -173,6 +208,18 @@ def cmd_stress(args) -> int:
         print(f"stablefilt stress: SOUNDNESS FAILURE: {violations} measured changes exceed their certificate.",
               file=sys.stderr)
         return 3
+    return 0
+
+
+def cmd_report(args) -> int:
+    from ._report import write_report
+
+    eps = _eps_list(args.eps, positive=True)
+    if len(eps) > 1:
+        raise UsageError("give at most one --eps (the eps of the front)")
+    page, files = write_report(args.runs, args.out, eps[0] if eps else None,
+                               progress=lambda m: print(m, flush=True))
+    print(f"report written to {page} ({len(files) - 1} figures)")
     return 0
 
 
@@ -218,6 +265,8 @@ def build_parser() -> argparse.ArgumentParser:
     m.add_argument("runs", nargs="+")
     m.add_argument("--json", action="store_true")
     m.add_argument("--csv", help="also write the table to this new CSV file")
+    m.add_argument("--plot", help="also draw the accuracy-stability front into this new .png, .svg or .pdf file")
+    m.add_argument("--eps", action="append", help="eps of the front (default: the smallest eps all runs hold)")
     m.set_defaults(func=cmd_compare)
     g = sub.add_parser("distance", help="relative distance between two graphs")
     g.add_argument("graph_a")
@@ -233,7 +282,13 @@ def build_parser() -> argparse.ArgumentParser:
     st.add_argument("--attack", action="store_true", help="also search for the worst perturbation")
     st.add_argument("--kinds", default="relative,diagonal,scaling,edges")
     st.add_argument("--json", action="store_true")
+    st.add_argument("--save", action="store_true", help="also write the results to stress.json in the run folder")
     st.set_defaults(func=cmd_stress)
+    r = sub.add_parser("report", help="draw runs' figures and write one self-contained HTML page")
+    r.add_argument("runs", nargs="+")
+    r.add_argument("--out", help="folder for report.html and the PNGs (default <first run>/report)")
+    r.add_argument("--eps", action="append", help="eps of the front (default: the smallest eps all runs hold)")
+    r.set_defaults(func=cmd_report)
     d = sub.add_parser("demo", help="train the orchard demo with and without the penalty and compare")
     d.add_argument("--out", help="folder for the two runs (default runs/demo-<time>)")
     d.add_argument("--epochs", type=int, help="train each run this many epochs instead of the configs' 40")

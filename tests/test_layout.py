@@ -144,6 +144,26 @@ def test_core_modules_stay_core(core):
     assert not extras, f"{core} imports optional extras {extras}"
 
 
+#: The one module allowed to import matplotlib (the ``report`` extra), lazily.
+PLOTTING = f"{PACKAGE}._figures"
+
+
+def test_only_the_figure_module_imports_matplotlib():
+    assert PLOTTING in EXTERN and "matplotlib" in EXTERN[PLOTTING]
+    others = sorted(m for m, names in EXTERN.items() if "matplotlib" in names and m != PLOTTING)
+    assert not others, f"{others} import matplotlib; only {PLOTTING} may"
+
+
+def test_figure_module_imports_matplotlib_only_inside_functions():
+    """Importing the package (or the figure module) never imports matplotlib:
+    the import sits in a function, not at module level."""
+    tree = ast.parse(SOURCES[PLOTTING])
+    top = [n for n in tree.body if isinstance(n, (ast.Import, ast.ImportFrom))]
+    names = {a.name.split(".")[0] for n in top if isinstance(n, ast.Import) for a in n.names}
+    names |= {(n.module or "").split(".")[0] for n in top if isinstance(n, ast.ImportFrom)}
+    assert "matplotlib" not in names
+
+
 # ---------------------------------------------------------------------------
 # The checks themselves, on small synthetic packages (common practice: a
 # checker must be seen to fail).
