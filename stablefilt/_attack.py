@@ -23,8 +23,12 @@ import numpy as np
 from ._graph import ShiftOperator
 from ._model import ModelSpec, forward, forward_np
 from ._perturb import project_ball, relative_product
-from ._search import divided_differences
+from ._search import change_operator, divided_differences, worst_perturbation
 from ._sparse import JaxShift, jax_operator, shift_product
+
+#: Largest ``F_in F_out N^2`` of the first bank for which its own strongest
+#: perturbation is searched as a start (a dense SVD of the bank's change).
+SEARCH_START_LIMIT = 400_000
 
 #: Largest graph attacked with a dense ``E``.
 DENSE_ATTACK_LIMIT = 2000
@@ -120,6 +124,15 @@ def _starts(op: ShiftOperator, params, spec: ModelSpec, eps: float, dense: bool,
             u = np.linalg.svd(gam[:, i, j].reshape(taps.shape[1:]))[0][:, 0]
             out.append((f"pair {i},{j}", eps * (e + e.T) / max(np.linalg.norm(e + e.T, 2), 1e-300),
                         np.outer(v[:, j], u)))
+        if taps.shape[1] * taps.shape[2] * n * n <= SEARCH_START_LIMIT:
+            # The strongest perturbation of the first bank alone (generalised
+            # power method, stablefilt._search), with the input its change
+            # moves most: the top right singular vector of H(S_hat) - H(S).
+            s = op.dense()
+            found = worst_perturbation(s, taps, spec.basis, eps, restarts=1, iters=10, seed=int(rng.integers(1 << 30)))
+            d = change_operator(s, relative_product(lambda z: s @ z, found.e, np.eye(n)), taps, spec.basis)
+            top = np.linalg.svd(d)[2][0].reshape(taps.shape[1], n).T  # vec(X) is column-stacked
+            out.append(("first-bank search", found.e, top / max(np.linalg.norm(top), 1e-300)))
     while len(out) < restarts:
         if dense:
             e = rng.standard_normal((n, n))
