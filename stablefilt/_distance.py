@@ -221,6 +221,38 @@ def _refine(s, s_hat, perm, rounds: int = 50):
     return best
 
 
+def _swap_cost(s, b, i: int, j: int) -> float:
+    """Change of ``||S - B||_F^2`` (symmetric ``S``, ``B``) when nodes
+    ``i`` and ``j`` of ``B`` trade places: only rows and columns ``i, j``
+    change, so it costs ``O(N)``."""
+    idx = [i, j]
+    cols = np.arange(b.shape[0])
+    cols[i], cols[j] = j, i
+    old = s[idx] - b[idx]
+    new = s[idx] - b[[j, i]][:, cols]
+    ob, nb = old[:, idx], new[:, idx]
+    return float(2 * np.sum(new * new) - np.sum(nb * nb) - 2 * np.sum(old * old) + np.sum(ob * ob))
+
+
+def _swaps(s, s_hat, perm, pairs, rounds: int = 5):
+    """Trade places of matched nodes ``(i, j)`` in ``pairs`` while that
+    lowers ``||S - P S_hat P^T||_F``: fixes near-twin nodes (same
+    neighbours) that linear assignments leave crossed."""
+    perm = perm.copy()
+    b = s_hat[perm][:, perm]
+    for _ in range(rounds):
+        moved = False
+        for i, j in pairs:
+            if _swap_cost(s, b, i, j) < -1e-12 * max(float(np.sum(s * s)), np.finfo(float).tiny):
+                perm[[i, j]] = perm[[j, i]]
+                b[[i, j]] = b[[j, i]]
+                b[:, [i, j]] = b[:, [j, i]]
+                moved = True
+        if not moved:
+            break
+    return perm
+
+
 def align(a: ShiftOperator, b: ShiftOperator, seed: int = 0, restarts: int = 1) -> Alignment:
     """Node order of ``b`` matched to ``a``: ``scipy.optimize.quadratic_assignment``
     (FAQ, maximising ``trace(S P S_hat P^T)``, i.e. minimising
@@ -239,6 +271,11 @@ def align(a: ShiftOperator, b: ShiftOperator, seed: int = 0, restarts: int = 1) 
     fa, fb = fa / scale, fb / scale
     cost = np.sum((fa[:, None, :] - fb[None, :, :]) ** 2, axis=2)
     _, sig = linear_sum_assignment(cost)
+    # Swap candidates: neighbours in S and nodes with close signatures.
+    near = np.argsort(np.sum((fa[:, None, :] - fa[None, :, :]) ** 2, axis=2), axis=1)[:, 1:6]
+    ii, jj = np.nonzero(np.triu(oa != 0, 1))
+    pairs = sorted({(int(i), int(j)) for i, j in zip(ii, jj)}
+                   | {(min(i, int(j)), max(i, int(j))) for i in range(n) for j in near[i]})
     rng = np.random.default_rng(seed)
     starts = [("identity", ident), ("signatures", sig), ("barycenter", None)]
     starts += [("random", None)] * restarts
@@ -253,7 +290,7 @@ def align(a: ShiftOperator, b: ShiftOperator, seed: int = 0, restarts: int = 1) 
         else:
             res = quadratic_assignment(oa, ob, method="faq", options={"maximize": True, "P0": init, "rng": rng})
             cands = (_refine(s, s_hat, res.col_ind),)
-        for cand in cands:
+        for cand in cands + (_swaps(s, s_hat, cands[-1], pairs),):
             m = _mismatch(s, s_hat, cand)
             if m < best[2]:
                 best = (name, np.asarray(cand), m)
