@@ -100,6 +100,13 @@ def _columns(header, columns, path):
                 f"one of {'/'.join(SOURCE_NAMES)} and one of {'/'.join(TARGET_NAMES)}")
         raise GraphError(f"edge list {path!r} has the header {','.join(header)}; expected columns {want} "
                          "(or give the column names, or read it as headerless).")
+    if not columns:
+        known = {x for x in (s, t, w) if x is not None}
+        extra = [h for i, h in enumerate(header) if i not in known]
+        if extra:  # never drop a column silently: it may be the weights
+            raise GraphError(f"edge list {path!r} has column {extra[0]!r}, which is not a known weight name "
+                             f"({'/'.join(WEIGHT_NAMES)}); give the column names to use it as the weight or to "
+                             "leave it out.")
     if columns and len(columns) == 3 and w is None:
         raise GraphError(f"edge list {path!r} has no weight column {cols[2]!r}; its header is {','.join(header)}.")
     return s, t, w

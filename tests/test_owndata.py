@@ -360,3 +360,11 @@ def test_swap_cost_matches_the_frobenius_change():
     p[[1, 5]] = [5, 1]
     direct = np.sum((s - b[p][:, p]) ** 2) - np.sum((s - b) ** 2)  # numpy, by definition
     np.testing.assert_allclose(_swap_cost(s, b, 1, 5), direct, rtol=1e-10)
+
+
+def test_an_unknown_column_is_never_dropped_in_silence(tmp_path):
+    p = _write(tmp_path / "g.csv", "from,to,km\nA,B,2\n")
+    with pytest.raises(GraphError, match="'km'"):
+        read_edge_list(p)
+    assert read_edge_list(p, columns=["from", "to", "km"]).weight.tolist() == [2.0]
+    assert read_edge_list(p, columns=["from", "to"]).weight.tolist() == [1.0]
