@@ -368,3 +368,29 @@ def test_an_unknown_column_is_never_dropped_in_silence(tmp_path):
         read_edge_list(p)
     assert read_edge_list(p, columns=["from", "to", "km"]).weight.tolist() == [2.0]
     assert read_edge_list(p, columns=["from", "to"]).weight.tolist() == [1.0]
+
+
+def _knn_graph(pos, k=8, width=0.05):
+    """Gaussian-kernel k-nearest-neighbour graph of points (common practice)."""
+    d = np.sqrt(((pos[:, None] - pos[None]) ** 2).sum(-1))
+    w = np.exp(-(d / width) ** 2)
+    np.fill_diagonal(d, np.inf)
+    idx = np.argsort(d, axis=1)[:, :k]
+    a = np.zeros_like(d)
+    r = np.repeat(np.arange(len(pos)), k)
+    a[r, idx.ravel()] = w[r, idx.ravel()]
+    return np.maximum(a, a.T)
+
+
+def test_align_on_a_re_estimated_and_relabelled_graph_comes_near_the_known_order():
+    rng = np.random.default_rng(5)
+    pos = rng.uniform(size=(300, 2))
+    a = _knn_graph(pos)
+    b = _knn_graph(pos + rng.normal(scale=0.002, size=pos.shape))  # the graph estimated again
+    perm = rng.permutation(300)
+    sa = sf.shift_operator(a, "laplacian")
+    known = distance(sa, sf.shift_operator(b, "laplacian"))
+    found = distance(sa, sf.shift_operator(b[perm][:, perm], "laplacian"), align_nodes=True)
+    # measured: 0.1508 both ways (before the signature start, 87.5 aligned)
+    assert found.relative <= 1.2 * known.relative
+    assert np.mean(perm[found.perm] == np.arange(300)) > 0.95
