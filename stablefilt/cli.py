@@ -166,6 +166,11 @@ def cmd_stress(args) -> int:
     if args.samples < 1:
         raise UsageError(f"--samples must be at least 1; got {args.samples}")
     run = open_run(args.run)
+    if run.manifest.get("task") == "regress" and run.spec.outputs > 1:
+        # The stress test's metric reads one output; until it reads several,
+        # refuse rather than fail half-way.
+        raise UsageError(f"run {args.run!r} regresses {run.spec.outputs} outputs; stress measures runs with one "
+                         "regression output or classification only (certify works on it)")
     eps = _eps_list(args.eps, positive=True) or [float(e) for e in run.config["certify"]["eps"]]
     show = None if args.json else (lambda m: print(m, flush=True))
     rows = stress_run(run, eps, kinds=kinds, samples=args.samples, attack_signals=2 if args.attack else 0,

@@ -10,7 +10,6 @@ import json
 import os
 import subprocess
 import sys
-import threading
 
 import helpers as H
 import networkx as nx
@@ -164,6 +163,8 @@ def test_multi_output_regression_per_node(tmp_path):
     run = sf.open_run(str(tmp_path / "run"))
     assert run.spec.outputs == 3 and run.test_y.shape[1:] == (4, 3)
     assert np.isfinite(summary["metrics"]["test_rmse"])
+    # stress reads one output: refused in one sentence, not a traceback
+    assert main(["stress", str(tmp_path / "run"), "--samples", "1"]) == 2
 
 
 def test_multi_output_regression_per_signal(tmp_path):
@@ -210,32 +211,28 @@ def test_bound_warns_when_the_spectrum_leaves_the_basis_interval(tmp_path, capsy
 # ---- the run lock ----------------------------------------------------------
 
 def test_second_writer_is_refused_and_the_first_run_untouched(tmp_path, capsys):
+    """The lock is held by another process (a child python), as when two
+    ``train`` commands start at once."""
     out = tmp_path / "run"
-    cfg = _write(tmp_path / "c.toml", H.small_run_text())
-    started, release = threading.Event(), threading.Event()
     os.makedirs(out)
-    before = None
-
-    def hold():
-        with run_lock(str(out)):
-            started.set()
-            release.wait(30)
-
-    t = threading.Thread(target=hold)
-    t.start()
-    started.wait(30)
+    (out / "config.toml").write_text("first run's file\n")
+    cfg = _write(tmp_path / "c.toml", H.small_run_text())
+    holder = subprocess.Popen(
+        [sys.executable, "-c", "import sys, time\nfrom stablefilt._lock import run_lock\n"
+         "with run_lock(sys.argv[1]):\n    print('held', flush=True)\n    time.sleep(60)\n", str(out)],
+        stdout=subprocess.PIPE, text=True)
     try:
-        (out / "config.toml").write_text("first run's file\n")
+        assert holder.stdout.readline().strip() == "held"
         before = sorted(os.listdir(out))
-        assert main(["train", cfg, "--out", str(out), "--force"]) == 2
-        err = capsys.readouterr().err
-        assert "being written by another run" in err and err.count("\n") == 1
+        for extra in ([], ["--force"], ["--resume"]):
+            assert main(["train", cfg, "--out", str(out)] + extra) == 2
+            err = capsys.readouterr().err
+            assert f"process {holder.pid}" in err and "being written" in err and err.count("\n") == 1
         assert sorted(os.listdir(out)) == before
         assert (out / "config.toml").read_text() == "first run's file\n"
     finally:
-        release.set()
-        t.join()
-    assert not os.path.exists(out / LOCK)
+        holder.kill()
+        holder.wait()
 
 
 def _dead_pid() -> int:
