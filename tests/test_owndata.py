@@ -391,3 +391,37 @@ def test_align_on_a_re_estimated_and_relabelled_graph_comes_near_the_known_order
     # measured: 0.1508 both ways (before the signature start, 87.5 aligned)
     assert found.relative <= 1.2 * known.relative
     assert np.mean(perm[found.perm] == np.arange(300)) > 0.95
+
+
+# ---- open datasets shipped inside registry packages -----------------------
+
+def test_karate_files_match_the_source_counts_and_train(tmp_path, capsys):
+    from stablefilt.datasets import write_karate
+
+    cfg = write_karate(str(tmp_path), samples=60)
+    el = read_edge_list(str(tmp_path / "karate.csv"))
+    assert len(el.ids) == 34 and len(el.src) == 78  # Zachary 1977: 34 members, 78 ties
+    y = np.load(tmp_path / "karate-y.npy")
+    assert y.shape == (60, 34) and np.bincount(y[0]).tolist() == [17, 17]  # networkx's 'club': 17 and 17
+    assert main(["train", cfg, "--out", str(tmp_path / "run"), "--epochs", "8"]) == 0
+    line = capsys.readouterr().out.strip().splitlines()[-1]
+    assert "test acc" in line
+    assert os.path.isfile(tmp_path / "run" / "nodes.csv")
+
+
+def test_digits_files_match_the_source_counts(tmp_path):
+    from stablefilt.datasets import correlation_graph, grid_edges, write_digits
+
+    write_digits(str(tmp_path))
+    x, y = np.load(tmp_path / "digits-x.npy"), np.load(tmp_path / "digits-y.npy")
+    # scikit-learn's documentation of load_digits: 1797 samples, 64 features, 10 classes
+    assert x.shape == (1797, 64) and sorted(set(y.tolist())) == list(range(10))
+    grid = nx.grid_2d_graph(8, 8)  # networkx reference: 2 * 8 * 7 = 112 edges
+    ours = nx.Graph(grid_edges(8, 8))
+    assert ours.number_of_edges() == grid.number_of_edges() == 112
+    assert nx.is_isomorphic(ours, grid)
+    # the graph differs from run to run: two estimates from disjoint halves
+    a, b = correlation_graph(x[0::2]), correlation_graph(x[1::2])
+    assert a.shape == (64, 64) and np.allclose(a, a.T) and not np.allclose(a, b)
+    d = distance(sf.shift_operator(a, "normalized-laplacian"), sf.shift_operator(b, "normalized-laplacian"))
+    assert d.additive > 0 and np.isfinite(d.relative)
