@@ -41,3 +41,23 @@ def check_interval(interval) -> tuple[float, float]:
     return float(iv[0]), float(iv[1])
 
 
+
+
+def basis_range_warning(lower: float, upper: float, basis) -> str | None:
+    """One sentence when a graph's spectral interval ``[lower, upper]``
+    leaves the interval a Chebyshev basis was built on, else None.
+
+    The certificate stays a valid bound for the filter as evaluated there,
+    but outside its interval a Chebyshev polynomial grows like ``cosh``:
+    the filter is not the one designed, and the figures usually show it.
+    """
+    iv = getattr(basis, "interval", None)
+    if getattr(basis, "kind", None) != "chebyshev" or iv is None:
+        return None
+    a, b = float(iv[0]), float(iv[1])
+    slack = 1e-9 * max(abs(a), abs(b), 1.0)
+    if lower >= a - slack and upper <= b + slack:
+        return None
+    return (f"the graph's spectrum [{lower:.4g}, {upper:.4g}] leaves the Chebyshev basis interval [{a:g}, {b:g}] "
+            "the filter was built on, so the certificate is for the filter evaluated outside its design range; "
+            "pick the shift operator it was designed for (--shift).")

@@ -70,6 +70,14 @@ def _bool(v):
     return isinstance(v, bool)
 
 
+def _header(v):
+    return isinstance(v, bool) or v == "auto"
+
+
+def _columns(v):
+    return isinstance(v, list) and len(v) in (2, 3) and all(_string(x) for x in v)
+
+
 _pos_int.expected = "a positive integer"
 _nonneg_int.expected = "a non-negative integer"
 _finite_nonneg.expected = "a finite number >= 0"
@@ -81,6 +89,8 @@ _weights.expected = "a finite number >= 0 or a list of them, one per layer"
 _interval.expected = "two finite numbers [a, b] with a < b"
 _string.expected = "a non-empty string"
 _bool.expected = "true or false"
+_header.expected = "true, false or 'auto'"
+_columns.expected = "a list of two or three column names: source, target and optionally weight"
 
 SCHEMA = {
     "name": (_string, None),
@@ -95,6 +105,11 @@ SCHEMA = {
         "seed": (_nonneg_int, 0),
         "graph": (_string, None),
         "signals": (_string, None),
+        "targets": (_string, None),
+        "nodes": (_string, None),
+        "header": (_header, "auto"),
+        "columns": (_columns, None),
+        "targets_per": (_choice(("auto", "node", "graph")), "auto"),
         "task": (_choice(("classify", "regress")), "classify"),
         "shift": (_choice(KINDS), "normalized-laplacian"),
         "train_fraction": (_fraction, 0.6),

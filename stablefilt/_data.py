@@ -2,15 +2,18 @@
 
 from __future__ import annotations
 
+import csv
 import dataclasses
+import os
 import zipfile
 
 import numpy as np
 
 from ._config import Config, resolve_path
+from ._edgelist import read_node_list
 from ._errors import ConfigError
 from ._graph import ShiftOperator, shift_operator
-from ._io import load_matrix
+from ._io import read_graph
 
 #: Signals and targets are trained in float32.
 F32_MAX = float(np.finfo(np.float32).max)
@@ -24,9 +27,10 @@ class Dataset:
       op: the shift operator (original node order).
       x: ``(S, N, F)`` float32 signals.
       y: ``(S, N)`` node targets or ``(S,)`` graph targets; int labels for
-        classification, float for regression.
+        classification, float for regression, which also takes several
+        outputs: ``(S, N, C)`` per node or ``(S, C)`` per signal.
       task: ``classify`` or ``regress``.
-      classes: number of classes (1 for regression).
+      classes: number of classes (outputs ``C`` for regression).
       node_task: targets per node.
       train, val, test: index arrays into the signals.
     """
@@ -40,6 +44,7 @@ class Dataset:
     train: np.ndarray
     val: np.ndarray
     test: np.ndarray
+    node_ids: tuple | None = None
 
 
 def _split(count: int, d: dict, seed: int, what: str = "the data"):
@@ -65,64 +70,166 @@ def _orchard(d: dict) -> tuple[ShiftOperator, np.ndarray, np.ndarray]:
     return op, x[:, :, None].astype(np.float32), y
 
 
+def _load_array(path: str, shown: str, key: str, ids=None, strict: bool = False) -> np.ndarray:
+    """One array from ``.npy``, ``.npz`` (the array ``key``, or its only
+    array) or ``.csv`` (rows of numbers; a header row of node IDs puts the
+    columns in node order)."""
+    ext = os.path.splitext(path)[1].lower()
+    if not os.path.isfile(path):
+        raise ConfigError(f"{shown} does not exist." if not os.path.exists(path)
+                          else f"{shown} is a directory; expected a file.")
+    if ext == ".csv":
+        return _load_csv(path, shown, ids)
+    if ext not in (".npy", ".npz"):
+        raise ConfigError(f"{shown} must end in .npy, .npz or .csv; got {ext or 'no suffix'!r}.")
+    try:
+        z = np.load(path, allow_pickle=False)
+        if not isinstance(z, np.lib.npyio.NpzFile):
+            return np.asarray(z)
+        with z:
+            names = list(z.files)
+            if key in names:
+                return np.asarray(z[key])
+            if len(names) == 1 and not strict:
+                return np.asarray(z[names[0]])
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
+        raise ConfigError(f"{shown} could not be read as a numpy {ext} file ({type(exc).__name__}).") from None
+    if strict:
+        raise ConfigError(f"{shown} needs arrays 'x' and 'y' (or give the targets in data.targets); it holds "
+                          f"{', '.join(names) or 'none'}.")
+    raise ConfigError(f"{shown} holds arrays {', '.join(names) or 'none'}; expected {key!r} or a single array.")
+
+
+def _load_csv(path: str, shown: str, ids) -> np.ndarray:
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            rows = [r for r in csv.reader(fh) if r and any(c.strip() for c in r)]
+    except (UnicodeDecodeError, csv.Error) as exc:
+        raise ConfigError(f"{shown} is not a readable UTF-8 CSV file ({type(exc).__name__}).") from None
+    if not rows:
+        raise ConfigError(f"{shown} is empty; expected one row of numbers per signal.")
+    order = None
+    if not _numbers(rows[0]):  # a header row
+        head = [c.strip() for c in rows[0]]
+        rows = rows[1:]
+        if ids is not None and sorted(head) == sorted(ids):
+            pos = {h: i for i, h in enumerate(head)}
+            order = [pos[v] for v in ids]
+        elif ids is not None and len(head) == len(ids):
+            raise ConfigError(f"{shown}: its header names columns that are not the graph's node IDs "
+                              f"(first: {head[0]!r}); name every node once, or drop the header.")
+    width = len(rows[0]) if rows else 0
+    out = np.empty((len(rows), width))
+    for i, r in enumerate(rows):
+        if len(r) != width:
+            raise ConfigError(f"{shown}: row {i + 1} has {len(r)} values; expected {width}.")
+        try:
+            out[i] = [float(c) for c in r]
+        except ValueError:
+            raise ConfigError(f"{shown}: row {i + 1} holds a value that is not a number.") from None
+    if width == 1:
+        out = out[:, 0]
+    return out[:, order] if order is not None else out
+
+
+def _numbers(row) -> bool:
+    try:
+        [float(c) for c in row]
+    except ValueError:
+        return False
+    return True
+
+
 def _files(config: Config, d: dict):
     gpath = resolve_path(config, d["graph"], "data.graph")
     spath = resolve_path(config, d["signals"], "data.signals")
-    op = shift_operator(load_matrix(gpath), d["shift"], name=f"graph file {d['graph']!r}")
-    try:
-        z = np.load(spath, allow_pickle=False)
-        if not isinstance(z, np.lib.npyio.NpzFile):  # a single .npy array
-            raise ValueError("not an .npz archive")
-        with z:
-            arrays = {k: np.asarray(z[k]) for k in ("x", "y") if k in z.files}
-    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
-        raise ConfigError(f"signals file {d['signals']!r} could not be read as a numpy .npz archive "
-                          f"({type(exc).__name__}).") from None
-    if len(arrays) != 2:  # outside the try: ConfigError is a ValueError
-        raise ConfigError(f"signals file {d['signals']!r} needs arrays 'x' and 'y'.")
-    x, y = arrays["x"], arrays["y"]
+    nodes = None
+    if d["nodes"]:
+        nodes = read_node_list(resolve_path(config, d["nodes"], "data.nodes"))
+    matrix, ids = read_graph(gpath, header=d["header"], columns=d["columns"], nodes=nodes)
+    if nodes is not None and ids is None:
+        if len(nodes) != matrix.shape[0]:
+            raise ConfigError(f"data.nodes lists {len(nodes)} nodes but graph file {d['graph']!r} has "
+                              f"{matrix.shape[0]}.")
+        ids = nodes
+    op = shift_operator(matrix, d["shift"], name=f"graph file {d['graph']!r}")
+    sname = f"signals file {d['signals']!r}"
+    x = _load_array(spath, sname, "x", ids)
+    if d["targets"]:
+        tname = f"targets file {d['targets']!r}"
+        y = _load_array(resolve_path(config, d["targets"], "data.targets"), tname, "y", ids)
+    else:
+        tname = sname
+        if os.path.splitext(spath)[1].lower() != ".npz":
+            raise ConfigError(f"{sname} is not an .npz with arrays x and y; give the targets in data.targets.")
+        y = _load_array(spath, sname, "y", strict=True)
     n = op.nodes
     if x.ndim == 2:
         x = x[:, :, None]
     if x.ndim != 3 or x.shape[1] != n or x.shape[0] < 1 or x.shape[2] < 1:
-        raise ConfigError(f"signals file {d['signals']!r}: x must have shape (S, {n}) or (S, {n}, F) with S, F >= 1; "
-                          f"got {x.shape}.")
+        raise ConfigError(f"{sname}: x must have shape (S, {n}) or (S, {n}, F) with S, F >= 1 (one column per node "
+                          f"of the graph); got {x.shape}.")
     if not np.issubdtype(x.dtype, np.number) or not np.all(np.isfinite(x)):
-        raise ConfigError(f"signals file {d['signals']!r}: x must be finite numbers.")
+        raise ConfigError(f"{sname}: x must be finite numbers.")
     if np.iscomplexobj(x) or (x.size and np.max(np.abs(x)) > F32_MAX):
-        raise ConfigError(f"signals file {d['signals']!r}: x must be real and within the float32 range "
+        raise ConfigError(f"{sname}: x must be real and within the float32 range "
                           f"(|x| <= {F32_MAX:.3g}) that training uses.")
-    if y.shape not in ((x.shape[0],), (x.shape[0], n)):
-        raise ConfigError(f"signals file {d['signals']!r}: y must have shape ({x.shape[0]},) or "
-                          f"({x.shape[0]}, {n}); got {y.shape}.")
+    y = _check_targets(y, x.shape[0], n, d, tname)
+    return op, x.astype(np.float32), y, ids
+
+
+def _check_targets(y, s: int, n: int, d: dict, tname: str):
+    """Targets of shape ``(S,)``/``(S, N)`` (classify) or also ``(S, C)``
+    and ``(S, N, C)`` (regress); ``(S, N)`` means one target per node unless
+    ``targets_per = "graph"``."""
+    per = d["targets_per"]
     if d["task"] == "classify":
-        if not np.issubdtype(y.dtype, np.integer) or y.min() < 0:
-            raise ConfigError(f"signals file {d['signals']!r}: y must be non-negative integer labels to classify.")
+        shapes = [(s,), (s, n)] if per == "auto" else [(s, n)] if per == "node" else [(s,)]
+        if y.shape not in shapes:
+            raise ConfigError(f"{tname}: labels must have shape {' or '.join(map(str, shapes))}; got {y.shape}.")
+        if not np.issubdtype(y.dtype, np.integer):
+            if np.issubdtype(y.dtype, np.floating) and np.all(np.isfinite(y)) and np.all(y == np.round(y)):
+                y = y.astype(np.int64)  # integer labels read from a CSV
+            else:
+                raise ConfigError(f"{tname}: y must be non-negative integer labels to classify.")
+        if y.min() < 0:
+            raise ConfigError(f"{tname}: y must be non-negative integer labels to classify.")
         # One output per class id up to the largest: an id beyond the number
         # of targets would size the readout by it (and overflow int32).
         if int(y.max()) >= y.size:
-            raise ConfigError(f"signals file {d['signals']!r}: y holds class {int(y.max())}; labels must be "
+            raise ConfigError(f"{tname}: y holds class {int(y.max())}; labels must be "
                               f"numbered 0 to C - 1 with C at most the {y.size} targets.")
-    elif (not np.issubdtype(y.dtype, np.number) or np.iscomplexobj(y) or not np.all(np.isfinite(y))
-          or np.max(np.abs(y)) > F32_MAX):
-        raise ConfigError(f"signals file {d['signals']!r}: y must be finite real numbers within the float32 "
-                          "range to regress.")
-    return op, x.astype(np.float32), y
+        return y
+    node_ok = y.ndim in (2, 3) and y.shape[:2] == (s, n) and (y.ndim == 2 or y.shape[2] >= 1)
+    graph_ok = y.ndim in (1, 2) and y.shape[0] == s and (y.ndim == 1 or y.shape[1] >= 1)
+    if per == "node" and not node_ok or per == "graph" and not graph_ok or not (node_ok or graph_ok):
+        want = {"node": f"({s}, {n}) or ({s}, {n}, C)", "graph": f"({s},) or ({s}, C)"}
+        shown = want[per] if per != "auto" else f"{want['node']}, {want['graph']}"
+        raise ConfigError(f"{tname}: regression targets must have shape {shown}; got {y.shape}.")
+    if (not np.issubdtype(y.dtype, np.number) or np.iscomplexobj(y) or not np.all(np.isfinite(y))
+            or np.max(np.abs(y)) > F32_MAX):
+        raise ConfigError(f"{tname}: y must be finite real numbers within the float32 range to regress.")
+    return y
 
 
 def build_dataset(config: Config) -> Dataset:
     """The dataset a config describes."""
     d = config["data"]
+    ids = None
     if d["source"] == "orchard":
         op, x, y = _orchard(d)
-        task = d["task"]
     else:
-        op, x, y = _files(config, d)
-        task = d["task"]
+        op, x, y, ids = _files(config, d)
+    task = d["task"]
     what = "the orchard data" if d["source"] == "orchard" else f"signals file {d['signals']!r}"
     tr, va, te = _split(x.shape[0], d, d["seed"], what)
-    classes = int(y.max()) + 1 if task == "classify" else 1
+    if task == "classify":
+        node_task, classes = y.ndim == 2, int(y.max()) + 1
+    else:
+        per = d["targets_per"]
+        node_task = y.ndim == 3 or (y.ndim == 2 and per != "graph" and (per == "node" or y.shape[1] == op.nodes))
+        classes = 1 if y.ndim == 1 + node_task else int(y.shape[-1])
     if task == "classify" and classes < 2:
         raise ConfigError(f"{what}: the targets hold a single class; classification needs at least two.")
     y = y.astype(np.int32) if task == "classify" else y.astype(np.float32)
-    return Dataset(op, x, y, task, classes, y.ndim == 2, tr, va, te)
+    return Dataset(op, x, y, task, classes, node_task, tr, va, te, ids)

@@ -3,13 +3,13 @@ load passes ``allow_pickle=False``."""
 
 from __future__ import annotations
 
-import csv
 import os
 import zipfile
 
 import numpy as np
 import scipy.sparse as sp
 
+from ._edgelist import read_edge_list
 from ._errors import FilterError, GraphError
 from ._filters import Basis, check_taps, make_basis
 from ._graph import ShiftOperator, as_matrix, from_edges, shift_operator
@@ -24,75 +24,39 @@ def _exists(path: str, what: str, err):
         raise err(f"{what} {path!r} is a directory; expected a file.")
 
 
-def read_csv_edges(path: str):
-    """``(src, dst, weight)`` arrays from a CSV with header ``src,dst,weight``
-    (``weight`` optional: 1.0 when the column is absent)."""
-    try:
-        return _read_csv_edges(path)
-    except UnicodeDecodeError:
-        raise GraphError(f"edge list {path!r} is not UTF-8 text.") from None
-    except csv.Error as exc:
-        raise GraphError(f"edge list {path!r} is not a readable CSV file ({exc}).") from None
+def load_matrix(path: str, **csv_options):
+    """The raw matrix in a graph file (dense array or CSR), unvalidated.
+    ``csv_options`` (``header``, ``columns``, ``nodes``) go to
+    :func:`~stablefilt._edgelist.read_edge_list` for a ``.csv`` file."""
+    return read_graph(path, **csv_options)[0]
 
 
-def _read_csv_edges(path: str):
-    src, dst, w = [], [], []
-    with open(path, newline="", encoding="utf-8") as fh:
-        reader = csv.reader(fh)
-        try:
-            header = next(reader)
-        except StopIteration:
-            raise GraphError(f"edge list {path!r} is empty; expected a header src,dst,weight.") from None
-        header = [h.strip().lower() for h in header]
-        if header[:2] != ["src", "dst"] or header[2:] not in ([], ["weight"]):
-            raise GraphError(f"edge list {path!r} must start with the header src,dst,weight; got {','.join(header)}.")
-        width = len(header)
-        for line, row in enumerate(reader, start=2):
-            if not row or all(not c.strip() for c in row):
-                continue
-            if len(row) != width:
-                raise GraphError(f"edge list {path!r} line {line} has {len(row)} fields; expected {width}.")
-            try:
-                a, b = (float(row[0]), float(row[1]))
-            except ValueError:
-                raise GraphError(f"edge list {path!r} line {line}: node ids must be integers; got {row[0]!r}, {row[1]!r}.") from None
-            if not (a.is_integer() and b.is_integer()):
-                raise GraphError(f"edge list {path!r} line {line}: node ids must be integers; got {row[0]!r}, {row[1]!r}.")
-            try:
-                wt = float(row[2]) if width == 3 else 1.0
-            except ValueError:
-                raise GraphError(f"edge list {path!r} line {line}: weight {row[2]!r} is not a number.") from None
-            src.append(int(a))
-            dst.append(int(b))
-            w.append(wt)
-    if not src:
-        raise GraphError(f"edge list {path!r} has no edges, so the number of nodes is unknown.")
-    return np.asarray(src), np.asarray(dst), np.asarray(w, dtype=np.float64)
-
-
-def load_matrix(path: str):
-    """The raw matrix in a graph file (dense array or CSR), unvalidated."""
+def read_graph(path: str, **csv_options):
+    """``(matrix, ids)``: the raw matrix in a graph file and its node IDs
+    (``ids[i]`` names node ``i``; None for ``.npy``/``.npz``, whose nodes
+    are their row numbers)."""
     _exists(path, "graph file", GraphError)
     ext = os.path.splitext(path)[1].lower()
     if ext not in GRAPH_SUFFIXES:
         raise GraphError(f"graph file {path!r} must end in .npy, .npz or .csv; got {ext or 'no suffix'!r}.")
     try:
         if ext == ".npy":
-            return as_matrix(np.load(path, allow_pickle=False), f"graph file {path!r}")
+            return as_matrix(np.load(path, allow_pickle=False), f"graph file {path!r}"), None
         if ext == ".npz":
-            return sp.csr_array(sp.load_npz(path))
+            return sp.csr_array(sp.load_npz(path)), None
     except GraphError:
         raise
     except (ValueError, OSError, EOFError, zipfile.BadZipFile, KeyError) as exc:
         kind = "a numpy .npy array" if ext == ".npy" else "a sparse matrix saved by scipy.sparse.save_npz"
         raise GraphError(f"graph file {path!r} could not be read as {kind} ({type(exc).__name__}).") from None
-    src, dst, w = read_csv_edges(path)
-    return from_edges(src, dst, w, name=f"edge list {path!r}")
+    el = read_edge_list(path, **csv_options)
+    return from_edges(el.src, el.dst, el.weight, nodes=len(el.ids), name=f"edge list {path!r}"), el.ids
 
 
-def load_graph(path: str, kind: str = "as-is") -> ShiftOperator:
-    """Read and validate a graph file as a shift operator of ``kind``."""
-    return shift_operator(load_matrix(path), kind, name=f"graph file {path!r}")
+def load_graph(path: str, kind: str = "as-is", **csv_options) -> ShiftOperator:
+    """Read and validate a graph file as a shift operator of ``kind``
+    (``csv_options`` as in :func:`load_matrix`)."""
+    return shift_operator(load_matrix(path, **csv_options), kind, name=f"graph file {path!r}")
 
 
 def load_filter(path: str) -> tuple[np.ndarray, Basis]:

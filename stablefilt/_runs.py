@@ -15,6 +15,9 @@ A run directory holds::
     params.npz      final parameters: keys layers/<i>/taps, layers/<i>/bias,
                     readout/weight, readout/bias (float32 arrays)
     summary.json    final metrics and certificates
+    nodes.csv       node IDs in node order (index,id), for a graph read from
+                    a CSV edge list or with a node list
+    .lock           while a run writes the directory: its process id
 """
 
 from __future__ import annotations
@@ -33,6 +36,7 @@ from ._errors import FilterError, RunError
 from ._filters import Basis, make_basis
 from ._graph import ShiftOperator, shift_operator
 from ._interval import SpectralInterval
+from ._lock import LOCK
 from ._model import ModelSpec, init_params, spec_from
 from ._store import FORMAT, arrays_to_params, load_graph_npz, load_npz, read_json
 
@@ -54,9 +58,17 @@ def check_out_dir(out: str, resume: bool, force: bool) -> None:
         if not os.path.isfile(os.path.join(out, "checkpoint.npz")):
             raise RunError(f"cannot resume: {out!r} holds no checkpoint.npz.")
         return
-    if os.path.isdir(out) and os.listdir(out) and not force:
+    if os.path.isdir(out) and [f for f in os.listdir(out) if f != LOCK] and not force:
         raise RunError(f"run directory {out!r} already exists and is not empty; pass --force to write into it "
                        "or --resume to continue it.")
+
+
+def make_out_dir(out: str) -> None:
+    """Create the run directory (to hold its lock)."""
+    try:
+        os.makedirs(out, exist_ok=True)
+    except OSError as exc:
+        raise RunError(f"cannot create run directory {out!r} ({exc.strerror or type(exc).__name__}).") from None
 
 
 def prepare_out_dir(out: str, need_bytes: int) -> None:

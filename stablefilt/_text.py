@@ -119,12 +119,27 @@ def stress_text(rows, metric: str, rho) -> str:
 
 def distance_text(d, name_a: str, name_b: str, nodes: int, aligned: bool) -> str:
     """A :class:`~stablefilt._distance.Distance` between two graph files."""
-    lines = [f"{name_a} -> {name_b}: {nodes} nodes" + (", nodes aligned by quadratic assignment" if aligned else ""),
-             f"  relative distance ||E||_2: {fmt(d.relative)}" + (" (an upper bound)" if d.as_dict()["upper_bound"] else ""),
-             f"  residual ||S E + E S - (S_hat - S)||_2: {fmt(d.residual)} -> "
-             + ("expressible as a relative perturbation" if d.expressible else
-                "NOT expressible as a relative perturbation; the relative distance covers only part of the change")]
+    lines = [f"{name_a} (S) -> {name_b} (S_hat): {nodes} nodes"]
+    al = d.alignment
+    if al is not None:
+        lines.append(f"  nodes aligned ({al.start} start): mismatch ||S - P S_hat P^T||_F / ||S||_F "
+                     f"{fmt(al.mismatch_before)} in the given order, {fmt(al.mismatch_after)} aligned; the figures "
+                     "below are upper bounds on the distance over all node orders (--json lists the permutation)")
+    lines += [f"  relative distance ||E||_2 (S_hat = S + E S + S E): {fmt(d.relative)}"
+              + (" (an upper bound)" if d.as_dict()["upper_bound"] else ""),
+              f"  residual ||S E + E S - (S_hat - S)||_2: {fmt(d.residual)} (round-off allowance {fmt(d.tolerance)}) -> "
+              + ("expressible as a relative perturbation" if d.expressible else
+                 "NOT expressible as a relative perturbation; the relative distance covers only part of the change")]
     if d.singular_pairs:
         lines.append(f"  {d.singular_pairs} eigenvalue pairs with lam_i + lam_j = 0: E is not determined there (set to 0)")
-    lines += [f"  eigenvector misalignment delta: {fmt(d.delta)}", f"  additive distance ||S_hat - S||_2: {fmt(d.additive)}"]
+    if d.amplified:
+        p = d.pairs
+        lines.append(f"  S is indefinite (eigenvalues {p['eigenvalues'][0]:.4g} to {p['eigenvalues'][1]:.4g}): E = "
+                     f"Dt_ij / (lam_i + lam_j) divides by pairs summing to as little as {p['smallest_pair_sum']:.3g} "
+                     f"||S||_2, so a change of {p['additive_over_norm']:.3g} ||S||_2 needs a relative E of "
+                     f"{fmt(d.relative)}; a shift operator with its spectrum on one side of 0 (laplacian, "
+                     "normalized-laplacian) avoids this")
+    lines += [f"  eigenvector misalignment delta (eigenvectors of E against those of S, {name_a}; 0 to 8, near 8 for "
+              f"a generic E however small): {fmt(d.delta)}",
+              f"  additive distance ||S_hat - S||_2: {fmt(d.additive)}"]
     return "\n".join(lines)

@@ -17,14 +17,25 @@ import optax
 
 from ._config import Config
 from ._data import Dataset, build_dataset
+from ._edgelist import node_list_text
 from ._errors import ConfigError, RunError, TrainingDiverged
 from ._filters import Basis
 from ._graph import reorder
 from ._interval import SpectralInterval, spectral_interval
+from ._lock import check_unlocked, run_lock
 from ._model import ModelSpec, forward, init_params, spec_from
 from ._modelcert import certify_model
 from ._penalty import model_penalty, penalty
-from ._runs import check_out_dir, new_manifest, now, prepare_out_dir, read_manifest_or_empty, run_paths, set_aside
+from ._runs import (
+    check_out_dir,
+    make_out_dir,
+    new_manifest,
+    now,
+    prepare_out_dir,
+    read_manifest_or_empty,
+    run_paths,
+    set_aside,
+)
 from ._sparse import jax_operator
 from ._store import (
     FORMAT,
@@ -56,17 +67,22 @@ def model_spec(config: Config, interval: SpectralInterval, in_features: int, out
     return spec_from(m, basis, in_features, outputs)
 
 
+def _residual(out, y):
+    """Regression error; a single output's targets carry no output axis."""
+    return (out[..., 0] if y.ndim < out.ndim else out) - y
+
+
 def task_loss(out, y, task: str):
     if task == "classify":
         return jnp.mean(optax.softmax_cross_entropy_with_integer_labels(out, y))
-    return jnp.mean((out[..., 0] - y) ** 2)
+    return jnp.mean(_residual(out, y) ** 2)
 
 
 def metric(out, y, task: str):
-    """Accuracy (classify) or RMSE (regress)."""
+    """Accuracy (classify) or RMSE over every output (regress)."""
     if task == "classify":
         return jnp.mean((jnp.argmax(out, axis=-1) == y).astype(jnp.float32))
-    return jnp.sqrt(jnp.mean((out[..., 0] - y) ** 2))
+    return jnp.sqrt(jnp.mean(_residual(out, y) ** 2))
 
 
 def make_penalty_fn(config, spec: ModelSpec, interval):
@@ -230,14 +246,24 @@ def train(config: Config, out: str, *, epochs: int | None = None, seed: int | No
 
     Returns the summary dictionary (also written to ``summary.json``).
     """
+    check_unlocked(out, resume)
     check_out_dir(out, resume, force)
     trainer = Trainer.from_config(config, seed)
+    params = init_params(trainer.spec, trainer.seed)
+    make_out_dir(out)
+    with run_lock(out, resume=resume, note=progress):
+        # Checked again under the lock: a run that finished meanwhile filled it.
+        check_out_dir(out, resume, force)
+        prepare_out_dir(out, _run_bytes(trainer, params))
+        return _train_locked(trainer, params, out, epochs, resume, progress)
+
+
+def _train_locked(trainer: Trainer, params, out: str, epochs, resume: bool, progress) -> dict:
+    config = trainer.config
     t = config["train"]
     n_epochs = int(epochs if epochs is not None else t["epochs"])
     steps = len(trainer.batches(0))
     tx, step, evaluate = build_step(trainer, steps)
-    params = init_params(trainer.spec, trainer.seed)
-    prepare_out_dir(out, _run_bytes(trainer, params))
     opt_state = tx.init(params)
     best = params
     best_val, bad, start_epoch = None, 0, 1
@@ -256,6 +282,8 @@ def train(config: Config, out: str, *, epochs: int | None = None, seed: int | No
         save_graph(os.path.join(out, "graph.npz"), trainer.data.op.matrix)
         te = trainer.data.test
         atomic_write(os.path.join(out, "test.npz"), npz_bytes({"x": trainer.data.x[te], "y": trainer.data.y[te]}))
+        if trainer.data.node_ids is not None:  # to read later graphs and join predictions in this order
+            atomic_write(os.path.join(out, "nodes.csv"), node_list_text(trainer.data.node_ids).encode())
         for k in ("log", "ckpt", "params", "summary"):
             set_aside(paths[k])
         d = trainer.data

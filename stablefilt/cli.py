@@ -10,7 +10,7 @@ import json
 import os
 import sys
 
-from ._checks import check_eps
+from ._checks import basis_range_warning, check_eps
 from ._errors import StablefiltError, TrainingDiverged
 from ._text import compare_table, distance_text, filter_certificate_text, run_certificate_text, stress_text, table
 
@@ -41,6 +41,23 @@ def _deployed(kind: str, same_kind: bool):
     return got
 
 
+def _csv_options(args) -> dict:
+    """How to read a CSV edge list: the node list, header and columns."""
+    from ._edgelist import read_node_list
+
+    cols = [c.strip() for c in args.columns.split(",")] if args.columns else None
+    if cols is not None and (len(cols) not in (2, 3) or not all(cols)):
+        raise UsageError(f"--columns takes SOURCE,TARGET[,WEIGHT] column names; got {args.columns!r}")
+    return {"header": False if args.no_header else "auto", "columns": cols,
+            "nodes": read_node_list(args.nodes) if args.nodes else None}
+
+
+def _add_csv_options(p) -> None:
+    p.add_argument("--nodes", help="node list (one ID per line, or a run's nodes.csv): node order for CSV edge lists")
+    p.add_argument("--no-header", action="store_true", help="the CSV edge list has no header row")
+    p.add_argument("--columns", help="SOURCE,TARGET[,WEIGHT]: column names in the CSV edge list's header")
+
+
 def cmd_bound(args) -> int:
     from ._certify import certify_filter
     from ._io import load_filter, load_graph
@@ -50,15 +67,18 @@ def cmd_bound(args) -> int:
         raise UsageError("give at least one --eps")
     if args.delta is not None and not (0 <= args.delta <= 8):
         raise UsageError(f"--delta must lie in [0, 8]; got {args.delta}")
-    op = load_graph(args.graph, args.shift)
+    op = load_graph(args.graph, args.shift, **_csv_options(args))
     taps, basis = load_filter(args.filter)
     cert = certify_filter(op, taps, basis, eps, delta=8.0 if args.delta is None else args.delta,
                           deployed=_deployed(op.kind, args.same_kind))
+    warn = basis_range_warning(cert.interval.lower, cert.interval.upper, basis)
     if args.json:
-        json.dump(cert.as_dict(), sys.stdout)
+        json.dump({**cert.as_dict(), "warnings": [warn] if warn else []}, sys.stdout)
         sys.stdout.write("\n")
     else:
         print(filter_certificate_text(cert))
+        if warn:
+            print(f"warning: {warn}")
     return 0
 
 
@@ -90,11 +110,15 @@ def cmd_certify(args) -> int:
     eps = _eps_list(args.eps) or [float(e) for e in run.config["certify"]["eps"]]
     _deployed(run.op.kind, args.same_kind)
     rc = certify_run(run, eps, same_kind=args.same_kind)
+    iv = rc.spectrum.interval
+    warn = basis_range_warning(iv.lower, iv.upper, run.spec.basis)
     if args.json:
-        json.dump(rc.as_dict(), sys.stdout)
+        json.dump({**rc.as_dict(), "warnings": [warn] if warn else []}, sys.stdout)
         sys.stdout.write("\n")
     else:
         print(run_certificate_text(run, rc, eps))
+        if warn:
+            print(f"warning: {warn}")
     return 0
 
 
@@ -160,8 +184,8 @@ def cmd_distance(args) -> int:
     from ._distance import distance
     from ._io import load_graph
 
-    a = load_graph(args.graph_a, args.shift)
-    b = load_graph(args.graph_b, args.shift)
+    a = load_graph(args.graph_a, args.shift, **_csv_options(args))
+    b = load_graph(args.graph_b, args.shift, **_csv_options(args))
     d = distance(a, b, align_nodes=args.align)
     out = d.as_dict()
     out.update({"nodes": a.nodes, "graph_a": args.graph_a, "graph_b": args.graph_b})
@@ -184,6 +208,11 @@ def cmd_stress(args) -> int:
     if args.samples < 1:
         raise UsageError(f"--samples must be at least 1; got {args.samples}")
     run = open_run(args.run)
+    if run.manifest.get("task") == "regress" and run.spec.outputs > 1:
+        # The stress test's metric reads one output; until it reads several,
+        # refuse rather than fail half-way.
+        raise UsageError(f"run {args.run!r} regresses {run.spec.outputs} outputs; stress measures runs with one "
+                         "regression output or classification only (certify works on it)")
     eps = _eps_list(args.eps, positive=True) or [float(e) for e in run.config["certify"]["eps"]]
     show = None if args.json else (lambda m: print(m, flush=True))
     rows = stress_run(run, eps, kinds=kinds, samples=args.samples, attack_signals=2 if args.attack else 0,
@@ -239,13 +268,14 @@ def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog="stablefilt", description="Stability certificates for graph filters and GNNs.")
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
     b = sub.add_parser("bound", help="certify a filter on a graph")
-    b.add_argument("graph", help=".npy dense matrix, .npz from scipy.sparse.save_npz, or .csv edge list src,dst,weight")
+    b.add_argument("graph", help=".npy dense matrix, .npz from scipy.sparse.save_npz, or .csv edge list (docs/data.md)")
     b.add_argument("filter", help=".npz with taps, basis and (Chebyshev) interval")
     b.add_argument("--eps", action="append", required=True, help="relative perturbation size; repeat for several")
     b.add_argument("--shift", choices=KINDS, default="as-is", help="build this kind of shift operator from the graph")
     b.add_argument("--delta", type=float, default=None, help="eigenvector misalignment for the published bound (default 8)")
     b.add_argument("--json", action="store_true", help="print one JSON object")
     b.add_argument("--same-kind", action="store_true", help="assume the deployed graph is rebuilt as the same kind of operator, so its spectrum lies in that kind's interval; recorded with the certificate")
+    _add_csv_options(b)
     b.set_defaults(func=cmd_bound)
     t = sub.add_parser("train", help="train a model from a TOML config")
     t.add_argument("config")
@@ -273,7 +303,8 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("graph_b")
     g.add_argument("--align", action="store_true", help="align node order first (the result is an upper bound)")
     g.add_argument("--shift", choices=KINDS, default="as-is")
-    g.add_argument("--json", action="store_true")
+    g.add_argument("--json", action="store_true", help="print one JSON object (with the permutation when aligned)")
+    _add_csv_options(g)
     g.set_defaults(func=cmd_distance)
     st = sub.add_parser("stress", help="hold a run's certificates against perturbed graphs and attacks")
     st.add_argument("run")

@@ -1,0 +1,147 @@
+"""Open datasets that registry packages ship as data files, written out as the
+files a ``source = "files"`` config reads (docs/data.md, "Open datasets").
+An optional extra (``pip install stablefilt[datasets]``): the core never
+imports this module, and nothing is downloaded.
+
+- :func:`write_karate`: networkx's karate club (Zachary, "An Information Flow
+  Model for Conflict and Fission in Small Groups", 1977): 34 members, 78
+  ties, two factions after the split.
+- :func:`write_digits`: scikit-learn's bundled handwritten digits (the UCI
+  optical digits test set, Alpaydin and Kaynak 1998): 1797 images of 8 x 8
+  pixels, ten classes, each image a signal on the pixel grid graph.
+"""
+
+from __future__ import annotations
+
+import os
+
+import numpy as np
+
+_KARATE_CONFIG = """\
+name = "karate"
+
+[data]
+source = "files"
+graph = "karate.csv"
+signals = "karate-x.npy"
+targets = "karate-y.npy"
+task = "classify"
+shift = "normalized-laplacian"
+
+[model]
+features = [8]
+taps = 4
+
+[train]
+epochs = 40
+
+[certify]
+eps = [0.001, 0.01]
+"""
+
+_DIGITS_CONFIG = """\
+name = "digits"
+
+[data]
+source = "files"
+graph = "digits-grid.csv"
+signals = "digits-x.npy"
+targets = "digits-y.npy"
+task = "classify"
+shift = "normalized-laplacian"
+
+[model]
+features = [16, 16]
+taps = 4
+readout = "mean"
+
+[train]
+epochs = 40
+
+[certify]
+eps = [0.001, 0.01]
+"""
+
+
+def _save(folder: str, name: str, arr) -> None:
+    np.save(os.path.join(folder, name), np.asarray(arr))
+
+
+def _text(folder: str, name: str, text: str) -> str:
+    path = os.path.join(folder, name)
+    with open(path, "w", encoding="utf-8") as fh:
+        fh.write(text)
+    return path
+
+
+def write_karate(folder: str, samples: int = 200, observed: float = 0.3, noise: float = 0.5, seed: int = 0) -> str:
+    """Write the karate club as a node task; returns the config's path.
+
+    Files: ``karate.csv`` (edge list, IDs ``M-1..M-34`` as members are
+    numbered in the 1977 paper), ``karate-x.npy`` ``(samples, 34)``: each
+    signal reveals the faction (+1 / -1) of a random ``observed`` share of
+    the members, with Gaussian noise of scale ``noise``, and 0 elsewhere;
+    ``karate-y.npy`` ``(samples, 34)``: every member's faction (0 Mr. Hi,
+    1 Officer), and ``karate.toml``.
+    """
+    import networkx as nx
+
+    g = nx.karate_club_graph()
+    os.makedirs(folder, exist_ok=True)
+    lines = ["source,target"] + [f"M-{u + 1},M-{v + 1}" for u, v in g.edges()]
+    _text(folder, "karate.csv", "\n".join(lines) + "\n")
+    faction = np.array([g.nodes[i]["club"] == "Officer" for i in range(g.number_of_nodes())], dtype=np.int64)
+    rng = np.random.default_rng(seed)
+    seen = rng.random((samples, faction.size)) < observed
+    x = np.where(seen, (2.0 * faction - 1.0) + noise * rng.standard_normal(seen.shape), 0.0)
+    _save(folder, "karate-x.npy", x)
+    _save(folder, "karate-y.npy", np.tile(faction, (samples, 1)))
+    return _text(folder, "karate.toml", _KARATE_CONFIG)
+
+
+def grid_edges(rows: int, cols: int) -> list[tuple[int, int]]:
+    """The 4-neighbour grid graph on ``rows x cols`` pixels, pixel
+    ``(r, c)`` numbered ``r * cols + c`` (as ``image.reshape(-1)``)."""
+    edges = []
+    for r in range(rows):
+        for c in range(cols):
+            i = r * cols + c
+            if c + 1 < cols:
+                edges.append((i, i + 1))
+            if r + 1 < rows:
+                edges.append((i, i + cols))
+    return edges
+
+
+def write_digits(folder: str) -> str:
+    """Write scikit-learn's digits on the 8 x 8 pixel grid; returns the
+    config's path. Files: ``digits-grid.csv`` (112 edges, pixel IDs 0..63),
+    ``digits-x.npy`` ``(1797, 64)`` scaled to ``[0, 1]``, ``digits-y.npy``
+    ``(1797,)`` labels 0..9, and ``digits.toml`` (mean readout)."""
+    from sklearn.datasets import load_digits
+
+    d = load_digits()
+    os.makedirs(folder, exist_ok=True)
+    _text(folder, "digits-grid.csv", "src,dst\n" + "".join(f"{a},{b}\n" for a, b in grid_edges(8, 8)))
+    _save(folder, "digits-x.npy", d.data / 16.0)
+    _save(folder, "digits-y.npy", d.target.astype(np.int64))
+    return _text(folder, "digits.toml", _DIGITS_CONFIG)
+
+
+def correlation_graph(x: np.ndarray, k: int = 6) -> np.ndarray:
+    """Symmetric k-nearest-neighbour graph of the nodes (pixels) of signals
+    ``x`` ``(S, N)``, weighted by ``|correlation|`` across the signals; a
+    node whose signal never varies keeps no edges. An estimated graph: two
+    disjoint sets of signals give two versions of it."""
+    x = np.asarray(x, dtype=np.float64)
+    sd = x.std(axis=0)
+    live = sd > 0
+    c = np.zeros((x.shape[1], x.shape[1]))
+    z = (x[:, live] - x[:, live].mean(axis=0)) / sd[live]
+    c[np.ix_(live, live)] = np.abs(z.T @ z) / x.shape[0]
+    np.fill_diagonal(c, 0.0)
+    a = np.zeros_like(c)
+    for i in np.flatnonzero(live):
+        nb = np.argsort(-c[i])[:k]
+        a[i, nb] = c[i, nb]
+    return np.maximum(a, a.T)
