@@ -342,17 +342,34 @@ def _masked_readout(w, pre, beta, nonlinearity) -> np.ndarray:
 
 
 def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eigenvectors=None,
-                    forward_layer, known=None, changes: LayerChanges | None = None) -> np.ndarray:
+                    forward_layer, known=None, changes: LayerChanges | None = None, refine: int = 0) -> np.ndarray:
     """Input-specific bound per signal on ``||Phi(S) x_b - Phi(S_hat) x_b||_F``
-    (``x``: ``(B, N, F_0)``; docs/theory.md 9.2, 9.3). Per layer the smaller of
-    the joint spectral bound (with eigenvectors) and the bank's operator bound
-    times the measured feature norm; a per-node readout enters through the last
-    layer's activation pattern. ``forward_layer(i, z) -> (pre, out)`` runs
-    layer ``i`` in float64; ``known[i]``, when given, are other valid bounds
-    on layer ``i``'s change of these signals (the smaller is kept)."""
-    spec, lam = mc.spec, mc.eigenvalues
+    (``x``: ``(B, N, F_0)``; docs/theory.md 9.2, 9.3, 9.5). Per layer the
+    smaller of the joint spectral bound (with eigenvectors) and the bank's
+    operator bound times the measured feature norm; a per-node readout enters
+    through the last layer's activation pattern. The ``refine`` signals with
+    the largest bounds are bounded again with each bank's largest first-order
+    change for their own input (:func:`stablefilt._inputworst.input_worst`,
+    about a second per bank and signal). ``forward_layer(i, z) -> (pre, out)``
+    runs layer ``i`` in float64; ``known[i]``, when given, are other valid
+    bounds on layer ``i``'s change of these signals (the smaller is kept)."""
     lc = changes or layer_changes(mc, cc, bounds, eps)
     z = np.asarray(x, dtype=np.float64)
+    out = _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known, False)
+    if refine and mc.eigenvalues is not None and eigenvectors is not None:
+        idx = np.argsort(-out)[:refine]
+        sub = None if known is None else [np.asarray(k)[idx] for k in known]
+        out[idx] = np.minimum(out[idx], _input_chain(mc, cc, bounds, lc, z[idx], eps, eigenvectors, forward_layer,
+                                                     sub, True))
+    return out
+
+
+def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known, worst: bool):
+    """The per-signal chain of :func:`composed_inputs`; ``worst`` adds the
+    fixed-input first-order bounds of :mod:`stablefilt._inputworst`."""
+    from ._inputworst import input_worst
+
+    spec, lam = mc.spec, mc.eigenvalues
     e = np.zeros(z.shape[0])
     e_prev, last_in, pre = e, z, None
     use_spec = lam is not None and eigenvectors is not None
@@ -362,6 +379,9 @@ def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eige
         if use_spec:
             rem = np.linalg.norm(feat @ np.atleast_2d(lb.remainder), axis=1) * (1 + REL_ALLOW)
             d = np.minimum(d, input_first_order(extra.joint, lam, eigenvectors, z, eps) + rem)
+            if worst:
+                first = eps * input_worst(mc.params["layers"][i]["taps"], spec.basis, lam, eigenvectors, z, cc.slack)
+                d = np.minimum(d, first * (1 + REL_ALLOW) + rem)
         if known is not None:
             d = np.minimum(d, known[i])
         e_prev, e = e, d + lc.gains_hat[i] * e
@@ -379,6 +399,9 @@ def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eige
         feat = np.sqrt(np.sum(last_in**2, axis=1))
         remw = np.linalg.norm(feat @ np.asarray(fb.remainder), axis=1) * (1 + REL_ALLOW)
         dw = np.minimum(dw, input_first_order(ro.joint, lam, eigenvectors, last_in, eps) + remw)
+        if worst:
+            first = eps * input_worst(ro.taps, spec.basis, lam, eigenvectors, last_in, cc.slack)
+            dw = np.minimum(dw, first * (1 + REL_ALLOW) + remw)
     masked = _masked_readout(mc.params["readout"]["weight"], pre, e, spec.nonlinearity)
     through = dw + lc.readout_gain_hat * e_prev + masked * e
     return np.minimum(plain, through) * (1 + REL_ALLOW)

@@ -307,14 +307,18 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
 
 
 def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterval, x, eps: float,
-                   eigenvalues=None, eigenvectors=None, constants: ModelConstants | None = None) -> np.ndarray:
+                   eigenvalues=None, eigenvectors=None, constants: ModelConstants | None = None,
+                   refine: int = 0) -> np.ndarray:
     """Input-specific certificate per signal: for ``x`` of shape
     ``(B, N, F_0)``, a bound on ``||Phi(S) x_b - Phi(S_hat) x_b||_F`` for each
     ``b``, using the measured per-feature norms of the unperturbed path
     (``||beta_l^T n_{l-1}||_2`` in place of ``||beta_l||_2 ||x_{l-1}||``) and,
     when ``eigenvectors`` of ``S`` are given (with ``eigenvalues``), the
     spectrum of each feature (:func:`spectral_first_order`). ``constants``:
-    the :func:`model_constants` of these arguments, when already computed."""
+    the :func:`model_constants` of these arguments, when already computed.
+    ``refine``: that many signals with the largest bounds are bounded again
+    with each bank's largest first-order change for their own input
+    (docs/theory.md 9.5; about a second per bank and signal)."""
     n = op_matrix.shape[0]
     if constants is None:
         constants = model_constants(params, spec, interval, n, eigenvalues, matrix=op_matrix)
@@ -348,7 +352,8 @@ def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterva
     if comp is None:
         return old
     new = composed_inputs(constants, comp, bounds, x, eps, eigenvectors=eigenvectors,
-                          forward_layer=lambda i, v: _layer(p, spec, op_matrix, i, v), known=contribs, changes=lc)
+                          forward_layer=lambda i, v: _layer(p, spec, op_matrix, i, v), known=contribs, changes=lc,
+                          refine=refine)
     return np.minimum(old, new)
 
 

@@ -52,10 +52,16 @@ def run_constants(run: Run, spectrum: RunSpectrum, deployed=None) -> ModelConsta
                            matrix=run.op.matrix, deployed=deployed, rebalance=True)
 
 
-def input_bounds(run: Run, spectrum: RunSpectrum, eps: float, constants: ModelConstants | None = None) -> np.ndarray:
-    """Input-specific bounds ``(signals,)`` of the run's test signals at ``eps``."""
+#: Test signals whose input-specific bound is refined (docs/theory.md 9.5).
+REFINE = 3
+
+
+def input_bounds(run: Run, spectrum: RunSpectrum, eps: float, constants: ModelConstants | None = None,
+                 refine: int = REFINE) -> np.ndarray:
+    """Input-specific bounds ``(signals,)`` of the run's test signals at
+    ``eps``; the ``refine`` largest are refined for their own inputs."""
     return certify_inputs(run.params, run.spec, run.op.matrix, spectrum.interval, run.test_x, eps,
-                          spectrum.eigenvalues, spectrum.eigenvectors, constants)
+                          spectrum.eigenvalues, spectrum.eigenvectors, constants, refine=refine)
 
 
 @dataclasses.dataclass(frozen=True)

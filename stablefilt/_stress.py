@@ -119,17 +119,18 @@ def stress_run(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_
     rows = []
     cache = {}
 
-    def input_bound(e_used):
-        """Input-specific bounds of the test signals at ``e_used`` (cached)."""
-        key = round(float(e_used), 15)
+    def input_bound(e_used, refine=0):
+        """Input-specific bounds of the test signals at ``e_used`` (cached);
+        the ``refine`` largest refined for their own inputs."""
+        key = (round(float(e_used), 15), refine)
         if key not in cache:
-            cache[key] = certify_inputs(run.params, run.spec, s, iv, x, e_used, lam, vecs, constants)
+            cache[key] = certify_inputs(run.params, run.spec, s, iv, x, e_used, lam, vecs, constants, refine=refine)
         return cache[key]
 
     for eps in eps_list:
         bound = model_bounds(constants, eps, rho=rho)
         c_op = bound.certified
-        c_in = input_bound(eps)
+        c_in = input_bound(eps, max(attack_signals, 1) if attack_signals else 0)
         for kind in kinds:
             changes, metrics, viol, covered, dists = [], [], 0, 0, []
             for k in range(samples):

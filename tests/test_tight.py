@@ -223,3 +223,40 @@ def test_balancing_tightens_a_trained_like_filter():
     eps = 1e-4
     found = worst_perturbation(s, taps, basis, eps, restarts=2, iters=15, seed=1)
     assert found.change / eps <= tuned * (1 + 1e-3)
+
+
+def test_fixed_input_first_order_bound(family):
+    """The concave-maximisation bound of theory.md s. 9.5 is above the
+    first-order change (Daleckii-Krein, numpy) of given signals for random,
+    pair and searched ``E`` (generalised power method on the first-order
+    change of that input, written here), and within 10% of the searched one."""
+    from reference import gamma
+
+    from stablefilt._inputworst import input_worst
+
+    name, op = family
+    s = op.dense()
+    lam, v = np.linalg.eigh(s)
+    n = s.shape[0]
+    rng = np.random.default_rng(401 + len(name))
+    basis = Basis("chebyshev", wider_interval(s, rng))
+    taps = rng.standard_normal((4, 2, 3))
+    x = rng.standard_normal((2, n, 2))
+    bound = input_worst(taps, basis, lam, v, x, eigenvalue_slack(lam))
+    li, mj = np.meshgrid(lam, lam, indexing="ij")
+    g = np.stack([[gamma(taps[:, f, h], li, mj, basis.kind, basis.interval) for h in range(3)] for f in range(2)])
+    for b in range(2):
+        vec = x[b].T.reshape(-1)
+        best = 0.0
+        for e in _errors(s, lam, taps, basis, 1.0, rng, searched=False)[:2] + [random_symmetric(rng, n, 1.0)]:
+            for _ in range(25):
+                y = daleckii_krein(s, e, taps, basis.kind, basis.interval) @ vec
+                got = float(np.linalg.norm(y))
+                assert got <= bound[b] * (1 + 1e-9) + 1e-12, (name, got, bound[b])
+                best = max(best, got)
+                # Ascent step: the extreme point of the ball maximising <grad, E>.
+                yt, xt = v.T @ y.reshape(3, n).T, v.T @ x[b]
+                grad = np.einsum("fgij,ig,jf->ij", g, yt, xt)
+                w_, q = np.linalg.eigh(v @ (0.5 * (grad + grad.T)) @ v.T)
+                e = (q * np.where(w_ >= 0, 1.0, -1.0)) @ q.T
+        assert best >= 0.9 * bound[b], (name, best, bound[b])

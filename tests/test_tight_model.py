@@ -48,7 +48,7 @@ def test_tighter_model_certificate_holds(graph_ops, case):  # noqa: F811
         assert bound <= model_bounds(plain, eps, rho=RHO).certified * (1 + 1e-9)
         cb = composed_bound(mc, mc.composition, layer_bounds(mc, eps), eps, RHO)
         assert cb.certified <= cb.trivial * (1 + 1e-6)
-        per = certify_inputs(params, spec, op.matrix, iv, x, eps, w, v, constants=mc)
+        per = certify_inputs(params, spec, op.matrix, iv, x, eps, w, v, constants=mc, refine=2)
         assert np.all(per <= bound * (1 + 1e-9))
         for label, s_hat, perm in _perturbed_graphs(rng, s, eps, v):
             d = H.change_norms(y, _measure(params, spec, s_hat, perm, x))
