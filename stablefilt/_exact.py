@@ -142,6 +142,27 @@ def power_map(k: int, basis: Basis, centre: float) -> np.ndarray:
     return _to_float([[(cols[j][i] if i < len(cols[j]) else 0) for j in range(k)] for i in range(k)])
 
 
+def _transform(k: int, basis: Basis, split: Basis, entries) -> np.ndarray:
+    """``T`` of shape ``(k, k, k)`` with ``T[:, :, j]`` the kernel matrix of
+    basis function ``j``: ``entries(d, mid, half)`` gives its ``k x k`` matrix
+    ``N`` in powers of ``t`` and ``s`` (``lam = mid + half t``; ``d`` the
+    function's coefficients in powers of ``t``), and a Chebyshev split takes
+    ``C^T N C`` with ``t^a = sum_j C_aj T_j(t)``."""
+    if split.kind == "monomial":
+        mid, half = Fraction(0), Fraction(1)
+    else:
+        mid, half = _ends(*split.interval)
+    conv = _power_to_chebyshev(k)
+    out = np.zeros((k, k, k))
+    for j, d in enumerate(_basis_in(basis, k, mid, half)):
+        n = entries(d + [Fraction(0)] * (k + 1 - len(d)), mid, half)
+        if split.kind != "monomial":
+            n = _congruence(conv, n, k)
+        out[:, :, j] = [[float(v) for v in row] for row in n]
+    out.setflags(write=False)
+    return out
+
+
 @functools.lru_cache(maxsize=512)
 def kernel_transform(k: int, basis: Basis, split: Basis) -> np.ndarray:
     """``T`` of shape ``(k, k, k)``: the kernel matrix ``M`` of a filter with
@@ -153,27 +174,17 @@ def kernel_transform(k: int, basis: Basis, split: Basis) -> np.ndarray:
     (2 m / r) d_{a+b+1}`` in powers of ``t`` and ``s``; a Chebyshev split
     takes ``M = C^T N C`` with ``t^a = sum_j C_aj T_j(t)``.
     """
-    if split.kind == "monomial":
-        mid, half = Fraction(0), Fraction(1)
-    else:
-        mid, half = _ends(*split.interval)
-    conv = _power_to_chebyshev(k)
-    out = np.zeros((k, k, k))
-    for j, d in enumerate(_basis_in(basis, k, mid, half)):
-        d = d + [Fraction(0)] * (k + 1 - len(d))
+    def entries(d, mid, half):
         n = [[Fraction(0)] * k for _ in range(k)]
         for a in range(k):
             for b in range(k):
-                s = a + b
-                if s <= k - 1:
-                    n[a][b] = d[s] * (2 - (a == 0) - (b == 0))
-                    if mid != 0 and s + 1 <= k - 1:
-                        n[a][b] += (2 * mid / half) * d[s + 1]
-        if split.kind != "monomial":
-            n = _congruence(conv, n, k)
-        out[:, :, j] = [[float(v) for v in row] for row in n]
-    out.setflags(write=False)
-    return out
+                if a + b <= k - 1:
+                    n[a][b] = d[a + b] * (2 - (a == 0) - (b == 0))
+                    if mid != 0 and a + b + 1 <= k - 1:
+                        n[a][b] += (2 * mid / half) * d[a + b + 1]
+        return n
+
+    return _transform(k, basis, split, entries)
 
 
 @functools.lru_cache(maxsize=512)
@@ -187,20 +198,10 @@ def divided_transform(k: int, basis: Basis, split: Basis) -> np.ndarray:
     sum_{a + b = n - 1} t^a s^b``, so ``N1_ab = d_{a+b+1} / r``; a Chebyshev
     split takes ``M1 = C^T N1 C``.
     """
-    if split.kind == "monomial":
-        mid, half = Fraction(0), Fraction(1)
-    else:
-        mid, half = _ends(*split.interval)
-    conv = _power_to_chebyshev(k)
-    out = np.zeros((k, k, k))
-    for j, d in enumerate(_basis_in(basis, k, mid, half)):
-        d = d + [Fraction(0)] * (k + 1 - len(d))
-        n = [[(d[a + b + 1] / half if a + b + 1 <= k - 1 else Fraction(0)) for b in range(k)] for a in range(k)]
-        if split.kind != "monomial":
-            n = _congruence(conv, n, k)
-        out[:, :, j] = [[float(v) for v in row] for row in n]
-    out.setflags(write=False)
-    return out
+    def entries(d, mid, half):
+        return [[(d[a + b + 1] / half if a + b + 1 <= k - 1 else Fraction(0)) for b in range(k)] for a in range(k)]
+
+    return _transform(k, basis, split, entries)
 
 
 def _congruence(c, n, k):
