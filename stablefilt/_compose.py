@@ -347,20 +347,28 @@ def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eige
     (``x``: ``(B, N, F_0)``; docs/theory.md 9.2, 9.3, 9.5). Per layer the
     smaller of the joint spectral bound (with eigenvectors) and the bank's
     operator bound times the measured feature norm; a per-node readout enters
-    through the last layer's activation pattern. The ``refine`` signals with
-    the largest bounds are bounded again with each bank's largest first-order
-    change for their own input (:func:`stablefilt._inputworst.input_worst`,
-    about a second per bank and signal). ``forward_layer(i, z) -> (pre, out)``
+    through the last layer's activation pattern. The signal with the largest
+    bound is bounded again with each bank's largest first-order change for its
+    own input (:func:`stablefilt._inputworst.input_worst`, about a second per
+    bank and signal), until the largest bound is a refined one or ``refine``
+    signals are done. ``forward_layer(i, z) -> (pre, out)``
     runs layer ``i`` in float64; ``known[i]``, when given, are other valid
     bounds on layer ``i``'s change of these signals (the smaller is kept)."""
     lc = changes or layer_changes(mc, cc, bounds, eps)
     z = np.asarray(x, dtype=np.float64)
     out = _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known, False)
     if refine and mc.eigenvalues is not None and eigenvectors is not None:
-        idx = np.argsort(-out)[:refine]
-        sub = None if known is None else [np.asarray(k)[idx] for k in known]
-        out[idx] = np.minimum(out[idx], _input_chain(mc, cc, bounds, lc, z[idx], eps, eigenvectors, forward_layer,
-                                                     sub, True))
+        # Refine the signal with the largest bound until the largest is a
+        # refined one, or ``refine`` signals are done.
+        done = np.zeros(len(out), dtype=bool)
+        while done.sum() < min(refine, len(out)):
+            top = int(np.argmax(out))
+            if done[top]:
+                break
+            sub = None if known is None else [np.asarray(k)[[top]] for k in known]
+            out[top] = min(out[top], float(_input_chain(mc, cc, bounds, lc, z[[top]], eps, eigenvectors,
+                                                        forward_layer, sub, True)[0]))
+            done[top] = True
     return out
 
 

@@ -52,14 +52,15 @@ def run_constants(run: Run, spectrum: RunSpectrum, deployed=None) -> ModelConsta
                            matrix=run.op.matrix, deployed=deployed, rebalance=True)
 
 
-#: Test signals whose input-specific bound is refined (docs/theory.md 9.5).
-REFINE = 3
+#: At most this many test signals get their input-specific bound refined
+#: (docs/theory.md 9.5), the largest first, until the largest is refined.
+REFINE = 8
 
 
 def input_bounds(run: Run, spectrum: RunSpectrum, eps: float, constants: ModelConstants | None = None,
                  refine: int = REFINE) -> np.ndarray:
     """Input-specific bounds ``(signals,)`` of the run's test signals at
-    ``eps``; the ``refine`` largest are refined for their own inputs."""
+    ``eps``; the largest are refined for their own inputs (at most ``refine``)."""
     return certify_inputs(run.params, run.spec, run.op.matrix, spectrum.interval, run.test_x, eps,
                           spectrum.eigenvalues, spectrum.eigenvectors, constants, refine=refine)
 
