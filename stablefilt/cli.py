@@ -12,7 +12,16 @@ import sys
 
 from ._checks import basis_range_warning, check_eps
 from ._errors import StablefiltError, TrainingDiverged
-from ._text import compare_table, distance_text, filter_certificate_text, run_certificate_text, stress_text, table
+from ._text import (
+    compare_csv,
+    compare_table,
+    distance_text,
+    filter_certificate_text,
+    progress_printer,
+    run_certificate_text,
+    stress_text,
+    table,
+)
 
 
 class _Parser(argparse.ArgumentParser):
@@ -93,13 +102,26 @@ def cmd_train(args) -> int:
         raise UsageError(f"--seed must be non-negative; got {args.seed}")
     out = args.out or os.path.join("runs", config.name)
     summary = train(config, out, epochs=args.epochs, seed=args.seed, resume=args.resume, force=args.force,
-                    progress=lambda m: print(m, flush=True))
+                    progress=_progress(args))
     m = summary["metric"]
     cert = summary["certificate"]["certified"]
-    print(f"run written to {out}: test {m} {summary['metrics'][f'test_{m}']:.4f}; certified "
+    kept = summary.get("kept_epoch")
+    which = f" with the parameters of epoch {kept} of {summary['epochs']} (best validation {m})" if kept else ""
+    print(f"run written to {out}: test {m} {summary['metrics'][f'test_{m}']:.4f}{which}; certified "
           + ", ".join(f"{v:.4g} at eps {k}" for k, v in cert.items())
           + f" (inputs with ||x|| <= {summary['certificate']['rho']:.4g})")
     return 0
+
+
+def _progress(args):
+    """The progress printer of ``--log-every N`` and ``--quiet``: the first
+    and last epoch and every ``N``-th, and every other message (early stop,
+    lock notes); nothing under ``--quiet``."""
+    if args.log_every is not None and args.log_every < 1:
+        raise UsageError(f"--log-every must be at least 1; got {args.log_every}")
+    if args.quiet:
+        return lambda m: None
+    return progress_printer(args.log_every or args.log_default)
 
 
 def cmd_certify(args) -> int:
@@ -125,7 +147,7 @@ def cmd_certify(args) -> int:
 def cmd_compare(args) -> int:
     from ._runs import compare_rows
 
-    rows = compare_rows(args.runs)
+    rows = compare_rows(args.runs, sort=args.sort)
     plot = _front_plot(args, rows) if args.plot else None
     csv_file = None
     if args.csv:
@@ -149,8 +171,9 @@ def cmd_compare(args) -> int:
 
         with csv_file as fh:
             w = csv.writer(fh)
-            w.writerow(header)
-            w.writerows(lines)
+            head, body = compare_csv(rows)
+            w.writerow(head)
+            w.writerows(body)
     if plot is not None:
         try:
             with open(args.plot, "xb") as fh:
@@ -259,13 +282,23 @@ def cmd_demo(args) -> int:
         raise UsageError(f"--epochs must be at least 1; got {args.epochs}")
     if args.out and os.path.exists(args.out) and not os.path.isdir(args.out):
         raise UsageError(f"--out {args.out!r} is a file; expected a folder for the demo's runs")
-    return run_demo(args.out, args.epochs)
+    return run_demo(args.out, args.epochs, progress=_progress(args))
+
+
+def _add_log_options(p, every: int) -> None:
+    p.add_argument("--log-every", type=int, default=None, metavar="N",
+                   help=f"print every N-th epoch's line, besides the first and last (default {every})")
+    p.add_argument("--quiet", action="store_true", help="print no epoch lines, only the final result")
+    p.set_defaults(log_default=every)
 
 
 def build_parser() -> argparse.ArgumentParser:
     from ._graph import KINDS
+    from ._version import __version__
 
     p = _Parser(prog="stablefilt", description="Stability certificates for graph filters and GNNs.")
+    p.add_argument("--version", action="version", version=f"stablefilt {__version__}",
+                   help="print the version and exit")
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
     b = sub.add_parser("bound", help="certify a filter on a graph")
     b.add_argument("graph", help=".npy dense matrix, .npz from scipy.sparse.save_npz, or .csv edge list (docs/data.md)")
@@ -278,51 +311,57 @@ def build_parser() -> argparse.ArgumentParser:
     _add_csv_options(b)
     b.set_defaults(func=cmd_bound)
     t = sub.add_parser("train", help="train a model from a TOML config")
-    t.add_argument("config")
+    t.add_argument("config", help="TOML config (configs/*.toml, docs/data.md)")
     t.add_argument("--out", help="run directory (default runs/<name>)")
-    t.add_argument("--epochs", type=int)
-    t.add_argument("--seed", type=int)
+    t.add_argument("--epochs", type=int, help="train this many epochs instead of the config's [train] epochs")
+    t.add_argument("--seed", type=int, help="seed for initialisation and batches instead of the config's")
     t.add_argument("--resume", action="store_true", help="continue from the run's last checkpoint")
     t.add_argument("--force", action="store_true", help="write into an existing run directory")
+    _add_log_options(t, 1)
     t.set_defaults(func=cmd_train)
     c = sub.add_parser("certify", help="recompute a trained model's certificate in float64")
-    c.add_argument("run")
-    c.add_argument("--eps", action="append")
-    c.add_argument("--json", action="store_true")
+    c.add_argument("run", help="run directory written by train")
+    c.add_argument("--eps", action="append", help="relative perturbation size; repeat for several (default: the config's)")
+    c.add_argument("--json", action="store_true", help="print one JSON object")
     c.add_argument("--same-kind", action="store_true", help="assume the deployed graph is rebuilt as the same kind of operator, so its spectrum lies in that kind's interval; recorded with the certificate")
     c.set_defaults(func=cmd_certify)
     m = sub.add_parser("compare", help="compare runs on accuracy and certified bound")
-    m.add_argument("runs", nargs="+")
-    m.add_argument("--json", action="store_true")
-    m.add_argument("--csv", help="also write the table to this new CSV file")
+    m.add_argument("runs", nargs="+", help="run directories written by train")
+    m.add_argument("--json", action="store_true", help="print one JSON list, one object per run")
+    m.add_argument("--csv", help="also write the comparison to this new CSV file (raw full-precision numbers, "
+                   "the metric's name in its own column)")
+    m.add_argument("--sort", action="store_true", help="order the runs by the certified bound at the smallest eps, "
+                   "then by the test metric (default: the order given)")
     m.add_argument("--plot", help="also draw the accuracy-stability front into this new .png, .svg or .pdf file")
     m.add_argument("--eps", action="append", help="eps of the front (default: the smallest eps all runs hold)")
     m.set_defaults(func=cmd_compare)
     g = sub.add_parser("distance", help="relative distance between two graphs")
-    g.add_argument("graph_a")
-    g.add_argument("graph_b")
+    g.add_argument("graph_a", help="the first graph S (.npy, .npz or .csv edge list)")
+    g.add_argument("graph_b", help="the second graph S_hat, written as S + E S + S E")
     g.add_argument("--align", action="store_true", help="align node order first (the result is an upper bound)")
-    g.add_argument("--shift", choices=KINDS, default="as-is")
+    g.add_argument("--shift", choices=KINDS, default="as-is", help="build this kind of shift operator from both graphs")
     g.add_argument("--json", action="store_true", help="print one JSON object (with the permutation when aligned)")
     _add_csv_options(g)
     g.set_defaults(func=cmd_distance)
     st = sub.add_parser("stress", help="hold a run's certificates against perturbed graphs and attacks")
-    st.add_argument("run")
-    st.add_argument("--eps", action="append")
-    st.add_argument("--samples", type=int, default=5)
+    st.add_argument("run", help="run directory written by train")
+    st.add_argument("--eps", action="append", help="relative perturbation size; repeat for several (default: the config's)")
+    st.add_argument("--samples", type=int, default=5, help="random perturbations per eps and kind (default 5)")
     st.add_argument("--attack", action="store_true", help="also search for the worst perturbation")
-    st.add_argument("--kinds", default="relative,diagonal,scaling,edges")
-    st.add_argument("--json", action="store_true")
+    st.add_argument("--kinds", default="relative,diagonal,scaling,edges",
+                    help="comma-separated kinds of random perturbation (default relative,diagonal,scaling,edges)")
+    st.add_argument("--json", action="store_true", help="print one JSON object")
     st.add_argument("--save", action="store_true", help="also write the results to stress.json in the run folder")
     st.set_defaults(func=cmd_stress)
     r = sub.add_parser("report", help="draw runs' figures and write one self-contained HTML page")
-    r.add_argument("runs", nargs="+")
+    r.add_argument("runs", nargs="+", help="run directories written by train")
     r.add_argument("--out", help="folder for report.html and the PNGs (default <first run>/report)")
     r.add_argument("--eps", action="append", help="eps of the front (default: the smallest eps all runs hold)")
     r.set_defaults(func=cmd_report)
     d = sub.add_parser("demo", help="train the orchard demo with and without the penalty and compare")
     d.add_argument("--out", help="folder for the two runs (default runs/demo-<time>)")
     d.add_argument("--epochs", type=int, help="train each run this many epochs instead of the configs' 40")
+    _add_log_options(d, 10)
     d.set_defaults(func=cmd_demo)
     return p
 
@@ -331,7 +370,11 @@ def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        return int(args.func(args) or 0)
+        status = int(args.func(args) or 0)
+        sys.stdout.flush()  # a closed pipe shows here, not at exit
+        return status
+    except BrokenPipeError:
+        return _closed_pipe()
     except TrainingDiverged as exc:
         print(f"stablefilt {args.command}: {str(exc).rstrip('.')}.", file=sys.stderr)
         return 1
@@ -342,6 +385,22 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("stablefilt: interrupted.", file=sys.stderr)
         return 130
+
+
+#: Exit status when the reader of stdout went away (``| head``): 128 + SIGPIPE,
+#: what the shell reports for a program the signal ended.
+CLOSED_PIPE = 141
+
+
+def _closed_pipe() -> int:
+    """End quietly after the reader closed stdout: point stdout at the null
+    device so the interpreter's final flush raises nothing."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):  # stdout without a file descriptor (captured)
+        pass
+    return CLOSED_PIPE
 
 
 if __name__ == "__main__":
