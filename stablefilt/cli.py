@@ -6,12 +6,14 @@ Bad input is one sentence on stderr and exit status 2, never a traceback.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import sys
+import warnings
 
-from ._checks import basis_range_warning, check_eps
-from ._errors import StablefiltError, TrainingDiverged
+from ._checks import basis_range_warning, check_eps, check_finite
+from ._errors import OverflowFigure, StablefiltError, TrainingDiverged
 from ._text import (
     compare_csv,
     compare_table,
@@ -50,6 +52,31 @@ def _deployed(kind: str, same_kind: bool):
     return got
 
 
+@contextlib.contextmanager
+def _float64(what: str):
+    """Run a float64 computation on user numbers: overflow and round-off
+    warnings are silenced (the result is checked for finite figures
+    instead), and a computation that breaks down on numbers too large for
+    float64 is one sentence, not a traceback."""
+    import numpy as np
+
+    try:
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            yield
+    except (OverflowError, FloatingPointError, np.linalg.LinAlgError) as exc:
+        raise OverflowFigure(f"the {what} cannot be computed in float64 (the computation overflowed: "
+                             f"{type(exc).__name__}); the taps, parameters or eps are too large, so rescale them or "
+                             "give a smaller eps") from None
+
+
+def _print_json(obj, what: str) -> None:
+    """``obj`` as one line of strict JSON (no NaN, no Infinity: RFC 8259);
+    a non-finite figure is an error naming it, checked before printing."""
+    check_finite(obj, what)
+    sys.stdout.write(json.dumps(obj, allow_nan=False) + "\n")
+
+
 def _csv_options(args) -> dict:
     """How to read a CSV edge list: the node list, header and columns."""
     from ._edgelist import read_node_list
@@ -78,12 +105,14 @@ def cmd_bound(args) -> int:
         raise UsageError(f"--delta must lie in [0, 8]; got {args.delta}")
     op = load_graph(args.graph, args.shift, **_csv_options(args))
     taps, basis = load_filter(args.filter)
-    cert = certify_filter(op, taps, basis, eps, delta=8.0 if args.delta is None else args.delta,
-                          deployed=_deployed(op.kind, args.same_kind))
+    with _float64("certificate"):
+        cert = certify_filter(op, taps, basis, eps, delta=8.0 if args.delta is None else args.delta,
+                              deployed=_deployed(op.kind, args.same_kind))
+        d = cert.as_dict()
+    check_finite(d, "certificate")
     warn = basis_range_warning(cert.interval.lower, cert.interval.upper, basis)
     if args.json:
-        json.dump({**cert.as_dict(), "warnings": [warn] if warn else []}, sys.stdout)
-        sys.stdout.write("\n")
+        _print_json({**d, "warnings": [warn] if warn else []}, "certificate")
     else:
         print(filter_certificate_text(cert))
         if warn:
@@ -131,12 +160,14 @@ def cmd_certify(args) -> int:
     run = open_run(args.run)
     eps = _eps_list(args.eps) or [float(e) for e in run.config["certify"]["eps"]]
     _deployed(run.op.kind, args.same_kind)
-    rc = certify_run(run, eps, same_kind=args.same_kind)
+    with _float64("certificate"):
+        rc = certify_run(run, eps, same_kind=args.same_kind)
+        d = rc.as_dict()
+    check_finite(d, "certificate")
     iv = rc.spectrum.interval
     warn = basis_range_warning(iv.lower, iv.upper, run.spec.basis)
     if args.json:
-        json.dump({**rc.as_dict(), "warnings": [warn] if warn else []}, sys.stdout)
-        sys.stdout.write("\n")
+        _print_json({**d, "warnings": [warn] if warn else []}, "certificate")
     else:
         print(run_certificate_text(run, rc, eps))
         if warn:
@@ -160,10 +191,10 @@ def cmd_compare(args) -> int:
         except OSError as exc:
             raise UsageError(f"--csv {args.csv!r} cannot be created ({exc.strerror or type(exc).__name__}); "
                              "give a new file in an existing, writable folder") from None
+    check_finite(rows, "comparison")
     header, lines = compare_table(rows)
     if args.json:
-        json.dump(rows, sys.stdout)
-        sys.stdout.write("\n")
+        _print_json(rows, "comparison")
     else:
         print(table(lines, header))
     if csv_file is not None:
@@ -209,12 +240,13 @@ def cmd_distance(args) -> int:
 
     a = load_graph(args.graph_a, args.shift, **_csv_options(args))
     b = load_graph(args.graph_b, args.shift, **_csv_options(args))
-    d = distance(a, b, align_nodes=args.align)
-    out = d.as_dict()
+    with _float64("distance"):
+        d = distance(a, b, align_nodes=args.align)
+        out = d.as_dict()
+    check_finite(out, "distance")
     out.update({"nodes": a.nodes, "graph_a": args.graph_a, "graph_b": args.graph_b})
     if args.json:
-        json.dump(out, sys.stdout)
-        sys.stdout.write("\n")
+        _print_json(out, "distance")
         return 0
     print(distance_text(d, args.graph_a, args.graph_b, a.nodes, args.align))
     return 0
@@ -251,8 +283,7 @@ def cmd_stress(args) -> int:
         set_aside(path)  # an earlier result is kept as stress.json.previous
         write_json(path, {**result, "saved": now(), "samples": args.samples, "kinds": kinds})
     if args.json:
-        json.dump(result, sys.stdout)
-        sys.stdout.write("\n")
+        _print_json(result, "stress result")
     else:
         metric = "acc" if run.manifest.get("task", "classify") == "classify" else "rmse"
         print(stress_text(rows, metric, run.manifest.get("rho")))
