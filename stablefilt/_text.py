@@ -154,6 +154,19 @@ def stress_text(rows, metric: str, rho) -> str:
     return "\n".join(lines)
 
 
+def perm_text(perm, ids_a=None, ids_b=None) -> str:
+    """The CSV of ``distance --align --save-perm``: per node ``i`` of
+    graph_a the node ``perm[i]`` of graph_b matched to it, by index and,
+    when both graphs name their nodes (edge lists), by ID."""
+    from ._edgelist import _csv_field
+
+    named = ids_a is not None and ids_b is not None
+    lines = ["graph_a_index,graph_b_index" + (",graph_a_id,graph_b_id" if named else "")]
+    for i, j in enumerate(perm):
+        lines.append(f"{i},{int(j)}" + (f",{_csv_field(str(ids_a[i]))},{_csv_field(str(ids_b[int(j)]))}" if named else ""))
+    return "\n".join(lines) + "\n"
+
+
 def distance_text(d, name_a: str, name_b: str, nodes: int, aligned: bool) -> str:
     """A :class:`~stablefilt._distance.Distance` between two graph files."""
     lines = [f"{name_a} (S) -> {name_b} (S_hat): {nodes} nodes"]

@@ -19,6 +19,7 @@ from ._text import (
     compare_table,
     distance_text,
     filter_certificate_text,
+    perm_text,
     progress_printer,
     run_certificate_text,
     stress_text,
@@ -214,6 +215,25 @@ def cmd_compare(args) -> int:
     return 0
 
 
+def _check_new_file(path: str, option: str) -> None:
+    """Refuse, before any work, a file that exists or a folder that does not."""
+    if os.path.exists(path):
+        raise UsageError(f"{option} {path!r} already exists; choose a new file name")
+    if not os.path.isdir(os.path.dirname(os.path.abspath(path))):
+        raise UsageError(f"{option} {path!r} is in a folder that does not exist; give a new file in an existing folder")
+
+
+def _write_new(path: str, option: str, text: str) -> None:
+    """Write ``text`` to the new file ``path``; never over an existing one."""
+    try:
+        with open(path, "x", newline="") as fh:
+            fh.write(text)
+    except FileExistsError:
+        raise UsageError(f"{option} {path!r} already exists; choose a new file name") from None
+    except OSError as exc:
+        raise UsageError(f"{option} {path!r} cannot be created ({exc.strerror or type(exc).__name__})") from None
+
+
 def _front_plot(args, rows) -> bytes:
     """The front of ``compare --plot``, drawn before anything is printed or
     written; an existing file is refused, as for ``--csv``."""
@@ -236,15 +256,24 @@ def _front_plot(args, rows) -> bytes:
 
 def cmd_distance(args) -> int:
     from ._distance import distance
-    from ._io import load_graph
+    from ._graph import shift_operator
+    from ._io import read_graph
 
-    a = load_graph(args.graph_a, args.shift, **_csv_options(args))
-    b = load_graph(args.graph_b, args.shift, **_csv_options(args))
+    if args.save_perm is not None:
+        if not args.align:
+            raise UsageError("--save-perm needs --align (without it the node order is the given one)")
+        _check_new_file(args.save_perm, "--save-perm")
+    opts = _csv_options(args)
+    (ma, ids_a), (mb, ids_b) = read_graph(args.graph_a, **opts), read_graph(args.graph_b, **opts)
+    a = shift_operator(ma, args.shift, name=f"graph file {args.graph_a!r}")
+    b = shift_operator(mb, args.shift, name=f"graph file {args.graph_b!r}")
     with _float64("distance"):
         d = distance(a, b, align_nodes=args.align)
         out = d.as_dict()
     check_finite(out, "distance")
     out.update({"nodes": a.nodes, "graph_a": args.graph_a, "graph_b": args.graph_b})
+    if args.save_perm is not None:
+        _write_new(args.save_perm, "--save-perm", perm_text(d.alignment.perm, ids_a, ids_b))
     if args.json:
         _print_json(out, "distance")
         return 0
@@ -372,6 +401,8 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--align", action="store_true", help="align node order first (the result is an upper bound)")
     g.add_argument("--shift", choices=KINDS, default="as-is", help="build this kind of shift operator from both graphs")
     g.add_argument("--json", action="store_true", help="print one JSON object (with the permutation when aligned)")
+    g.add_argument("--save-perm", metavar="FILE", help="with --align: write the permutation to this new CSV file "
+                   "(graph_a_index,graph_b_index[,graph_a_id,graph_b_id] per node of graph_a)")
     _add_csv_options(g)
     g.set_defaults(func=cmd_distance)
     st = sub.add_parser("stress", help="hold a run's certificates against perturbed graphs and attacks")
