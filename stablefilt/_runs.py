@@ -197,7 +197,8 @@ def open_run(path: str) -> Run:
     if ty.ndim < 1 or ty.shape[0] != tx.shape[0]:
         raise RunError(f"run test data {tpath!r}: y must hold one target per signal of x ({tx.shape[0]}); "
                        f"got shape {ty.shape}.")
-    spec = spec_from(config["model"], _manifest_basis(manifest, path), int(tx.shape[2]), _manifest_classes(manifest, path))
+    spec = spec_from(config["model"], _manifest_basis(manifest, path), int(tx.shape[2]), _manifest_classes(manifest, path),
+                     op.nodes)
     ppath = os.path.join(path, "params.npz")
     if not os.path.isfile(ppath):
         raise RunError(f"run {path!r} has no params.npz; it did not finish (resume it with --resume).")

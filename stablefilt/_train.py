@@ -52,7 +52,8 @@ from ._store import (
 )
 
 
-def model_spec(config: Config, interval: SpectralInterval, in_features: int, outputs: int) -> ModelSpec:
+def model_spec(config: Config, interval: SpectralInterval, in_features: int, outputs: int,
+               nodes: int = 0) -> ModelSpec:
     m = config["model"]
     if m["basis"] == "chebyshev":
         iv = tuple(m["basis_interval"]) if m["basis_interval"] else (interval.lower, interval.upper)
@@ -64,7 +65,7 @@ def model_spec(config: Config, interval: SpectralInterval, in_features: int, out
     if m["readout"] == "none" and m["features"][-1] != outputs:
         raise ConfigError(f"model.readout = 'none' needs the last of model.features to be {outputs} "
                           f"(the outputs of the task); got {m['features'][-1]}.")
-    return spec_from(m, basis, in_features, outputs)
+    return spec_from(m, basis, in_features, outputs, nodes)
 
 
 def _residual(out, y):
@@ -137,13 +138,15 @@ class Trainer:
     def from_config(cls, config: Config, seed: int | None = None) -> "Trainer":
         data = build_dataset(config)
         interval = spectral_interval(data.op)
-        spec = model_spec(config, interval, data.x.shape[2], data.classes)
-        if data.node_task == (spec.readout in ("mean", "sum")):
-            want = "'node' or 'none'" if data.node_task else "'mean' or 'sum'"
+        spec = model_spec(config, interval, data.x.shape[2], data.classes, data.op.nodes)
+        if data.node_task == (spec.readout in ("mean", "sum", "flat")):
+            want = "'node' or 'none'" if data.node_task else "'mean', 'sum' or 'flat'"
             per = "one per node" if data.node_task else "one per signal"
             raise ConfigError(f"model.readout = {spec.readout!r} does not fit the data, whose targets are {per}; "
                               f"use readout = {want}.")
-        ordered, perm = reorder(data.op)
+        # The flat readout's weight rows follow the node order, so its model
+        # trains in the given order (the run's files are in it).
+        ordered, perm = (data.op, np.arange(data.op.nodes)) if spec.readout == "flat" else reorder(data.op)
         x = data.x[:, perm, :]
         y = data.y[:, perm] if data.node_task else data.y
         rho = float(np.max(np.linalg.norm(data.x.reshape(data.x.shape[0], -1).astype(np.float64), axis=1)))

@@ -297,6 +297,9 @@ def cmd_stress(args) -> int:
         # refuse rather than fail half-way.
         raise UsageError(f"run {args.run!r} regresses {run.spec.outputs} outputs; stress measures runs with one "
                          "regression output or classification only (certify works on it)")
+    if run.spec.readout == "flat" and "relabel" in kinds:
+        raise UsageError(f"run {args.run!r} has a flat readout, whose certificate keeps the node order "
+                         "(docs/theory.md s.8.1); leave relabel out of --kinds")
     eps = _eps_list(args.eps, positive=True) or [float(e) for e in run.config["certify"]["eps"]]
     show = None if args.json else (lambda m: print(m, flush=True))
     rows = stress_run(run, eps, kinds=kinds, samples=args.samples, attack_signals=2 if args.attack else 0,

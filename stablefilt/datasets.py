@@ -51,12 +51,14 @@ task = "classify"
 shift = "normalized-laplacian"
 
 [model]
-features = [16, 16]
+features = [16]
 taps = 4
-readout = "mean"
+readout = "flat"
 
 [train]
-epochs = 40
+epochs = 30
+learning_rate = 0.01
+batch_size = 64
 
 [certify]
 eps = [0.001, 0.01]
@@ -117,7 +119,8 @@ def write_digits(folder: str) -> str:
     """Write scikit-learn's digits on the 8 x 8 pixel grid; returns the
     config's path. Files: ``digits-grid.csv`` (112 edges, pixel IDs 0..63),
     ``digits-x.npy`` ``(1797, 64)`` scaled to ``[0, 1]``, ``digits-y.npy``
-    ``(1797,)`` labels 0..9, and ``digits.toml`` (mean readout)."""
+    ``(1797,)`` labels 0..9, and ``digits.toml`` (flat readout: the pixels
+    keep their place, docs/theory.md s.8.1)."""
     from sklearn.datasets import load_digits
 
     d = load_digits()
