@@ -34,8 +34,9 @@ from stablefilt.cli import main
 # 30 sensors, 60 snapshots, one layer of 4 features with 3 taps, batches of 16
 # (two steps an epoch): the smallest run that still exercises every file.
 
+# ".lock" is left behind by a killed writer (README, run directories); --resume takes it over.
 RUN_FILES = {"config.toml", "manifest.json", "graph.npz", "test.npz", "log.jsonl", "checkpoint.npz", "params.npz",
-             "summary.json"}
+             "summary.json", ".lock"}
 
 
 def tiny(epochs=2, lr=0.05, clip=1.0) -> str:

@@ -378,3 +378,24 @@ def test_linear_models_worst_input_stays_below_certificate(graph_ops, graph, kin
     # probe the bound, not only its neighbourhood of zero.
     print(f"tightest change / certificate: {tightest:.3f}")
     assert tightest > 0.1
+
+
+def test_flat_readout_factor_is_the_weight_spectral_norm(karate):
+    """theory s.8.1: the flat readout is linear in vec(x_L), so its factor is
+    ||W_flat||_2 (numpy.linalg.norm(., 2), the reference; within the
+    round-off allowance), and the worst change of the readout alone
+    (the top right singular vector of W_flat as Delta x_L) attains it."""
+    from stablefilt._modelcert import readout_factor
+
+    op, iv = karate
+    spec = ModelSpec((2, 3), taps=3, basis=_basis("chebyshev", iv), readout="flat", outputs=4, nodes=op.nodes)
+    params = _random_params(spec, seed=21)
+    w = params["readout"]["weight"]
+    assert w.shape == (op.nodes * 3, 4)
+    ref = np.linalg.norm(w, 2)
+    got = readout_factor(params, spec, op.nodes)
+    assert ref <= got <= ref * (1 + 1e-12)
+    _, sv, vt = np.linalg.svd(w.T)
+    dx = vt[0].reshape(op.nodes, 3)  # unit Frobenius norm, node-major as the readout reads it
+    change = np.linalg.norm(dx.reshape(-1) @ w)
+    assert change == pytest.approx(ref, rel=1e-12) and change <= got
