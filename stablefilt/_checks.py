@@ -7,7 +7,7 @@ import math
 
 import numpy as np
 
-from ._errors import FilterError, StablefiltError
+from ._errors import FilterError, OverflowFigure, StablefiltError
 
 
 def check_eps(eps, what: str = "eps", *, positive: bool = False, error: type = StablefiltError) -> float:
@@ -61,3 +61,33 @@ def basis_range_warning(lower: float, upper: float, basis) -> str | None:
     return (f"the graph's spectrum [{lower:.4g}, {upper:.4g}] leaves the Chebyshev basis interval [{a:g}, {b:g}] "
             "the filter was built on, so the certificate is for the filter evaluated outside its design range; "
             "pick the shift operator it was designed for (--shift).")
+
+
+def first_non_finite(obj, path: str = "") -> str | None:
+    """The key path (``bounds[0].lower``) of the first float in a JSON-like
+    ``obj`` that is NaN or infinite, or None when every float is finite."""
+    if isinstance(obj, dict):
+        items = ((f"{path}.{k}" if path else str(k), v) for k, v in obj.items())
+    elif isinstance(obj, list | tuple):
+        items = ((f"{path}[{i}]", v) for i, v in enumerate(obj))
+    elif isinstance(obj, float | np.floating):
+        return None if math.isfinite(obj) else path or "value"
+    elif isinstance(obj, np.ndarray) and obj.dtype.kind == "f":
+        return None if np.all(np.isfinite(obj)) else path or "value"
+    else:
+        return None
+    for p, v in items:
+        got = first_non_finite(v, p)
+        if got is not None:
+            return got
+    return None
+
+
+def check_finite(obj, what: str) -> None:
+    """Raise :class:`OverflowFigure` naming the first non-finite figure of
+    ``obj`` (the JSON form of ``what``): a certificate of Infinity certifies
+    nothing, and NaN and Infinity are not JSON (RFC 8259)."""
+    bad = first_non_finite(obj)
+    if bad is not None:
+        raise OverflowFigure(f"the {what} overflows float64 (its figure {bad} is not finite); the taps, parameters "
+                             "or eps are too large for a finite bound, so rescale them or give a smaller eps")

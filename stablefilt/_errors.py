@@ -25,3 +25,8 @@ class RunError(StablefiltError):
 class TrainingDiverged(RunError):
     """Training stopped on a non-finite loss or exploding parameters; the
     last good checkpoint is kept. The command line exits with status 1."""
+
+
+class OverflowFigure(StablefiltError):
+    """A certificate or figure does not fit in float64 (overflow, or a
+    computation that broke down on numbers that large)."""

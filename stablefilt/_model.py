@@ -2,12 +2,17 @@
 
 ``x_l = sigma(H_l(S) x_{l-1} + b_l)`` for ``l = 1..L`` (no ``sigma`` after the
 last layer when ``final_nonlinearity`` is false), then a readout: per-node
-linear (node tasks) or mean/sum pooling then linear (graph tasks). A single
+linear (node tasks), mean/sum pooling then linear (graph tasks), or, when
+the node set is fixed (pixels, fixed sensors), the ``N x F_L`` features
+flattened then linear (graph tasks that keep node identity). A single
 linear filter is the one-layer case with ``nonlinearity="none"`` and no
 readout. Params::
 
     {"layers": [{"taps": (K, F_in, F_out), "bias": (F_out,)}, ...],
      "readout": {"weight": (F_L, C), "bias": (C,)}}        # absent if C == 0
+
+with ``weight`` of shape ``(N F_L, C)`` for the flat readout (row
+``n F_L + f`` reads feature ``f`` of node ``n``).
 """
 
 from __future__ import annotations
@@ -22,7 +27,7 @@ from ._errors import ConfigError
 from ._filters import Basis, run_filter
 
 NONLINEARITIES = ("relu", "leaky_relu", "tanh", "none")
-READOUTS = ("node", "mean", "sum", "none")
+READOUTS = ("node", "mean", "sum", "flat", "none")
 
 
 @dataclasses.dataclass(frozen=True)
@@ -36,9 +41,13 @@ class ModelSpec:
       nonlinearity: pointwise, 1-Lipschitz, ``sigma(0) = 0``.
       bias: add a bias per output feature of each layer.
       readout: ``node`` (per-node linear), ``mean``/``sum`` (pool, then
-        linear), or ``none`` (output is the last layer).
+        linear), ``flat`` (the ``N x F_L`` features flattened, then linear;
+        not permutation invariant: the node order is part of the model), or
+        ``none`` (output is the last layer).
       outputs: ``C``, outputs of the readout (classes, or 1 for regression).
       final_nonlinearity: apply ``sigma`` after the last layer too.
+      nodes: ``N``, needed by the flat readout only (its weight has
+        ``N F_L`` rows); 0 otherwise.
     """
 
     features: tuple[int, ...]
@@ -49,6 +58,7 @@ class ModelSpec:
     readout: str = "node"
     outputs: int = 1
     final_nonlinearity: bool = True
+    nodes: int = 0
 
     def __post_init__(self):
         if len(self.features) < 2 or any(int(f) < 1 for f in self.features):
@@ -61,6 +71,8 @@ class ModelSpec:
             raise ConfigError(f"unknown readout {self.readout!r}; expected one of {', '.join(READOUTS)}.")
         if self.readout != "none" and int(self.outputs) < 1:
             raise ConfigError(f"model outputs must be at least 1; got {self.outputs}.")
+        if self.readout == "flat" and int(self.nodes) < 1:
+            raise ConfigError("model.readout = 'flat' needs the number of nodes (the graph's) to size its weight.")
 
     @property
     def depth(self) -> int:
@@ -82,12 +94,13 @@ _ACTIVATIONS = {
 }
 
 
-def spec_from(m: dict, basis: Basis, in_features: int, outputs: int) -> ModelSpec:
-    """The :class:`ModelSpec` of a config's ``[model]`` table. Without a
-    readout the last layer is linear (no nonlinearity on the output)."""
+def spec_from(m: dict, basis: Basis, in_features: int, outputs: int, nodes: int = 0) -> ModelSpec:
+    """The :class:`ModelSpec` of a config's ``[model]`` table on a graph of
+    ``nodes`` nodes. Without a readout the last layer is linear (no
+    nonlinearity on the output)."""
     return ModelSpec(tuple([in_features] + list(m["features"])), taps=m["taps"], basis=basis,
                      nonlinearity=m["nonlinearity"], bias=m["bias"], readout=m["readout"], outputs=outputs,
-                     final_nonlinearity=m["readout"] != "none")
+                     final_nonlinearity=m["readout"] != "none", nodes=int(nodes) if m["readout"] == "flat" else 0)
 
 
 def init_params(spec: ModelSpec, seed: int | jax.Array) -> dict:
@@ -108,7 +121,7 @@ def init_params(spec: ModelSpec, seed: int | jax.Array) -> dict:
     params = {"layers": layers}
     if spec.readout != "none":
         key, sub = jax.random.split(key)
-        f = spec.features[-1]
+        f = spec.features[-1] * (spec.nodes if spec.readout == "flat" else 1)
         params["readout"] = {
             "weight": jax.random.normal(sub, (f, spec.outputs), jnp.float32) / jnp.sqrt(f),
             "bias": jnp.zeros((spec.outputs,), jnp.float32),
@@ -118,7 +131,7 @@ def init_params(spec: ModelSpec, seed: int | jax.Array) -> dict:
 
 def forward(params: dict, op, x, spec: ModelSpec, xp=jnp):
     """Model output: ``(B, N, C)`` for node readouts, ``(B, C)`` for pooled
-    readouts, ``(B, N, F_L)`` without a readout, for ``x`` of shape
+    and flat readouts, ``(B, N, F_L)`` without a readout, for ``x`` of shape
     ``(B, N, F_0)``.
 
     ``op``: a :class:`JaxShift`, a matrix (scipy sparse, numpy, anything with
@@ -152,6 +165,8 @@ def forward(params: dict, op, x, spec: ModelSpec, xp=jnp):
         h = xp.mean(h, axis=1)
     elif spec.readout == "sum":
         h = xp.sum(h, axis=1)
+    elif spec.readout == "flat":
+        h = h.reshape(h.shape[0], -1)  # (B, N F_L), node-major
     return h @ r["weight"] + r["bias"]
 
 

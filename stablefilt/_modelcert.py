@@ -41,7 +41,8 @@ def eps_key(eps: float) -> str:
 
 def readout_factor(params, spec: ModelSpec, nodes: int) -> float:
     """Bound on the readout's Lipschitz constant in the Frobenius norm:
-    ``||W||_2`` (node), ``/ sqrt(N)`` (mean), ``* sqrt(N)`` (sum), 1 (none)."""
+    ``||W||_2`` (node; flat, with ``W`` of shape ``(N F_L, C)``: theory
+    s.8.1), ``/ sqrt(N)`` (mean), ``* sqrt(N)`` (sum), 1 (none)."""
     if spec.readout == "none":
         return 1.0
     w = float(with_allowance(np.linalg.norm(np.asarray(params["readout"]["weight"], dtype=np.float64), 2), 0.0))

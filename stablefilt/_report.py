@@ -70,7 +70,7 @@ def front_rows(paths, eps: float | None) -> tuple[list[dict], float]:
     """``compare`` rows of the runs and the eps of the front: ``eps`` if
     given, else the smallest eps every run's summary holds. A run whose
     summary lacks ``eps`` is certified at it (float64, as ``certify`` does)."""
-    rows = compare_rows(paths)
+    rows = compare_rows(paths, sort=True)
     if eps is None:
         common = set.intersection(*({float(k) for k in r["certified"]} for r in rows))
         if not common:

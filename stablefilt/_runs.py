@@ -14,7 +14,8 @@ A run directory holds::
     checkpoint.npz  the last completed epoch (params, optimiser state, ...)
     params.npz      final parameters: keys layers/<i>/taps, layers/<i>/bias,
                     readout/weight, readout/bias (float32 arrays)
-    summary.json    final metrics and certificates
+    summary.json    final metrics, kept_epoch (whose params were kept) and
+                    certificates
     nodes.csv       node IDs in node order (index,id), for a graph read from
                     a CSV edge list or with a node list
     .lock           while a run writes the directory: its process id
@@ -196,7 +197,8 @@ def open_run(path: str) -> Run:
     if ty.ndim < 1 or ty.shape[0] != tx.shape[0]:
         raise RunError(f"run test data {tpath!r}: y must hold one target per signal of x ({tx.shape[0]}); "
                        f"got shape {ty.shape}.")
-    spec = spec_from(config["model"], _manifest_basis(manifest, path), int(tx.shape[2]), _manifest_classes(manifest, path))
+    spec = spec_from(config["model"], _manifest_basis(manifest, path), int(tx.shape[2]), _manifest_classes(manifest, path),
+                     op.nodes)
     ppath = os.path.join(path, "params.npz")
     if not os.path.isfile(ppath):
         raise RunError(f"run {path!r} has no params.npz; it did not finish (resume it with --resume).")
@@ -225,10 +227,11 @@ def _manifest_classes(manifest: dict, path: str) -> int:
     return c
 
 
-def compare_rows(paths) -> list[dict]:
+def compare_rows(paths, sort: bool = False) -> list[dict]:
     """One row per finished run for ``compare``, read from its
-    ``summary.json`` (the ``compare --json`` format), sorted by the certified
-    bound at the smallest eps, then by test accuracy (or RMSE)."""
+    ``summary.json`` (the ``compare --json`` format), in the order of
+    ``paths``; with ``sort``, by the certified bound at the smallest eps, then
+    by test accuracy (or RMSE)."""
     rows = []
     for p in paths:
         if not os.path.isdir(p):
@@ -250,9 +253,12 @@ def compare_rows(paths) -> list[dict]:
                 "certified": cert["certified"],
                 "published": cert["published"],
                 "rho": cert["rho"],
+                "kept_epoch": s.get("kept_epoch"),
             })
         except (KeyError, TypeError):
             raise RunError(f"run summary in {p!r} lacks the fields compare needs; is it from this version?") from None
+    if not sort:
+        return rows
     first = lambda r: min(r["certified"].items(), key=lambda kv: float(kv[0]))[1]  # noqa: E731
     rows.sort(key=lambda r: (first(r), -r.get("test_acc", 0.0), r.get("test_rmse", 0.0)))
     return rows

@@ -83,6 +83,9 @@ def arrays_to_params(arrays: dict, template: dict, what: str) -> dict:
             raise RunError(f"{what}: {k} has shape {arrays[k].shape}; the model needs {v.shape}.")
         if not np.issubdtype(arrays[k].dtype, np.floating) or not np.all(np.isfinite(arrays[k])):
             raise RunError(f"{what}: {k} must hold finite real numbers.")
+        if np.max(np.abs(arrays[k]), initial=0.0) > np.finfo(np.float32).max:
+            # The model holds float32: a larger value would be read as infinite.
+            raise RunError(f"{what}: {k} holds values beyond float32's range (|x| > 3.4e38), which the model stores.")
     layers = []
     for i, layer in enumerate(template["layers"]):
         layers.append({k: jax.numpy.asarray(arrays[f"layers/{i}/{k}"]) for k in layer})

@@ -17,6 +17,21 @@ def fmt(x) -> str:
     return f"{x:.4g}"
 
 
+def progress_printer(every: int):
+    """A trainer's ``progress`` that prints the first and last epoch lines
+    and every ``every``-th, and every other message (early stop, lock notes)."""
+
+    def show(msg: str) -> None:
+        words = msg.split()
+        if words[:1] == ["epoch"] and len(words) > 1 and "/" in words[1]:
+            done, total = (int(v) for v in words[1].split("/"))
+            if not (done == 1 or done == total or done % every == 0):
+                return
+        print(msg, flush=True)
+
+    return show
+
+
 def table(rows, header) -> str:
     """Right-aligned columns under a header and a rule."""
     cells = [header] + [[str(c) for c in r] for r in rows]
@@ -99,6 +114,28 @@ def compare_table(rows) -> tuple[list[str], list[list[str]]]:
     return header, lines
 
 
+def compare_csv(rows) -> tuple[list[str], list[list]]:
+    """``(header, lines)`` of the comparison as data for ``compare --csv``:
+    the metric's name in its own column and every figure as the raw float
+    (written in full precision by :mod:`csv`), empty where a run lacks it."""
+    eps = sorted({k for r in rows for k in r["certified"]}, key=float)
+    depth = max(len(r["layers"]) for r in rows)
+    header = ["run", "name", "penalty_mode", "penalty_weight", "metric", "test_value", "kept_epoch"]
+    header += [f"integral_lipschitz_layer_{i + 1}" for i in range(depth)]
+    header += [f"certified@{e}" for e in eps] + [f"published@{e}" for e in eps]
+    lines = []
+    for r in rows:
+        m = r["metric"]
+        w = r["penalty_weight"]
+        il = [lr["integral_lipschitz"] for lr in r["layers"]]
+        line = [r["run"], r["name"] or "", r["penalty_mode"], " ".join(map(repr, w)) if isinstance(w, list) else w,
+                m, r[f"test_{m}"], "" if r.get("kept_epoch") is None else r["kept_epoch"]]
+        line += il + [""] * (depth - len(il))
+        line += [r["certified"].get(e, "") for e in eps] + [r["published"].get(e, "") for e in eps]
+        lines.append(line)
+    return header, lines
+
+
 def stress_text(rows, metric: str, rho) -> str:
     """The stress table of :func:`~stablefilt._stress.stress_run` rows, the
     clean metric, and one line per attack."""
@@ -115,6 +152,19 @@ def stress_text(rows, metric: str, rho) -> str:
                          f"(input-specific; ratio {_g3(r.attack_ratio)}); free input {r.attack_free_change:.4g} <= "
                          f"{r.certified:.4g} (ratio {_g3(r.attack_free_ratio)})")
     return "\n".join(lines)
+
+
+def perm_text(perm, ids_a=None, ids_b=None) -> str:
+    """The CSV of ``distance --align --save-perm``: per node ``i`` of
+    graph_a the node ``perm[i]`` of graph_b matched to it, by index and,
+    when both graphs name their nodes (edge lists), by ID."""
+    from ._edgelist import _csv_field
+
+    named = ids_a is not None and ids_b is not None
+    lines = ["graph_a_index,graph_b_index" + (",graph_a_id,graph_b_id" if named else "")]
+    for i, j in enumerate(perm):
+        lines.append(f"{i},{int(j)}" + (f",{_csv_field(str(ids_a[i]))},{_csv_field(str(ids_b[int(j)]))}" if named else ""))
+    return "\n".join(lines) + "\n"
 
 
 def distance_text(d, name_a: str, name_b: str, nodes: int, aligned: bool) -> str:

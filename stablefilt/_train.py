@@ -52,7 +52,8 @@ from ._store import (
 )
 
 
-def model_spec(config: Config, interval: SpectralInterval, in_features: int, outputs: int) -> ModelSpec:
+def model_spec(config: Config, interval: SpectralInterval, in_features: int, outputs: int,
+               nodes: int = 0) -> ModelSpec:
     m = config["model"]
     if m["basis"] == "chebyshev":
         iv = tuple(m["basis_interval"]) if m["basis_interval"] else (interval.lower, interval.upper)
@@ -64,7 +65,7 @@ def model_spec(config: Config, interval: SpectralInterval, in_features: int, out
     if m["readout"] == "none" and m["features"][-1] != outputs:
         raise ConfigError(f"model.readout = 'none' needs the last of model.features to be {outputs} "
                           f"(the outputs of the task); got {m['features'][-1]}.")
-    return spec_from(m, basis, in_features, outputs)
+    return spec_from(m, basis, in_features, outputs, nodes)
 
 
 def _residual(out, y):
@@ -137,13 +138,15 @@ class Trainer:
     def from_config(cls, config: Config, seed: int | None = None) -> "Trainer":
         data = build_dataset(config)
         interval = spectral_interval(data.op)
-        spec = model_spec(config, interval, data.x.shape[2], data.classes)
-        if data.node_task == (spec.readout in ("mean", "sum")):
-            want = "'node' or 'none'" if data.node_task else "'mean' or 'sum'"
+        spec = model_spec(config, interval, data.x.shape[2], data.classes, data.op.nodes)
+        if data.node_task == (spec.readout in ("mean", "sum", "flat")):
+            want = "'node' or 'none'" if data.node_task else "'mean', 'sum' or 'flat'"
             per = "one per node" if data.node_task else "one per signal"
             raise ConfigError(f"model.readout = {spec.readout!r} does not fit the data, whose targets are {per}; "
                               f"use readout = {want}.")
-        ordered, perm = reorder(data.op)
+        # The flat readout's weight rows follow the node order, so its model
+        # trains in the given order (the run's files are in it).
+        ordered, perm = (data.op, np.arange(data.op.nodes)) if spec.readout == "flat" else reorder(data.op)
         x = data.x[:, perm, :]
         y = data.y[:, perm] if data.node_task else data.y
         rho = float(np.max(np.linalg.norm(data.x.reshape(data.x.shape[0], -1).astype(np.float64), axis=1)))
@@ -266,7 +269,7 @@ def _train_locked(trainer: Trainer, params, out: str, epochs, resume: bool, prog
     tx, step, evaluate = build_step(trainer, steps)
     opt_state = tx.init(params)
     best = params
-    best_val, bad, start_epoch = None, 0, 1
+    best_val, bad, start_epoch, best_epoch = None, 0, 1, None
     paths = run_paths(out)
     if resume:
         state, meta = load_checkpoint(paths["ckpt"], {"params": params, "opt_state": opt_state, "best": best})
@@ -274,6 +277,7 @@ def _train_locked(trainer: Trainer, params, out: str, epochs, resume: bool, prog
             raise RunError(f"checkpoint in {out!r} was made from another graph or seed than this config gives.")
         params, opt_state, best = state["params"], state["opt_state"], state["best"]
         best_val, bad, start_epoch = meta["best_val"], meta["bad"], meta["epoch"] + 1
+        best_epoch = meta.get("best_epoch")  # None in checkpoints written before it was kept
         n_epochs = max(n_epochs, meta.get("epochs", n_epochs))
         rewrite_log(paths["log"], [r for r in read_log(paths["log"]) if r.get("epoch", 0) <= meta["epoch"]])
         manifest = dict(read_manifest_or_empty(paths["manifest"]))
@@ -329,12 +333,13 @@ def _train_locked(trainer: Trainer, params, out: str, epochs, resume: bool, prog
         }
         improved = best_val is None or (va_m > best_val if higher_better else va_m < best_val)
         if improved:
-            best_val, bad, best = va_m, 0, params
+            best_val, bad, best, best_epoch = va_m, 0, params, epoch
         else:
             bad += 1
         append_log(paths["log"], record)
         save_checkpoint(paths["ckpt"], {"params": params, "opt_state": opt_state, "best": best},
                         {"format": FORMAT, "epoch": epoch, "epochs": n_epochs, "best_val": best_val, "bad": bad,
+                         "best_epoch": best_epoch,
                          "seed": trainer.seed, "fingerprint": trainer.data.op.fingerprint()})
         e0 = f"{trainer.eps[0]:g}"
         c0 = cert.at(trainer.eps[0]).certified
@@ -344,10 +349,13 @@ def _train_locked(trainer: Trainer, params, out: str, epochs, resume: bool, prog
         if patience and bad >= patience:
             progress(f"early stop: validation {mname} did not improve for {patience} epochs")
             break
-    return finish(trainer, best, evaluate, out, manifest, paths, epoch)
+    return finish(trainer, best, evaluate, out, manifest, paths, epoch, best_epoch)
 
 
-def finish(trainer: Trainer, params, evaluate, out: str, manifest: dict, paths: dict, last_epoch: int) -> dict:
+def finish(trainer: Trainer, params, evaluate, out: str, manifest: dict, paths: dict, last_epoch: int,
+           kept_epoch: int | None = None) -> dict:
+    """Evaluate and certify the kept parameters (those of ``kept_epoch``, the
+    best validation epoch) and write ``params.npz`` and ``summary.json``."""
     save_params(paths["params"], params)
     mname = _fmt_metric(trainer.data.task)
     x, y, op = trainer.x, trainer.y, trainer.op
@@ -361,6 +369,7 @@ def finish(trainer: Trainer, params, evaluate, out: str, manifest: dict, paths: 
     summary = {
         "name": trainer.config.name,
         "epochs": last_epoch,
+        "kept_epoch": kept_epoch,
         "metric": mname,
         "metrics": metrics,
         "penalty": trainer.config["penalty"],

@@ -6,13 +6,25 @@ Bad input is one sentence on stderr and exit status 2, never a traceback.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import sys
+import warnings
 
-from ._checks import basis_range_warning, check_eps
-from ._errors import StablefiltError, TrainingDiverged
-from ._text import compare_table, distance_text, filter_certificate_text, run_certificate_text, stress_text, table
+from ._checks import basis_range_warning, check_eps, check_finite
+from ._errors import OverflowFigure, StablefiltError, TrainingDiverged
+from ._text import (
+    compare_csv,
+    compare_table,
+    distance_text,
+    filter_certificate_text,
+    perm_text,
+    progress_printer,
+    run_certificate_text,
+    stress_text,
+    table,
+)
 
 
 class _Parser(argparse.ArgumentParser):
@@ -39,6 +51,31 @@ def _deployed(kind: str, same_kind: bool):
         raise UsageError(f"--same-kind needs an operator whose spectrum is known by construction (laplacian, "
                          f"normalized-laplacian or scaled-adjacency); this one is {kind}")
     return got
+
+
+@contextlib.contextmanager
+def _float64(what: str):
+    """Run a float64 computation on user numbers: overflow and round-off
+    warnings are silenced (the result is checked for finite figures
+    instead), and a computation that breaks down on numbers too large for
+    float64 is one sentence, not a traceback."""
+    import numpy as np
+
+    try:
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            yield
+    except (OverflowError, FloatingPointError, np.linalg.LinAlgError) as exc:
+        raise OverflowFigure(f"the {what} cannot be computed in float64 (the computation overflowed: "
+                             f"{type(exc).__name__}); the taps, parameters or eps are too large, so rescale them or "
+                             "give a smaller eps") from None
+
+
+def _print_json(obj, what: str) -> None:
+    """``obj`` as one line of strict JSON (no NaN, no Infinity: RFC 8259);
+    a non-finite figure is an error naming it, checked before printing."""
+    check_finite(obj, what)
+    sys.stdout.write(json.dumps(obj, allow_nan=False) + "\n")
 
 
 def _csv_options(args) -> dict:
@@ -69,12 +106,14 @@ def cmd_bound(args) -> int:
         raise UsageError(f"--delta must lie in [0, 8]; got {args.delta}")
     op = load_graph(args.graph, args.shift, **_csv_options(args))
     taps, basis = load_filter(args.filter)
-    cert = certify_filter(op, taps, basis, eps, delta=8.0 if args.delta is None else args.delta,
-                          deployed=_deployed(op.kind, args.same_kind))
+    with _float64("certificate"):
+        cert = certify_filter(op, taps, basis, eps, delta=8.0 if args.delta is None else args.delta,
+                              deployed=_deployed(op.kind, args.same_kind))
+        d = cert.as_dict()
+    check_finite(d, "certificate")
     warn = basis_range_warning(cert.interval.lower, cert.interval.upper, basis)
     if args.json:
-        json.dump({**cert.as_dict(), "warnings": [warn] if warn else []}, sys.stdout)
-        sys.stdout.write("\n")
+        _print_json({**d, "warnings": [warn] if warn else []}, "certificate")
     else:
         print(filter_certificate_text(cert))
         if warn:
@@ -93,13 +132,26 @@ def cmd_train(args) -> int:
         raise UsageError(f"--seed must be non-negative; got {args.seed}")
     out = args.out or os.path.join("runs", config.name)
     summary = train(config, out, epochs=args.epochs, seed=args.seed, resume=args.resume, force=args.force,
-                    progress=lambda m: print(m, flush=True))
+                    progress=_progress(args))
     m = summary["metric"]
     cert = summary["certificate"]["certified"]
-    print(f"run written to {out}: test {m} {summary['metrics'][f'test_{m}']:.4f}; certified "
+    kept = summary.get("kept_epoch")
+    which = f" with the parameters of epoch {kept} of {summary['epochs']} (best validation {m})" if kept else ""
+    print(f"run written to {out}: test {m} {summary['metrics'][f'test_{m}']:.4f}{which}; certified "
           + ", ".join(f"{v:.4g} at eps {k}" for k, v in cert.items())
           + f" (inputs with ||x|| <= {summary['certificate']['rho']:.4g})")
     return 0
+
+
+def _progress(args):
+    """The progress printer of ``--log-every N`` and ``--quiet``: the first
+    and last epoch and every ``N``-th, and every other message (early stop,
+    lock notes); nothing under ``--quiet``."""
+    if args.log_every is not None and args.log_every < 1:
+        raise UsageError(f"--log-every must be at least 1; got {args.log_every}")
+    if args.quiet:
+        return lambda m: None
+    return progress_printer(args.log_every or args.log_default)
 
 
 def cmd_certify(args) -> int:
@@ -109,12 +161,14 @@ def cmd_certify(args) -> int:
     run = open_run(args.run)
     eps = _eps_list(args.eps) or [float(e) for e in run.config["certify"]["eps"]]
     _deployed(run.op.kind, args.same_kind)
-    rc = certify_run(run, eps, same_kind=args.same_kind)
+    with _float64("certificate"):
+        rc = certify_run(run, eps, same_kind=args.same_kind)
+        d = rc.as_dict()
+    check_finite(d, "certificate")
     iv = rc.spectrum.interval
     warn = basis_range_warning(iv.lower, iv.upper, run.spec.basis)
     if args.json:
-        json.dump({**rc.as_dict(), "warnings": [warn] if warn else []}, sys.stdout)
-        sys.stdout.write("\n")
+        _print_json({**d, "warnings": [warn] if warn else []}, "certificate")
     else:
         print(run_certificate_text(run, rc, eps))
         if warn:
@@ -125,7 +179,7 @@ def cmd_certify(args) -> int:
 def cmd_compare(args) -> int:
     from ._runs import compare_rows
 
-    rows = compare_rows(args.runs)
+    rows = compare_rows(args.runs, sort=args.sort)
     plot = _front_plot(args, rows) if args.plot else None
     csv_file = None
     if args.csv:
@@ -138,10 +192,10 @@ def cmd_compare(args) -> int:
         except OSError as exc:
             raise UsageError(f"--csv {args.csv!r} cannot be created ({exc.strerror or type(exc).__name__}); "
                              "give a new file in an existing, writable folder") from None
+    check_finite(rows, "comparison")
     header, lines = compare_table(rows)
     if args.json:
-        json.dump(rows, sys.stdout)
-        sys.stdout.write("\n")
+        _print_json(rows, "comparison")
     else:
         print(table(lines, header))
     if csv_file is not None:
@@ -149,8 +203,9 @@ def cmd_compare(args) -> int:
 
         with csv_file as fh:
             w = csv.writer(fh)
-            w.writerow(header)
-            w.writerows(lines)
+            head, body = compare_csv(rows)
+            w.writerow(head)
+            w.writerows(body)
     if plot is not None:
         try:
             with open(args.plot, "xb") as fh:
@@ -158,6 +213,25 @@ def cmd_compare(args) -> int:
         except OSError as exc:
             raise UsageError(f"--plot {args.plot!r} cannot be created ({exc.strerror or type(exc).__name__})") from None
     return 0
+
+
+def _check_new_file(path: str, option: str) -> None:
+    """Refuse, before any work, a file that exists or a folder that does not."""
+    if os.path.exists(path):
+        raise UsageError(f"{option} {path!r} already exists; choose a new file name")
+    if not os.path.isdir(os.path.dirname(os.path.abspath(path))):
+        raise UsageError(f"{option} {path!r} is in a folder that does not exist; give a new file in an existing folder")
+
+
+def _write_new(path: str, option: str, text: str) -> None:
+    """Write ``text`` to the new file ``path``; never over an existing one."""
+    try:
+        with open(path, "x", newline="") as fh:
+            fh.write(text)
+    except FileExistsError:
+        raise UsageError(f"{option} {path!r} already exists; choose a new file name") from None
+    except OSError as exc:
+        raise UsageError(f"{option} {path!r} cannot be created ({exc.strerror or type(exc).__name__})") from None
 
 
 def _front_plot(args, rows) -> bytes:
@@ -182,16 +256,26 @@ def _front_plot(args, rows) -> bytes:
 
 def cmd_distance(args) -> int:
     from ._distance import distance
-    from ._io import load_graph
+    from ._graph import shift_operator
+    from ._io import read_graph
 
-    a = load_graph(args.graph_a, args.shift, **_csv_options(args))
-    b = load_graph(args.graph_b, args.shift, **_csv_options(args))
-    d = distance(a, b, align_nodes=args.align)
-    out = d.as_dict()
+    if args.save_perm is not None:
+        if not args.align:
+            raise UsageError("--save-perm needs --align (without it the node order is the given one)")
+        _check_new_file(args.save_perm, "--save-perm")
+    opts = _csv_options(args)
+    (ma, ids_a), (mb, ids_b) = read_graph(args.graph_a, **opts), read_graph(args.graph_b, **opts)
+    a = shift_operator(ma, args.shift, name=f"graph file {args.graph_a!r}")
+    b = shift_operator(mb, args.shift, name=f"graph file {args.graph_b!r}")
+    with _float64("distance"):
+        d = distance(a, b, align_nodes=args.align)
+        out = d.as_dict()
+    check_finite(out, "distance")
     out.update({"nodes": a.nodes, "graph_a": args.graph_a, "graph_b": args.graph_b})
+    if args.save_perm is not None:
+        _write_new(args.save_perm, "--save-perm", perm_text(d.alignment.perm, ids_a, ids_b))
     if args.json:
-        json.dump(out, sys.stdout)
-        sys.stdout.write("\n")
+        _print_json(out, "distance")
         return 0
     print(distance_text(d, args.graph_a, args.graph_b, a.nodes, args.align))
     return 0
@@ -213,6 +297,9 @@ def cmd_stress(args) -> int:
         # refuse rather than fail half-way.
         raise UsageError(f"run {args.run!r} regresses {run.spec.outputs} outputs; stress measures runs with one "
                          "regression output or classification only (certify works on it)")
+    if run.spec.readout == "flat" and "relabel" in kinds:
+        raise UsageError(f"run {args.run!r} has a flat readout, whose certificate keeps the node order "
+                         "(docs/theory.md s.8.1); leave relabel out of --kinds")
     eps = _eps_list(args.eps, positive=True) or [float(e) for e in run.config["certify"]["eps"]]
     show = None if args.json else (lambda m: print(m, flush=True))
     rows = stress_run(run, eps, kinds=kinds, samples=args.samples, attack_signals=2 if args.attack else 0,
@@ -228,8 +315,7 @@ def cmd_stress(args) -> int:
         set_aside(path)  # an earlier result is kept as stress.json.previous
         write_json(path, {**result, "saved": now(), "samples": args.samples, "kinds": kinds})
     if args.json:
-        json.dump(result, sys.stdout)
-        sys.stdout.write("\n")
+        _print_json(result, "stress result")
     else:
         metric = "acc" if run.manifest.get("task", "classify") == "classify" else "rmse"
         print(stress_text(rows, metric, run.manifest.get("rho")))
@@ -259,13 +345,23 @@ def cmd_demo(args) -> int:
         raise UsageError(f"--epochs must be at least 1; got {args.epochs}")
     if args.out and os.path.exists(args.out) and not os.path.isdir(args.out):
         raise UsageError(f"--out {args.out!r} is a file; expected a folder for the demo's runs")
-    return run_demo(args.out, args.epochs)
+    return run_demo(args.out, args.epochs, progress=_progress(args))
+
+
+def _add_log_options(p, every: int) -> None:
+    p.add_argument("--log-every", type=int, default=None, metavar="N",
+                   help=f"print every N-th epoch's line, besides the first and last (default {every})")
+    p.add_argument("--quiet", action="store_true", help="print no epoch lines, only the final result")
+    p.set_defaults(log_default=every)
 
 
 def build_parser() -> argparse.ArgumentParser:
     from ._graph import KINDS
+    from ._version import __version__
 
     p = _Parser(prog="stablefilt", description="Stability certificates for graph filters and GNNs.")
+    p.add_argument("--version", action="version", version=f"stablefilt {__version__}",
+                   help="print the version and exit")
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
     b = sub.add_parser("bound", help="certify a filter on a graph")
     b.add_argument("graph", help=".npy dense matrix, .npz from scipy.sparse.save_npz, or .csv edge list (docs/data.md)")
@@ -278,51 +374,59 @@ def build_parser() -> argparse.ArgumentParser:
     _add_csv_options(b)
     b.set_defaults(func=cmd_bound)
     t = sub.add_parser("train", help="train a model from a TOML config")
-    t.add_argument("config")
+    t.add_argument("config", help="TOML config (configs/*.toml, docs/data.md)")
     t.add_argument("--out", help="run directory (default runs/<name>)")
-    t.add_argument("--epochs", type=int)
-    t.add_argument("--seed", type=int)
+    t.add_argument("--epochs", type=int, help="train this many epochs instead of the config's [train] epochs")
+    t.add_argument("--seed", type=int, help="seed for initialisation and batches instead of the config's")
     t.add_argument("--resume", action="store_true", help="continue from the run's last checkpoint")
     t.add_argument("--force", action="store_true", help="write into an existing run directory")
+    _add_log_options(t, 1)
     t.set_defaults(func=cmd_train)
     c = sub.add_parser("certify", help="recompute a trained model's certificate in float64")
-    c.add_argument("run")
-    c.add_argument("--eps", action="append")
-    c.add_argument("--json", action="store_true")
+    c.add_argument("run", help="run directory written by train")
+    c.add_argument("--eps", action="append", help="relative perturbation size; repeat for several (default: the config's)")
+    c.add_argument("--json", action="store_true", help="print one JSON object")
     c.add_argument("--same-kind", action="store_true", help="assume the deployed graph is rebuilt as the same kind of operator, so its spectrum lies in that kind's interval; recorded with the certificate")
     c.set_defaults(func=cmd_certify)
     m = sub.add_parser("compare", help="compare runs on accuracy and certified bound")
-    m.add_argument("runs", nargs="+")
-    m.add_argument("--json", action="store_true")
-    m.add_argument("--csv", help="also write the table to this new CSV file")
+    m.add_argument("runs", nargs="+", help="run directories written by train")
+    m.add_argument("--json", action="store_true", help="print one JSON list, one object per run")
+    m.add_argument("--csv", help="also write the comparison to this new CSV file (raw full-precision numbers, "
+                   "the metric's name in its own column)")
+    m.add_argument("--sort", action="store_true", help="order the runs by the certified bound at the smallest eps, "
+                   "then by the test metric (default: the order given)")
     m.add_argument("--plot", help="also draw the accuracy-stability front into this new .png, .svg or .pdf file")
     m.add_argument("--eps", action="append", help="eps of the front (default: the smallest eps all runs hold)")
     m.set_defaults(func=cmd_compare)
     g = sub.add_parser("distance", help="relative distance between two graphs")
-    g.add_argument("graph_a")
-    g.add_argument("graph_b")
+    g.add_argument("graph_a", help="the first graph S (.npy, .npz or .csv edge list)")
+    g.add_argument("graph_b", help="the second graph S_hat, written as S + E S + S E")
     g.add_argument("--align", action="store_true", help="align node order first (the result is an upper bound)")
-    g.add_argument("--shift", choices=KINDS, default="as-is")
+    g.add_argument("--shift", choices=KINDS, default="as-is", help="build this kind of shift operator from both graphs")
     g.add_argument("--json", action="store_true", help="print one JSON object (with the permutation when aligned)")
+    g.add_argument("--save-perm", metavar="FILE", help="with --align: write the permutation to this new CSV file "
+                   "(graph_a_index,graph_b_index[,graph_a_id,graph_b_id] per node of graph_a)")
     _add_csv_options(g)
     g.set_defaults(func=cmd_distance)
     st = sub.add_parser("stress", help="hold a run's certificates against perturbed graphs and attacks")
-    st.add_argument("run")
-    st.add_argument("--eps", action="append")
-    st.add_argument("--samples", type=int, default=5)
+    st.add_argument("run", help="run directory written by train")
+    st.add_argument("--eps", action="append", help="relative perturbation size; repeat for several (default: the config's)")
+    st.add_argument("--samples", type=int, default=5, help="random perturbations per eps and kind (default 5)")
     st.add_argument("--attack", action="store_true", help="also search for the worst perturbation")
-    st.add_argument("--kinds", default="relative,diagonal,scaling,edges")
-    st.add_argument("--json", action="store_true")
+    st.add_argument("--kinds", default="relative,diagonal,scaling,edges",
+                    help="comma-separated kinds of random perturbation (default relative,diagonal,scaling,edges)")
+    st.add_argument("--json", action="store_true", help="print one JSON object")
     st.add_argument("--save", action="store_true", help="also write the results to stress.json in the run folder")
     st.set_defaults(func=cmd_stress)
     r = sub.add_parser("report", help="draw runs' figures and write one self-contained HTML page")
-    r.add_argument("runs", nargs="+")
+    r.add_argument("runs", nargs="+", help="run directories written by train")
     r.add_argument("--out", help="folder for report.html and the PNGs (default <first run>/report)")
     r.add_argument("--eps", action="append", help="eps of the front (default: the smallest eps all runs hold)")
     r.set_defaults(func=cmd_report)
     d = sub.add_parser("demo", help="train the orchard demo with and without the penalty and compare")
     d.add_argument("--out", help="folder for the two runs (default runs/demo-<time>)")
     d.add_argument("--epochs", type=int, help="train each run this many epochs instead of the configs' 40")
+    _add_log_options(d, 10)
     d.set_defaults(func=cmd_demo)
     return p
 
@@ -331,7 +435,11 @@ def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        return int(args.func(args) or 0)
+        status = int(args.func(args) or 0)
+        sys.stdout.flush()  # a closed pipe shows here, not at exit
+        return status
+    except BrokenPipeError:
+        return _closed_pipe()
     except TrainingDiverged as exc:
         print(f"stablefilt {args.command}: {str(exc).rstrip('.')}.", file=sys.stderr)
         return 1
@@ -342,6 +450,22 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("stablefilt: interrupted.", file=sys.stderr)
         return 130
+
+
+#: Exit status when the reader of stdout went away (``| head``): 128 + SIGPIPE,
+#: what the shell reports for a program the signal ended.
+CLOSED_PIPE = 141
+
+
+def _closed_pipe() -> int:
+    """End quietly after the reader closed stdout: point stdout at the null
+    device so the interpreter's final flush raises nothing."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):  # stdout without a file descriptor (captured)
+        pass
+    return CLOSED_PIPE
 
 
 if __name__ == "__main__":

@@ -9,7 +9,7 @@ import os
 from ._config import load_config
 from ._errors import ConfigError
 from ._runs import compare_rows
-from ._text import CAUTION, compare_table, table
+from ._text import CAUTION, compare_table, progress_printer, table
 from ._train import train
 
 CONFIGS = ("configs/demo.toml", "configs/no-penalty.toml")
@@ -27,7 +27,10 @@ def _find(config: str) -> str:
                       "run the demo from the project folder.")
 
 
-def run_demo(out: str | None = None, epochs: int | None = None) -> int:
+def run_demo(out: str | None = None, epochs: int | None = None, progress=None) -> int:
+    """Train the two demo configs into ``out`` and print their comparison;
+    ``progress`` receives each run's messages (default: every 10th epoch)."""
+    progress = progress or progress_printer(10)
     configs = [_find(c) for c in CONFIGS]
     stamp = datetime.datetime.now().strftime("%Y%m%d-%H%M%S")
     out = out or os.path.join("runs", f"demo-{stamp}")
@@ -36,7 +39,7 @@ def run_demo(out: str | None = None, epochs: int | None = None) -> int:
         config = load_config(c)
         path = os.path.join(out, config.name)
         print(f"== training {config.name} ({c}) into {path}", flush=True)
-        train(config, path, epochs=epochs, progress=_every(10))
+        train(config, path, epochs=epochs, progress=progress)
         runs.append(path)
     print("\n== comparison (test accuracy vs certified bound for inputs with ||x|| <= rho)")
     header, lines = compare_table(compare_rows(runs))
@@ -44,17 +47,3 @@ def run_demo(out: str | None = None, epochs: int | None = None) -> int:
     print("\n" + CAUTION)
     return 0
 
-
-def _every(n):
-    """Progress filter: the first epoch, every ``n``-th, and other messages."""
-
-    def show(msg):
-        words = msg.split()
-        if words[:1] != ["epoch"]:
-            print(msg, flush=True)
-            return
-        done = int(words[1].split("/")[0])
-        if done == 1 or done % n == 0:
-            print(msg, flush=True)
-
-    return show

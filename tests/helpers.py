@@ -65,6 +65,8 @@ def ref_model(params, s, x, *, kind, interval, nonlinearity, readout, final_nonl
         z = z.mean(axis=1)
     elif readout == "sum":
         z = z.sum(axis=1)
+    elif readout == "flat":
+        z = np.stack([np.concatenate(list(zi)) for zi in z])  # node 0's features, then node 1's, ...
     return z @ w + b
 
 

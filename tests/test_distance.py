@@ -18,6 +18,7 @@ Sources of the check values:
 
 from __future__ import annotations
 
+import csv
 import os
 import subprocess
 import sys
@@ -344,3 +345,45 @@ def test_cli_distance_exit_status_from_the_shell(graph_files, tmp_path):
                        text=True, cwd=tmp_path, timeout=120)
     assert r.returncode == 2 and r.stdout == ""
     _one_sentence(r.stderr)
+
+
+def test_cli_distance_save_perm(graph_files, tmp_path, capsys):
+    """The saved permutation undoes the relabelling of the karate club
+    (networkx): graph_b's rows and columns taken in the saved order equal
+    graph_a exactly, and it equals --json's perm."""
+    path = tmp_path / "perm.csv"
+    rc = main(["distance", graph_files["A"], graph_files["P"], "--align", "--json", "--save-perm", str(path)])
+    out, _ = capsys.readouterr()
+    assert rc == 0
+    rows = list(csv.DictReader(open(path, newline="")))
+    assert [int(r["graph_a_index"]) for r in rows] == list(range(34))
+    perm = np.array([int(r["graph_b_index"]) for r in rows])
+    assert perm.tolist() == H.strict_json(out)["alignment"]["perm"]
+    b = np.load(graph_files["P"])
+    assert np.array_equal(b[perm][:, perm], KARATE)
+    # An existing file is refused before any work: one sentence, unchanged.
+    before = path.read_bytes()
+    rc = main(["distance", graph_files["A"], graph_files["P"], "--align", "--save-perm", str(path)])
+    out, err = capsys.readouterr()
+    assert rc == 2 and out == "" and "already exists" in err
+    _one_sentence(err)
+    assert path.read_bytes() == before
+
+
+def test_cli_distance_save_perm_needs_align(graph_files, tmp_path, capsys):
+    rc = main(["distance", graph_files["A"], graph_files["P"], "--save-perm", str(tmp_path / "p.csv")])
+    out, err = capsys.readouterr()
+    assert rc == 2 and "--align" in err and not (tmp_path / "p.csv").exists()
+    _one_sentence(err)
+
+
+def test_cli_distance_save_perm_with_node_ids(tmp_path, capsys):
+    """Edge lists naming their nodes: the saved rows carry the IDs, and each
+    ID is matched to itself when graph_b lists the same edges in another
+    order (so its nodes are read in another order)."""
+    a = H.write(tmp_path / "a.csv", "src,dst\nST-1,ST-2\nST-2,ST-3\nST-3,ST-4\nST-4,ST-1\nST-1,ST-3\n")
+    b = H.write(tmp_path / "b.csv", "src,dst\nST-3,ST-4\nST-4,ST-1\nST-1,ST-3\nST-2,ST-3\nST-1,ST-2\n")
+    path = tmp_path / "perm.csv"
+    assert main(["distance", a, b, "--align", "--save-perm", str(path)]) == 0
+    rows = list(csv.DictReader(open(path, newline="")))
+    assert len(rows) == 4 and all(r["graph_a_id"] == r["graph_b_id"] for r in rows)

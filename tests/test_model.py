@@ -32,7 +32,7 @@ from stablefilt import (
 )
 
 NONLINS = ("relu", "leaky_relu", "tanh", "none")
-READOUTS = ("node", "mean", "sum", "none")
+READOUTS = ("node", "mean", "sum", "flat", "none")
 
 
 @pytest.fixture(scope="module")
@@ -58,7 +58,8 @@ def _random_params(spec, seed, scale=0.5, bias_scale=0.3):
             layer["bias"] = bias_scale * rng.standard_normal(fout)
         out["layers"].append(layer)
     if spec.readout != "none":
-        out["readout"] = {"weight": scale * rng.standard_normal((spec.features[-1], spec.outputs)),
+        rows = spec.features[-1] * (spec.nodes if spec.readout == "flat" else 1)
+        out["readout"] = {"weight": scale * rng.standard_normal((rows, spec.outputs)),
                           "bias": scale * rng.standard_normal(spec.outputs)}
     return out
 
@@ -77,7 +78,7 @@ def _f32(params):
 def test_forward_float32_matches_float64(karate, basis, nonlinearity, readout):
     op, iv = karate
     spec = ModelSpec((2, 4, 3), taps=4, basis=_basis(basis, iv), nonlinearity=nonlinearity, readout=readout,
-                     outputs=3)
+                     outputs=3, nodes=op.nodes if readout == "flat" else 0)
     params = _random_params(spec, seed=11)
     # Round the params to float32 first so both paths see the same numbers.
     p32 = _f32(params)
@@ -85,7 +86,8 @@ def test_forward_float32_matches_float64(karate, basis, nonlinearity, readout):
     x = rng.standard_normal((3, op.nodes, 2)).astype(np.float32)
     y32 = np.asarray(forward(p32, jax_operator(op), jnp.asarray(x), spec))
     y64 = forward_np(p32, op.matrix, x, spec)
-    expected_shape = {"node": (3, op.nodes, 3), "mean": (3, 3), "sum": (3, 3), "none": (3, op.nodes, 3)}[readout]
+    expected_shape = {"node": (3, op.nodes, 3), "mean": (3, 3), "sum": (3, 3), "flat": (3, 3),
+                      "none": (3, op.nodes, 3)}[readout]
     assert y32.shape == y64.shape == expected_shape
     assert y32.dtype == np.float32 and y64.dtype == np.float64
     # float32 vs float64: ~1e-5 relative to the output's scale (house style).
@@ -201,7 +203,8 @@ def test_init_is_deterministic_and_laid_out_as_documented():
 
 
 @pytest.mark.parametrize("kw", [dict(features=(3,)), dict(features=(3, 0)), dict(taps=0),
-                                dict(nonlinearity="sigmoid"), dict(readout="max"), dict(outputs=0)])
+                                dict(nonlinearity="sigmoid"), dict(readout="max"), dict(outputs=0),
+                                dict(readout="flat")])
 def test_model_spec_rejects_bad_architecture(kw):
     args = dict(features=(2, 3))
     args.update(kw)
@@ -240,7 +243,11 @@ def _cases():
                                                            (True, False))):
         cases.append(dict(graph=g, kind=kinds[i % 4], basis=basis, bias=bias, nonlinearity=nonlins[i % 3],
                           layers=int(rng.integers(1, 4)), width=int(rng.integers(2, 5)), taps=int(rng.integers(2, 5)),
-                          readout=READOUTS[(i // 3) % 4], seed=i))
+                          readout=("node", "mean", "sum", "none")[(i // 3) % 4], seed=i))
+    # The flat readout (theory s.8.1) on every graph, with the node order kept.
+    for i, g in enumerate(sorted(_graphs())):
+        cases.append(dict(graph=g, kind=kinds[(i + 1) % 4], basis=("monomial", "chebyshev")[i % 2], bias=i % 2 == 0,
+                          nonlinearity=nonlins[i % 3], layers=1 + i % 2, width=3, taps=3, readout="flat", seed=100 + i))
     return cases
 
 
@@ -296,7 +303,7 @@ def test_measured_change_never_exceeds_certificate(graph_ops, case):
     n = op.nodes
     spec = ModelSpec(tuple([2] + [case["width"]] * case["layers"]), taps=case["taps"],
                      basis=_basis(case["basis"], iv), nonlinearity=case["nonlinearity"], bias=case["bias"],
-                     readout=case["readout"], outputs=2)
+                     readout=case["readout"], outputs=2, nodes=n if case["readout"] == "flat" else 0)
     params = _random_params(spec, seed=case["seed"], scale=0.6)
     cert = certify_model(params, spec, iv, n, EPS, rho=RHO, eigenvalues=iv.eigenvalues)
     cert_iv = certify_model(params, spec, iv, n, EPS, rho=RHO)  # interval only (the per-epoch form)
@@ -318,6 +325,8 @@ def test_measured_change_never_exceeds_certificate(graph_ops, case):
         # operator-level one for inputs of norm rho.
         assert np.all(per_norms <= bound * (1 + 1e-9)) and np.all(per_spec <= per_norms * (1 + 1e-9))
         for label, s_hat, perm in _perturbed_graphs(rng, s, eps, v):
+            if perm is not None and spec.readout == "flat":
+                continue  # the flat readout's certificate assumes the node order is kept (P = I)
             d = H.change_norms(y, _measure(params, spec, s_hat, perm, x))
             assert d.max() <= bound, (label, eps, d.max(), bound)
             assert np.all(d <= per_norms), (label, eps, d, per_norms)
@@ -369,3 +378,24 @@ def test_linear_models_worst_input_stays_below_certificate(graph_ops, graph, kin
     # probe the bound, not only its neighbourhood of zero.
     print(f"tightest change / certificate: {tightest:.3f}")
     assert tightest > 0.1
+
+
+def test_flat_readout_factor_is_the_weight_spectral_norm(karate):
+    """theory s.8.1: the flat readout is linear in vec(x_L), so its factor is
+    ||W_flat||_2 (numpy.linalg.norm(., 2), the reference; within the
+    round-off allowance, about 1e-9), and the worst change of the readout alone
+    (the top right singular vector of W_flat as Delta x_L) attains it."""
+    from stablefilt._modelcert import readout_factor
+
+    op, iv = karate
+    spec = ModelSpec((2, 3), taps=3, basis=_basis("chebyshev", iv), readout="flat", outputs=4, nodes=op.nodes)
+    params = _random_params(spec, seed=21)
+    w = params["readout"]["weight"]
+    assert w.shape == (op.nodes * 3, 4)
+    ref = np.linalg.norm(w, 2)
+    got = readout_factor(params, spec, op.nodes)
+    assert ref <= got <= ref * (1 + 1e-8)  # the allowance covers the float64 norm's round-off
+    _, sv, vt = np.linalg.svd(w.T)
+    dx = vt[0].reshape(op.nodes, 3)  # unit Frobenius norm, node-major as the readout reads it
+    change = np.linalg.norm(dx.reshape(-1) @ w)
+    assert change == pytest.approx(ref, rel=1e-12) and change <= got

@@ -425,3 +425,29 @@ def test_digits_files_match_the_source_counts(tmp_path):
     assert a.shape == (64, 64) and np.allclose(a, a.T) and not np.allclose(a, b)
     d = distance(sf.shift_operator(a, "normalized-laplacian"), sf.shift_operator(b, "normalized-laplacian"))
     assert d.additive > 0 and np.isfinite(d.relative)
+
+
+def test_minnesota_files_match_the_source_counts(tmp_path):
+    """The road network from pygsp's data file (read with scipy.io.loadmat):
+    2642 intersections, as pygsp's documentation of its Minnesota graph
+    states (from memory); the edge count and the two connected components are
+    checked against networkx on the same matrix."""
+    import importlib.util
+
+    if importlib.util.find_spec("pygsp") is None:  # found, never imported
+        pytest.skip("pygsp (the test extra) is not installed")
+    from stablefilt.datasets import read_minnesota, write_minnesota
+
+    a, xy = read_minnesota()
+    assert a.shape == (2642, 2642) and xy.shape == (2642, 2)
+    g = nx.from_scipy_sparse_array(a)
+    assert g.number_of_nodes() == 2642 and g.number_of_edges() == a.nnz // 2 == 3303
+    assert sorted(len(c) for c in nx.connected_components(g)) == [2, 2640]
+    assert "pygsp" not in sys.modules  # the package is only a carrier of the data file
+    cfg = write_minnesota(str(tmp_path), samples=12)
+    x, y = np.load(tmp_path / "minnesota-x.npy"), np.load(tmp_path / "minnesota-y.npy")
+    assert x.shape == y.shape == (12, 2642) and np.allclose(np.max(np.abs(y), axis=1), 1.0)
+    seen = x != 0
+    assert 0.2 < seen.mean() < 0.4  # the observed share, 0.3
+    config = sf.load_config(cfg)
+    assert config["data"]["task"] == "regress"

@@ -125,7 +125,7 @@ def test_compare_json_sorted_by_certified_bound(runs, capsys):
     plain, pen = runs
     orders = []
     for argv in ([plain, pen], [pen, plain]):
-        rows = _json_out(capsys, ["compare", *argv, "--json"])
+        rows = _json_out(capsys, ["compare", *argv, "--json", "--sort"])
         assert isinstance(rows, list) and len(rows) == 2 and all(isinstance(r, dict) for r in rows)
         bounds = [_first_bound(r) for r in rows]
         assert bounds == sorted(bounds)
@@ -138,21 +138,43 @@ def test_compare_json_sorted_by_certified_bound(runs, capsys):
     assert orders[0] == orders[1] == [pen, plain]  # the penalised run has the smaller bound
 
 
+def test_compare_json_keeps_the_given_order(runs, capsys):
+    plain, pen = runs
+    for argv in ([plain, pen], [pen, plain]):
+        rows = _json_out(capsys, ["compare", *argv, "--json"])
+        assert [r["run"] for r in rows] == argv
+
+
 def test_compare_table_and_csv(runs, tmp_path, capsys):
+    """The CSV holds raw full-precision numbers (equal to summary.json's, the
+    reference), the metric's name in its own column, rows in the given order;
+    the text table follows the same order unless --sort."""
     plain, pen = runs
     path = tmp_path / "cmp.csv"
     capsys.readouterr()
     assert cli.main(["compare", plain, pen, "--csv", str(path)]) == 0
     out = capsys.readouterr().out
-    assert "tiny-penalised" in out and "tiny-plain" in out
-    assert out.index("tiny-penalised") < out.index("tiny-plain")
+    assert out.index("tiny-plain") < out.index("tiny-penalised")
     with open(path, newline="") as fh:
         table = list(csv.reader(fh))
     header, body = table[0], table[1:]
-    assert len(body) == 2 and [r[0] for r in body] == ["tiny-penalised", "tiny-plain"]
+    assert len(body) == 2 and [r[header.index("name")] for r in body] == ["tiny-plain", "tiny-penalised"]
     assert "certified@0.001" in header and "certified@0.01" in header
-    col = header.index("certified@0.001")
-    assert float(body[0][col]) <= float(body[1][col])
+    for row, run in zip(body, (plain, pen)):
+        summary = json.load(open(os.path.join(run, "summary.json")))
+        assert row[header.index("run")] == run
+        assert row[header.index("metric")] == "acc"
+        assert float(row[header.index("test_value")]) == summary["metrics"]["test_acc"]  # exact, not rounded
+        assert float(row[header.index("certified@0.001")]) == summary["certificate"]["certified"]["0.001"]
+        assert int(row[header.index("kept_epoch")]) == summary["kept_epoch"]
+    sorted_path = tmp_path / "sorted.csv"
+    capsys.readouterr()
+    assert cli.main(["compare", plain, pen, "--csv", str(sorted_path), "--sort"]) == 0
+    out = capsys.readouterr().out
+    assert out.index("tiny-penalised") < out.index("tiny-plain")  # the penalised run has the smaller bound
+    with open(sorted_path, newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert [r["name"] for r in rows] == ["tiny-penalised", "tiny-plain"]
     # Refuses to overwrite: status 2, one line, file unchanged.
     before = (path.read_bytes(), os.stat(path).st_mtime_ns)
     line = _one_line_exit_2(capsys, ["compare", plain, pen, "--csv", str(path)])
