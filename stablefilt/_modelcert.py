@@ -289,7 +289,8 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
     comp = constants.composition
     bounds = tuple(model_bounds(constants, eps, rho=rho, delta=delta) for eps in eps_list)
     assumptions = {
-        "perturbation_model": MODEL,
+        "perturbation_model": MODEL if spec.readout != "flat" else
+        MODEL.replace("P a permutation", "P = I (a flat readout keeps the node order; theory s.8.1)"),
         "norm": NORM + "; model output in the Frobenius norm",
         "inputs": f"every input with ||x||_F <= rho = {rho:.6g}",
         "spectral_interval": [float(interval.lower), float(interval.upper)],

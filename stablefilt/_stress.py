@@ -18,6 +18,7 @@ import numpy as np
 
 from ._attack import DENSE_ATTACK_LIMIT, attack
 from ._distance import DISTANCE_LIMIT, sylvester_relative
+from ._errors import StablefiltError
 from ._model import forward_np
 from ._modelcert import certify_inputs, model_bounds
 from ._perturb import DENSE_LIMIT, diagonal, jitter, relabel, relative, scaling
@@ -107,6 +108,9 @@ def stress_run(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_
     """Stress a run; see the module docstring. ``attack_signals > 0`` also
     attacks that many test signals (and one free input) per eps. The model's
     constants are computed once for every eps and sample."""
+    if run.spec.readout == "flat" and "relabel" in kinds:
+        raise StablefiltError(f"run {run.path!r} has a flat readout, whose certificate keeps the node order "
+                              "(docs/theory.md s.8.1); leave relabel out of the kinds.")
     spectrum = run_spectrum(run)
     constants = run_constants(run, spectrum)
     iv, lam, vecs, rho = spectrum.interval, spectrum.eigenvalues, spectrum.eigenvectors, spectrum.rho

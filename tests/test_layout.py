@@ -15,7 +15,7 @@ import pytest
 PACKAGE = "stablefilt"
 ROOT = pathlib.Path(__file__).resolve().parent.parent / PACKAGE
 
-CORE = ("_joint", "_balance", "_compose", "_graph", "_interval", "_filters", "_exact", "_series", "_kernel", "_filterbounds", "_certify", "_modelcert")
+CORE = ("_joint", "_inputworst", "_balance", "_compose", "_graph", "_interval", "_filters", "_exact", "_series", "_kernel", "_filterbounds", "_certify", "_modelcert")
 NOT_IN_CORE = ("_train", "cli", "demo")
 EXTRAS = ("matplotlib", "tqdm", "rich", "dask", "distributed", "pymetis", "equinox", "flax", "hypothesis")
 
