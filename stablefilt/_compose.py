@@ -217,12 +217,13 @@ def clean_norm(n_prev: float, gain: float, cross: float | None, bias_norm: float
 @dataclasses.dataclass(frozen=True)
 class LayerChanges:
     """Per-layer bank changes at one eps, the gains over ``spec S_hat``, and
-    the readout composite's change and gain (or None)."""
+    the readout composite's change, gain and per-filter remainders (or None)."""
 
     changes: tuple[BankChange, ...]
     gains_hat: tuple[float, ...]
     readout_change: BankChange | None
     readout_gain_hat: float | None
+    readout_remainder: np.ndarray | None = None
 
 
 def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChanges:
@@ -241,7 +242,7 @@ def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChan
         changes.append(bank_change(layer["taps"], spec.basis, eps, first_order=lb.beta - lb.remainder,
                                    remainder=lb.remainder, joint=extra.joint.constant, radius=cc.radius,
                                    path_cover=pcover, gains=(lb.gain, b_hat)))
-    rc, rg = None, None
+    rc, rg, rr = None, None, None
     if cc.readout is not None:
         ro = cc.readout
         rg, _ = gain_constants(ro.taps, spec.basis, wide)
@@ -249,8 +250,8 @@ def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChan
         rc = bank_change(ro.taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
                          joint=ro.joint.constant, radius=cc.radius, path_cover=pcover,
                          gains=(float(ro.filters.bank_sup), rg))
-        rg = float(rg)
-    return LayerChanges(tuple(changes), tuple(gains_hat), rc, rg)
+        rg, rr = float(rg), np.asarray(fb.remainder)
+    return LayerChanges(tuple(changes), tuple(gains_hat), rc, rg, rr)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -312,10 +313,9 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
     out = rf * e_last
     if cc.readout is not None and lc.readout_change is not None:
         alpha_l = cc.slope_low if spec.final_nonlinearity else 1.0
-        fb = filter_bounds(cc.readout.taps, spec.basis, (mc.interval.lower, mc.interval.upper), eps,
-                           cc.readout.filters, mc.eigenvalues)
         right = None if cc.readout.right is None else eps * cc.readout.right
-        dw = _through(spec.depth - 1, lc.readout_change.certified, combine(fb.remainder), right, cc, norms, gains, ca, cb)
+        dw = _through(spec.depth - 1, lc.readout_change.certified, combine(lc.readout_remainder), right, cc, norms,
+                      gains, ca, cb)
         through = dw + lc.readout_gain_hat * e
         out = min(out, 0.5 * (1 + alpha_l) * through + 0.5 * (1 - alpha_l) * cc.weight_norm * e_last)
     trivial = rf * (norms[-1] + norms_hat[-1])
@@ -403,9 +403,8 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
     ro = cc.readout
     dw = lc.readout_change.certified * np.sqrt(np.sum(last_in**2, axis=(1, 2)))
     if use_spec:
-        fb = filter_bounds(ro.taps, spec.basis, (mc.interval.lower, mc.interval.upper), eps, ro.filters, lam)
         feat = np.sqrt(np.sum(last_in**2, axis=1))
-        remw = np.linalg.norm(feat @ np.asarray(fb.remainder), axis=1) * (1 + REL_ALLOW)
+        remw = np.linalg.norm(feat @ lc.readout_remainder, axis=1) * (1 + REL_ALLOW)
         dw = np.minimum(dw, input_first_order(ro.joint, lam, eigenvectors, last_in, eps) + remw)
         if worst:
             first = eps * input_worst(ro.taps, spec.basis, lam, eigenvectors, last_in, cc.slack)
