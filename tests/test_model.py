@@ -294,6 +294,13 @@ def _measure(params, spec, s_hat, perm, x):
     return y
 
 
+def case_spec(case, iv, n) -> ModelSpec:
+    """The :class:`ModelSpec` of one of :data:`CASES` on a graph of ``n`` nodes."""
+    return ModelSpec(tuple([2] + [case["width"]] * case["layers"]), taps=case["taps"],
+                     basis=_basis(case["basis"], iv), nonlinearity=case["nonlinearity"], bias=case["bias"],
+                     readout=case["readout"], outputs=2, nodes=n if case["readout"] == "flat" else 0)
+
+
 @pytest.mark.parametrize("case", CASES, ids=lambda c: f"{c['graph']}-{c['kind']}-{c['basis']}-"
                          f"{'bias' if c['bias'] else 'nobias'}-{c['nonlinearity']}-L{c['layers']}F{c['width']}"
                          f"-{c['readout']}")
@@ -301,9 +308,7 @@ def test_measured_change_never_exceeds_certificate(graph_ops, case):
     op, iv = graph_ops[case["graph"], case["kind"]]
     s = op.dense()
     n = op.nodes
-    spec = ModelSpec(tuple([2] + [case["width"]] * case["layers"]), taps=case["taps"],
-                     basis=_basis(case["basis"], iv), nonlinearity=case["nonlinearity"], bias=case["bias"],
-                     readout=case["readout"], outputs=2, nodes=n if case["readout"] == "flat" else 0)
+    spec = case_spec(case, iv, n)
     params = _random_params(spec, seed=case["seed"], scale=0.6)
     cert = certify_model(params, spec, iv, n, EPS, rho=RHO, eigenvalues=iv.eigenvalues)
     cert_iv = certify_model(params, spec, iv, n, EPS, rho=RHO)  # interval only (the per-epoch form)

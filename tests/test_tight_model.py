@@ -11,7 +11,7 @@ from __future__ import annotations
 import helpers as H
 import numpy as np
 import pytest
-from test_model import CASES, _basis, _measure, _perturbed_graphs, _random_params, graph_ops  # noqa: F401
+from test_model import CASES, _basis, _measure, _perturbed_graphs, _random_params, case_spec, graph_ops  # noqa: F401
 
 from stablefilt import ModelSpec, certify_inputs, certify_model, model_bounds, model_constants
 from stablefilt._compose import composed_bound
@@ -29,9 +29,7 @@ def test_tighter_model_certificate_holds(graph_ops, case):  # noqa: F811
     op, iv = graph_ops[case["graph"], case["kind"]]
     s = op.dense()
     n = op.nodes
-    spec = ModelSpec(tuple([2] + [case["width"]] * case["layers"]), taps=case["taps"],
-                     basis=_basis(case["basis"], iv), nonlinearity=case["nonlinearity"], bias=case["bias"],
-                     readout=case["readout"], outputs=2, nodes=n if case["readout"] == "flat" else 0)
+    spec = case_spec(case, iv, n)
     params = _random_params(spec, seed=case["seed"], scale=0.6)
     rebalance = case["seed"] % 4 == 0
     mc = model_constants(params, spec, iv, n, iv.eigenvalues, matrix=op.matrix, rebalance=rebalance)
