@@ -281,3 +281,18 @@ def read_jsonl(path):
 
     with open(path) as fh:
         return [json.loads(line) for line in fh if line.strip()]
+
+
+def one_line_exit_2(capsys, argv):
+    """Run the command line; it must exit 2 with one sentence on stderr and no
+    traceback (the project's bad-input rule). Returns that line."""
+    from stablefilt import cli
+
+    capsys.readouterr()
+    rc = cli.main(argv)
+    out, err = capsys.readouterr()
+    assert rc == 2, (out, err)
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in err, err
+    assert lines[0].startswith("stablefilt ") and lines[0].endswith(".")
+    return lines[0]

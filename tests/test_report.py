@@ -59,17 +59,6 @@ def _check_figure(fig, width_px, height_px):
     return img
 
 
-def _one_line_exit_2(capsys, argv):
-    capsys.readouterr()
-    rc = cli.main(argv)
-    out, err = capsys.readouterr()
-    assert rc == 2, (out, err)
-    lines = err.strip().splitlines()
-    assert len(lines) == 1 and "Traceback" not in err, err
-    assert lines[0].startswith("stablefilt ") and lines[0].endswith(".")
-    return lines[0]
-
-
 # ---------------------------------------------------------------------------
 # Figures
 
@@ -278,27 +267,27 @@ def test_report_of_one_run_default_out_and_no_stress(runs, tmp_path, capsys):
     assert f"stablefilt stress {copy} --save" in text and "Comparison" not in text
     # A second report into the same folder is refused and changes nothing.
     held = H.snapshot(out)
-    msg = _one_line_exit_2(capsys, ["report", copy])
+    msg = H.one_line_exit_2(capsys, ["report", copy])
     assert "already holds" in msg
     assert H.snapshot(out) == held
 
 
 def test_report_bad_input_changes_nothing(runs, tmp_path, capsys):
     out = tmp_path / "rep"
-    msg = _one_line_exit_2(capsys, ["report", runs[0], str(tmp_path / "missing"), "--out", str(out)])
+    msg = H.one_line_exit_2(capsys, ["report", runs[0], str(tmp_path / "missing"), "--out", str(out)])
     assert "missing" in msg and not out.exists()
     f = tmp_path / "afile"
     f.write_text("keep")
-    msg = _one_line_exit_2(capsys, ["report", runs[0], "--out", str(f)])
+    msg = H.one_line_exit_2(capsys, ["report", runs[0], "--out", str(f)])
     assert "is a file" in msg and f.read_text() == "keep"
     # Stress results in a form report cannot read: one line, nothing written.
     copy = str(tmp_path / "bad-stress")
     shutil.copytree(runs[0], copy)
     with open(os.path.join(copy, "stress.json"), "w") as fh:
         json.dump({"rows": [{"eps": "small"}]}, fh)
-    assert "stress --save" in _one_line_exit_2(capsys, ["report", copy, "--out", str(out)])
+    assert "stress --save" in H.one_line_exit_2(capsys, ["report", copy, "--out", str(out)])
     assert not out.exists()
-    assert "at most one" in _one_line_exit_2(capsys, ["report", runs[0], "--eps", "1e-3", "--eps", "1e-2",
+    assert "at most one" in H.one_line_exit_2(capsys, ["report", runs[0], "--eps", "1e-3", "--eps", "1e-2",
                                                       "--out", str(out)])
     assert not out.exists()
 
@@ -310,12 +299,12 @@ def test_compare_plot(runs, tmp_path, capsys):
     img = _pixels(plot.read_bytes())
     assert img.shape[:2] == (550, 1000) and float(np.var(img[..., :3])) > MIN_VARIANCE
     held = plot.read_bytes()
-    msg = _one_line_exit_2(capsys, ["compare", runs[0], runs[1], "--plot", str(plot)])
+    msg = H.one_line_exit_2(capsys, ["compare", runs[0], runs[1], "--plot", str(plot)])
     assert "already exists" in msg and plot.read_bytes() == held
-    msg = _one_line_exit_2(capsys, ["compare", runs[0], "--plot", str(tmp_path / "front.gif")])
+    msg = H.one_line_exit_2(capsys, ["compare", runs[0], "--plot", str(tmp_path / "front.gif")])
     assert ".png" in msg and not (tmp_path / "front.gif").exists()
     # The --csv file is not created when --plot is refused.
-    msg = _one_line_exit_2(capsys, ["compare", runs[0], "--plot", str(plot), "--csv", str(tmp_path / "t.csv")])
+    msg = H.one_line_exit_2(capsys, ["compare", runs[0], "--plot", str(plot), "--csv", str(tmp_path / "t.csv")])
     assert not (tmp_path / "t.csv").exists()
 
 

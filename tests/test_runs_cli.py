@@ -29,17 +29,6 @@ def _json_out(capsys, argv):
     return json.loads(lines[0])
 
 
-def _one_line_exit_2(capsys, argv):
-    capsys.readouterr()
-    rc = cli.main(argv)
-    out, err = capsys.readouterr()
-    assert rc == 2, (out, err)
-    lines = err.strip().splitlines()
-    assert len(lines) == 1 and "Traceback" not in err, err
-    assert lines[0].startswith("stablefilt ") and lines[0].endswith(".")
-    return lines[0]
-
-
 # ---------------------------------------------------------------------------
 # certify
 
@@ -94,7 +83,7 @@ def test_certify_text_report(runs, capsys):
 
 
 def test_certify_missing_run(tmp_path, capsys):
-    line = _one_line_exit_2(capsys, ["certify", str(tmp_path / "nowhere")])
+    line = H.one_line_exit_2(capsys, ["certify", str(tmp_path / "nowhere")])
     assert "does not exist" in line
 
 
@@ -103,13 +92,13 @@ def test_certify_half_written_run(runs, tmp_path, capsys):
     half = str(tmp_path / "half")
     shutil.copytree(runs[0], half)
     os.remove(os.path.join(half, "params.npz"))
-    line = _one_line_exit_2(capsys, ["certify", half])
+    line = H.one_line_exit_2(capsys, ["certify", half])
     assert "params.npz" in line
 
 
 def test_certify_folder_that_is_no_run(tmp_path, capsys):
     (tmp_path / "empty").mkdir()
-    line = _one_line_exit_2(capsys, ["certify", str(tmp_path / "empty")])
+    line = H.one_line_exit_2(capsys, ["certify", str(tmp_path / "empty")])
     assert "manifest" in line
 
 
@@ -177,11 +166,11 @@ def test_compare_table_and_csv(runs, tmp_path, capsys):
     assert [r["name"] for r in rows] == ["tiny-penalised", "tiny-plain"]
     # Refuses to overwrite: status 2, one line, file unchanged.
     before = (path.read_bytes(), os.stat(path).st_mtime_ns)
-    line = _one_line_exit_2(capsys, ["compare", plain, pen, "--csv", str(path)])
+    line = H.one_line_exit_2(capsys, ["compare", plain, pen, "--csv", str(path)])
     assert "exists" in line
     assert (path.read_bytes(), os.stat(path).st_mtime_ns) == before
 
 
 def test_compare_missing_run(runs, tmp_path, capsys):
-    line = _one_line_exit_2(capsys, ["compare", runs[0], str(tmp_path / "gone")])
+    line = H.one_line_exit_2(capsys, ["compare", runs[0], str(tmp_path / "gone")])
     assert "gone" in line
