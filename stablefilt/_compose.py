@@ -64,15 +64,17 @@ def change_cover(lam, interval, slack: float, deployed=None):
     deployed graph's interval when it keeps its kind (docs/theory.md 9.1)."""
     if lam is not None:
         return eigen_cover(lam, slack, deployed)
-    lo, hi = interval[0] - slack, interval[1] + slack
-    if deployed is not None:
-        lo, hi = max(lo, deployed[0]), min(hi, deployed[1])
-    return interval_cover(lo, hi)
+    return interval_cover(*_widen(interval, slack, deployed))
 
 
 def widened(interval, eps: float, radius: float, deployed=None) -> tuple[float, float]:
     """``[a - 2 eps R, b + 2 eps R]`` (Weyl), intersected with ``deployed``."""
-    lo, hi = interval[0] - 2 * eps * radius, interval[1] + 2 * eps * radius
+    return _widen(interval, 2 * eps * radius, deployed)
+
+
+def _widen(interval, by: float, deployed=None) -> tuple[float, float]:
+    """``[a - by, b + by]`` intersected with ``deployed`` when given."""
+    lo, hi = interval[0] - by, interval[1] + by
     if deployed is not None:
         lo, hi = max(lo, deployed[0]), min(hi, deployed[1])
     return lo, hi
