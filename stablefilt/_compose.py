@@ -352,8 +352,9 @@ def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eige
     through the last layer's activation pattern. The signal with the largest
     bound is bounded again with each bank's largest first-order change for its
     own input (:func:`stablefilt._inputworst.input_worst`, about a second per
-    bank and signal), until the largest bound is a refined one or ``refine``
-    signals are done. ``forward_layer(i, z) -> (pre, out)``
+    bank and signal) and with the whole network's change for that input
+    (:mod:`stablefilt._networst`, docs/theory.md 9.6, a few seconds), until
+    the largest bound is a refined one or ``refine`` signals are done. ``forward_layer(i, z) -> (pre, out)``
     runs layer ``i`` in float64; ``known[i]``, when given, are other valid
     bounds on layer ``i``'s change of these signals (the smaller is kept)."""
     lc = changes or layer_changes(mc, cc, bounds, eps)
@@ -383,6 +384,8 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
     e = np.zeros(z.shape[0])
     e_prev, last_in, pre = e, z, None
     use_spec = lam is not None and eigenvectors is not None
+    chain = []
+    x0 = z
     for i, (lb, ch, extra) in enumerate(zip(bounds, lc.changes, cc.layers)):
         feat = np.sqrt(np.sum(z**2, axis=1))  # (B, F_in)
         d = ch.certified * np.sqrt(np.sum(z**2, axis=(1, 2)))
@@ -395,9 +398,13 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
         if known is not None:
             d = np.minimum(d, known[i])
         e_prev, e = e, d + lc.gains_hat[i] * e
+        chain.append(e)
         last_in = z
         pre, z = forward_layer(i, z)
     plain = mc.readout * e
+    if worst and use_spec:
+        net = network_bounds(mc, cc, bounds, lc, x0, eps, eigenvectors, forward_layer, chain)
+        plain = np.minimum(plain, [r.certified for r in net])
     if cc.readout is None or not spec.final_nonlinearity:
         return plain * (1 + REL_ALLOW)
     # W D v with D = I - D_off, D_off on units that are off or may switch:
@@ -414,3 +421,24 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
     masked = _masked_readout(mc.params["readout"]["weight"], pre, e, spec.nonlinearity)
     through = dw + lc.readout_gain_hat * e_prev + masked * e
     return np.minimum(plain, through) * (1 + REL_ALLOW)
+
+
+def network_bounds(mc, cc: CompositionConstants, bounds, lc: LayerChanges, x, eps: float, eigenvectors,
+                   forward_layer, chain=None) -> list:
+    """Per signal of ``x`` ``(B, N, F_0)``, the whole-network bound of
+    docs/theory.md 9.6 (a :class:`stablefilt._networst.NetworkWorst`).
+    ``chain[l][b]`` bounds the pre-activation change of layer ``l``; by
+    default ``Delta_l ||x_{l-1}|| + B_hat_l chain[l-1]`` (9.3)."""
+    from ._networst import network_worst
+
+    z = np.asarray(x, dtype=np.float64)
+    if chain is None:
+        chain, e, h = [], np.zeros(z.shape[0]), z
+        for i, ch in enumerate(lc.changes):
+            e = ch.certified * np.sqrt(np.sum(h**2, axis=(1, 2))) + lc.gains_hat[i] * e
+            chain.append(e)
+            h = forward_layer(i, h)[1]
+    return [network_worst(mc.params, mc.spec, mc.eigenvalues, eigenvectors, z[b], eps, slack=cc.slack,
+                          chain=[float(c[b]) for c in chain], changes=[ch.certified for ch in lc.changes],
+                          remainders=[lb.remainder for lb in bounds], gains=[lb.gain for lb in bounds],
+                          readout_norm=mc.readout, forward_layer=forward_layer) for b in range(z.shape[0])]

@@ -1,0 +1,285 @@
+"""The whole network's change for one given input, bounded through every
+layer at once (docs/theory.md section 9.6).
+
+For a fixed input the change of a GNN is, up to small terms, one linear
+function of ``E``: ``lambda_l = D_l (Gamma_l[E] x_{l-1} + H_l lambda_{l-1})``
+with ``D_l`` the clean activation slopes. Its worst case over
+``||E||_2 <= eps`` is bounded by the concave maximisation of 9.5 over the
+stacked banks, and the rest (second-order terms, the previous layers'
+change through ``H_hat - H``, and units that may switch, by the switching
+lemma of 9.6) is bounded in norm.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from ._exact import UNIT
+from ._filters import Basis, basis_values, frequency_response
+from ._inputworst import _sqrt_psd
+from ._joint import block_kernels
+from ._series import REL_ALLOW
+
+#: Frank-Wolfe iterations per target.
+ITERS = 12
+#: Units that may switch, above which their joint bound is not tried.
+SWITCH_UNITS = 200
+#: Candidate units (margin below the change bound), above which the
+#: switching term falls back to its norm bound.
+UNIT_LIMIT = 4000
+#: Least slope of each nonlinearity covered by the switching lemma (tanh is not).
+SLOPES = {"relu": 0.0, "leaky_relu": 0.1}
+
+
+def _readout_matrix(params, spec, n: int, f: int) -> np.ndarray:
+    """The readout as a matrix ``(N F_L, d)`` on node-major features (no bias)."""
+    if spec.readout == "none":
+        return np.eye(n * f)
+    w = np.asarray(params["readout"]["weight"], dtype=np.float64)
+    if spec.readout == "node":
+        return np.kron(np.eye(n), w)
+    if spec.readout in ("mean", "sum"):
+        scale = 1.0 / n if spec.readout == "mean" else 1.0
+        return np.tile(w, (n, 1)) * scale
+    return w  # flat: (N F_L, C)
+
+
+class _Setup:
+    """Per-signal pieces shared by every target: eigen-coordinates of the
+    layers' inputs, block kernels, slopes and pre-activations."""
+
+    def __init__(self, params, spec, lam, vecs, x, forward_layer, slack):
+        self.lam = np.asarray(lam, dtype=np.float64)
+        self.vecs = np.asarray(vecs, dtype=np.float64)
+        lo, hi = float(self.lam.min()), float(self.lam.max())
+        if not hi > lo:
+            lo, hi = lo - 1e-6 * max(1.0, abs(lo)), hi + 1e-6 * max(1.0, abs(hi))
+        split = Basis("chebyshev", (lo, hi))
+        k = spec.taps
+        self.k = k
+        self.phi = basis_values(self.lam, k, split)  # (N, K)
+        n = self.lam.size
+        self.n = n
+        self.layers = params["layers"]
+        self.inputs, self.pre, self.slopes, self.kernels, self.errors, self.responses = [], [], [], [], [], []
+        z = np.asarray(x, dtype=np.float64)[None]
+        ka = np.arange(k, dtype=np.float64)
+        for i, layer in enumerate(self.layers):
+            taps = np.asarray(layer["taps"], dtype=np.float64)
+            self.inputs.append(z[0])
+            m, dm, (fout, fin), _ = block_kernels(taps, spec.basis, split, "gamma", True)
+            m, dm = m[0], dm[0]
+            dmax = 2.0 / (hi - lo) * float(np.sum(np.abs(m).reshape(fout, k, fin, k)
+                                                  * (ka[None, :, None, None] ** 2 + ka[None, None, None, :] ** 2)))
+            # As in 9.5: kernel entries, eigenvalue slack, evaluation; per unit input norm.
+            self.errors.append(n * (float(np.abs(dm).sum()) + slack * dmax) + 4.0 * k * UNIT * n * float(np.abs(m).sum()))
+            self.kernels.append(m)
+            self.responses.append(frequency_response(taps, self.lam, spec.basis))  # (N, F_in, F_out)
+            pre, z = forward_layer(i, z)
+            self.pre.append(pre[0])
+            active = (i < spec.depth - 1) or spec.final_nonlinearity
+            if not active or spec.nonlinearity == "none":
+                self.slopes.append(None)
+            else:
+                alpha = SLOPES[spec.nonlinearity]
+                self.slopes.append(np.where(pre[0] > 0, 1.0, alpha))
+        self.xt = [self.vecs.T @ v for v in self.inputs]  # (N, F_{l-1}) each
+
+    def to_eigen(self, y):
+        """``V^T y`` for a batch ``(d, N, F)``."""
+        return np.einsum("ni,dnf->dif", self.vecs, y, optimize=True)
+
+    def to_nodes(self, y):
+        return np.einsum("ni,dif->dnf", self.vecs, y, optimize=True)
+
+    def adjoint_chain(self, top: int, y_top):
+        """``V~_l = (T_{m,l}^* A^* U)~`` for ``l = 1..m`` (``m = top + 1``),
+        from ``y_top = A^* U`` in node coordinates ``(d, N, F_m)``."""
+        out = [None] * (top + 1)
+        cur = self.to_eigen(y_top)
+        out[top] = cur
+        for l in range(top, 0, -1):
+            # H_l^*: per eigenvalue, V~_i H_l(lam_i)^T; then D_{l-1} in node coordinates.
+            back = np.einsum("dig,ifg->dif", cur, self.responses[l], optimize=True)
+            d = self.slopes[l - 1]
+            if d is not None:
+                back = self.to_eigen(d[None] * self.to_nodes(back))
+            out[l - 1] = back
+            cur = back
+        return out
+
+
+def _stacked_c(setup: _Setup, top: int) -> np.ndarray:
+    """``C = blockdiag(M_1 .. M_m) (Q^T Q)^(1/2)``, ``Q = [Q_1 .. Q_m]`` with
+    rows ``(X~_{l-1, jf} phi_j^T)_f`` (docs/theory.md 9.5, 9.6)."""
+    n, phi = setup.n, setup.phi
+    q = np.concatenate([np.einsum("jf,jb->jfb", xt, phi).reshape(n, -1) for xt in setup.xt[:top + 1]], axis=1)
+    r = _sqrt_psd(q.T @ q)
+    rows = sum(m.shape[0] for m in setup.kernels[:top + 1])
+    cols = sum(m.shape[1] for m in setup.kernels[:top + 1])
+    big = np.zeros((rows, cols))
+    ro = co = 0
+    for m in setup.kernels[:top + 1]:
+        big[ro:ro + m.shape[0], co:co + m.shape[1]] = m
+        ro, co = ro + m.shape[0], co + m.shape[1]
+    return big @ r
+
+
+def _worst_linear(setup: _Setup, top: int, stacked, iters: int) -> float:
+    """Upper bound on ``sup_{||E||_2 <= 1} ||A mu_m(E)||_F`` (per unit eps):
+    ``stacked`` ``(d, N, sum F_l)`` holds ``V~_l`` for unit directions
+    ``U`` of the target space (docs/theory.md 9.6)."""
+    n, k = setup.n, setup.k
+    phi = setup.phi
+    c = _stacked_c(setup, top)
+    d, _, f = stacked.shape
+    t = stacked  # (d, N, F)
+    scale = float(np.linalg.norm(c, 2)) ** 2 * k + 1e-300
+    delta = 1e-12 * scale
+    dim = c.shape[1]
+    w = np.einsum("kis,kit->ist", t, t, optimize=True) / d  # Omega = I / d
+    phi2 = np.einsum("ia,ib->iab", phi, phi).reshape(n, k * k)
+    best = np.inf
+    for it in range(iters):
+        s = (w.reshape(n, f * f).T @ phi2).reshape(f, f, k, k).transpose(0, 2, 1, 3).reshape(f * k, f * k)
+        y = c.T @ s @ c
+        ev, ew = np.linalg.eigh(0.5 * (y + y.T) + delta * np.eye(dim))
+        ev = np.maximum(ev, delta)
+        val = float(np.sum(np.sqrt(ev)))
+        inv_half = (ew / np.sqrt(ev)) @ ew.T
+        tmat = (0.5 * c @ inv_half @ c.T).reshape(f, k, f, k)
+        g = (phi2 @ tmat.transpose(1, 3, 0, 2).reshape(k * k, f * f)).reshape(n, f, f)
+        gt = np.einsum("ist,kit->kis", g, t, optimize=True)
+        h = np.einsum("kis,lis->kl", t, gt, optimize=True)
+        hv, hw = np.linalg.eigh(0.5 * (h + h.T))
+        top_val = float(hv[-1])
+        inner = float(np.sum(g * w))
+        # f(W*) <= f(W) + lambda_max(T^T G T) - <G, W> (concavity); eigensolver
+        # allowances relative (common practice).
+        bound = val * (1 + 64 * dim * UNIT) + top_val + 1e-9 * abs(top_val) + 1e-9 * abs(inner) \
+            + 64 * d * UNIT * float(np.abs(hv).max()) - inner
+        best = min(best, bound)
+        tu = np.einsum("k,kis->is", hw[:, -1], t, optimize=True)
+        step = 2.0 / (it + 3.0)
+        w *= 1 - step
+        w += step * np.einsum("is,it->ist", tu, tu)
+    return max(best, 0.0) * (1 + REL_ALLOW)
+
+
+def _carried_error(setup: _Setup, top: int, gains, target_norm: float) -> float:
+    """Float64 error of the linear part (per unit eps): each layer's kernel
+    error times ``||x_{l-1}||``, carried to the target by ``||A|| prod B``."""
+    total = 0.0
+    for l in range(top + 1):
+        carry = target_norm * float(np.prod([gains[j] for j in range(l + 1, top + 1)]))
+        total += setup.errors[l] * float(np.linalg.norm(setup.inputs[l])) * carry
+    return total
+
+
+def _unit_sups(setup: _Setup, top: int, stacked) -> np.ndarray:
+    """Per unit direction ``u`` (rows of ``stacked``), an upper bound on
+    ``sup_{||E||_2 <= 1} |<u, A mu_m(E)>|`` (per unit eps): the relaxation of
+    9.6 at the rank-one ``Omega = u u^T``, ``||P C||_*``, evaluated exactly."""
+    c = _stacked_c(setup, top)
+    phi = setup.phi
+    out = np.empty(stacked.shape[0])
+    for lo in range(0, stacked.shape[0], 64):
+        t = stacked[lo:lo + 64]
+        pc = np.einsum("uis,ia->uisa", t, phi, optimize=True).reshape(t.shape[0], setup.n, -1) @ c
+        ev = np.linalg.eigvalsh(np.einsum("uic,uid->ucd", pc, pc, optimize=True))
+        top_ev = np.abs(ev).max(axis=1, keepdims=True)
+        out[lo:lo + 64] = np.sum(np.sqrt(np.maximum(ev, 0.0)), axis=1) * (1 + 64 * c.shape[1] * UNIT) \
+            + c.shape[1] * np.sqrt(64 * c.shape[1] * UNIT * top_ev[:, 0])
+    return out * (1 + REL_ALLOW)
+
+
+@dataclasses.dataclass(frozen=True)
+class NetworkWorst:
+    """The whole-network bound for one signal at one eps (docs/theory.md 9.6).
+
+    Attributes:
+      certified: ``linear + residual``, with an allowance (``inf`` where the
+        method does not apply).
+      linear: the bound on ``sup_E ||Rd(lambda_L(E))||``, the fixed-pattern
+        first-order change.
+      residual: ``||Rd|| eps_bar_L``: second-order terms, the previous
+        layers' change through ``H_hat - H``, and units that may switch.
+    """
+
+    certified: float
+    linear: float
+    residual: float
+
+
+def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain, changes, remainders, gains,
+                  readout_norm: float, forward_layer, iters: int = ITERS) -> NetworkWorst:
+    """Upper bound on ``||Phi(S) x - Phi(S_hat) x||_F`` for one signal ``x``
+    ``(N, F_0)`` over ``||E||_2 <= eps`` (docs/theory.md 9.6), or ``inf``
+    where the method does not apply (tanh).
+
+    Args:
+      lam, vecs: computed eigenpairs of ``S`` (eigenvalues within ``slack``).
+      chain: per layer, a bound on ``||q_l||`` (the pre-activation change),
+        which also bounds ``||e_l||`` (9.3).
+      changes: per layer, ``Delta_l >= ||H_hat_l - H_l||``.
+      remainders: per layer, ``(F_in, F_out)`` per-filter second-order remainders.
+      gains: per layer, ``B_l >= ||H_l||``.
+      readout_norm: ``||Rd||`` (Frobenius to Frobenius), 1 without readout.
+      forward_layer: ``(i, z) -> (pre, out)`` in float64.
+    """
+    if spec.nonlinearity not in SLOPES and spec.nonlinearity != "none":
+        return NetworkWorst(float("inf"), float("inf"), float("inf"))
+    setup = _Setup(params, spec, lam, vecs, x, forward_layer, slack)
+    alpha = SLOPES.get(spec.nonlinearity, 1.0)
+    n = setup.n
+    depth = len(setup.layers)
+    e_prev, eps_prev = 0.0, 0.0
+    for i in range(depth):
+        feat = np.sqrt(np.sum(setup.inputs[i] ** 2, axis=0))
+        rho_bar = float(np.linalg.norm(feat @ np.atleast_2d(remainders[i]))) * (1 + REL_ALLOW)
+        nu = rho_bar + changes[i] * e_prev + gains[i] * eps_prev
+        eps_now = nu
+        if setup.slopes[i] is not None:
+            eps_now = nu + (1.0 - alpha) * _switching(setup, i, eps, float(chain[i]) + nu, gains, iters)
+        e_prev, eps_prev = float(chain[i]), eps_now
+    last = depth - 1
+    f_l = setup.pre[last].shape[1]
+    rd = _readout_matrix(params, spec, n, f_l)  # (N F_L, d)
+    y = rd.T.reshape(-1, n, f_l)  # A^* of unit directions, before D_L
+    if setup.slopes[last] is not None:
+        y = y * setup.slopes[last][None]
+    stacked = np.concatenate(setup.adjoint_chain(last, y), axis=2)
+    lin = _worst_linear(setup, last, stacked, iters) + _carried_error(setup, last, gains, readout_norm)
+    linear, residual = eps * lin, readout_norm * eps_prev
+    return NetworkWorst(float((linear + residual) * (1 + REL_ALLOW)), float(linear), float(residual))
+
+
+def _switching(setup: _Setup, i: int, eps: float, reach: float, gains, iters: int) -> float:
+    """A bound on ``||(|mu_i| - |p_i|)_+||`` (docs/theory.md 9.6): units
+    whose margin ``|p_u|`` is at least ``reach >= ||mu_i||`` are skipped; for
+    the others, per-unit suprema ``M_u``, and the smaller of
+    ``||(M_u - |p_u|)_+||`` and the joint ``sup ||w o mu_i||``,
+    ``w = (1 - |p_u| / M_u)_+``."""
+    pre = setup.pre[i]
+    n, f = pre.shape
+    margin = np.abs(pre).ravel()
+    units = np.flatnonzero(margin < reach)
+    if units.size == 0:
+        return 0.0
+    if units.size > UNIT_LIMIT:
+        return reach  # ||(|mu| - |p|)_+|| <= ||mu||
+    y = np.zeros((units.size, n * f))
+    y[np.arange(units.size), units] = 1.0
+    stacked = np.concatenate(setup.adjoint_chain(i, y.reshape(units.size, n, f)), axis=2)
+    sups = eps * (_unit_sups(setup, i, stacked) + _carried_error(setup, i, gains, 1.0))
+    sups = np.minimum(sups, reach)
+    excess = np.maximum(sups - margin[units], 0.0)
+    best = float(np.linalg.norm(excess))
+    live = np.flatnonzero(excess > 0)
+    if 0 < live.size <= SWITCH_UNITS:
+        wts = (excess[live] / sups[live])[:, None, None]
+        joint = eps * (_worst_linear(setup, i, stacked[live] * wts, iters) + _carried_error(setup, i, gains, 1.0))
+        best = min(best, joint)
+    return best * (1 + REL_ALLOW)
