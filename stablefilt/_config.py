@@ -95,7 +95,7 @@ _columns.expected = "a list of two or three column names: source, target and opt
 SCHEMA = {
     "name": (_string, None),
     "data": {
-        "source": (_choice(("orchard", "files")), "orchard"),
+        "source": (_choice(("orchard", "files", "karate", "digits", "minnesota")), "orchard"),
         "sensors": (_pos_int, 120),
         "block_rows": (_pos_int, 2),
         "block_cols": (_pos_int, 3),

@@ -212,16 +212,45 @@ def _check_targets(y, s: int, n: int, d: dict, tname: str):
     return y
 
 
+def _open_dataset(config: Config, d: dict):
+    """``(op, x (S, N, 1), y, ids, task)`` for the open-dataset sources of
+    :mod:`stablefilt.datasets` (an optional extra: networkx, scikit-learn,
+    pygsp's data file). ``samples`` and ``noise`` override the dataset's
+    own defaults only when the config sets them; ``task`` must be the
+    dataset's when set."""
+    import tomllib
+
+    try:
+        from . import datasets
+    except ImportError as exc:  # pragma: no cover - the module itself has no extra imports
+        raise ConfigError(f"data.source = {d['source']!r} needs the datasets extra ({exc}).") from None
+    given = tomllib.loads(config.text).get("data", {})
+    task, _ = datasets.SOURCES[d["source"]]
+    if "task" in given and given["task"] != task:
+        raise ConfigError(f"data.source = {d['source']!r} is a {task} task; remove data.task or set it to {task!r}.")
+    try:
+        a, x, y, ids = datasets.source_arrays(d["source"], given, d["seed"])
+    except ModuleNotFoundError as exc:
+        raise ConfigError(f"data.source = {d['source']!r} needs the package {exc.name!r}: "
+                          "pip install \"stablefilt[datasets]\".") from None
+    x = np.asarray(x, dtype=np.float32)[:, :, None]
+    return shift_operator(a, d["shift"]), x, np.asarray(y), ids, task
+
+
 def build_dataset(config: Config) -> Dataset:
     """The dataset a config describes."""
     d = config["data"]
     ids = None
+    task = d["task"]
     if d["source"] == "orchard":
         op, x, y = _orchard(d)
-    else:
+        what = "the orchard data"
+    elif d["source"] == "files":
         op, x, y, ids = _files(config, d)
-    task = d["task"]
-    what = "the orchard data" if d["source"] == "orchard" else f"signals file {d['signals']!r}"
+        what = f"signals file {d['signals']!r}"
+    else:
+        op, x, y, ids, task = _open_dataset(config, d)
+        what = f"the {d['source']} dataset"
     tr, va, te = _split(x.shape[0], d, d["seed"], what)
     if task == "classify":
         node_task, classes = y.ndim == 2, int(y.max()) + 1

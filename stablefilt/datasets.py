@@ -1,5 +1,7 @@
-"""Open datasets that registry packages ship as data files, written out as the
-files a ``source = "files"`` config reads (docs/data.md, "Open datasets").
+"""Open datasets that registry packages ship as data files: selectable as a
+config's ``[data] source`` (``karate``, ``digits``, ``minnesota``), or
+written out as the files a ``source = "files"`` config reads (docs/data.md,
+"Open datasets").
 An optional extra (``pip install stablefilt[datasets]``): the core never
 imports this module, and nothing is downloaded.
 
@@ -81,6 +83,24 @@ def _text(folder: str, name: str, text: str) -> str:
     return path
 
 
+def karate_arrays(samples: int = 200, observed: float = 0.3, noise: float = 0.5, seed: int = 0):
+    """``(adjacency (34, 34), x (samples, 34), y (samples, 34), ids)``: the
+    karate club task of :func:`write_karate`, in memory (``ids`` the
+    members ``M-1..M-34``)."""
+    import networkx as nx
+
+    g = nx.karate_club_graph()
+    n = g.number_of_nodes()
+    a = np.zeros((n, n))
+    for u, v in g.edges():
+        a[u, v] = a[v, u] = 1.0
+    faction = np.array([g.nodes[i]["club"] == "Officer" for i in range(n)], dtype=np.int64)
+    rng = np.random.default_rng(seed)
+    seen = rng.random((samples, n)) < observed
+    x = np.where(seen, (2.0 * faction - 1.0) + noise * rng.standard_normal(seen.shape), 0.0)
+    return a, x, np.tile(faction, (samples, 1)), tuple(f"M-{i + 1}" for i in range(n))
+
+
 def write_karate(folder: str, samples: int = 200, observed: float = 0.3, noise: float = 0.5, seed: int = 0) -> str:
     """Write the karate club as a node task; returns the config's path.
 
@@ -93,16 +113,12 @@ def write_karate(folder: str, samples: int = 200, observed: float = 0.3, noise: 
     """
     import networkx as nx
 
-    g = nx.karate_club_graph()
+    _, x, y, _ = karate_arrays(samples, observed, noise, seed)
     os.makedirs(folder, exist_ok=True)
-    lines = ["source,target"] + [f"M-{u + 1},M-{v + 1}" for u, v in g.edges()]
+    lines = ["source,target"] + [f"M-{u + 1},M-{v + 1}" for u, v in nx.karate_club_graph().edges()]
     _text(folder, "karate.csv", "\n".join(lines) + "\n")
-    faction = np.array([g.nodes[i]["club"] == "Officer" for i in range(g.number_of_nodes())], dtype=np.int64)
-    rng = np.random.default_rng(seed)
-    seen = rng.random((samples, faction.size)) < observed
-    x = np.where(seen, (2.0 * faction - 1.0) + noise * rng.standard_normal(seen.shape), 0.0)
     _save(folder, "karate-x.npy", x)
-    _save(folder, "karate-y.npy", np.tile(faction, (samples, 1)))
+    _save(folder, "karate-y.npy", y)
     return _text(folder, "karate.toml", _KARATE_CONFIG)
 
 
@@ -120,19 +136,29 @@ def grid_edges(rows: int, cols: int) -> list[tuple[int, int]]:
     return edges
 
 
+def digits_arrays():
+    """``(adjacency (64, 64), x (1797, 64) in [0, 1], y (1797,))``: scikit-learn's
+    digits on the 8 x 8 pixel grid, in memory."""
+    from sklearn.datasets import load_digits
+
+    d = load_digits()
+    a = np.zeros((64, 64))
+    for i, j in grid_edges(8, 8):
+        a[i, j] = a[j, i] = 1.0
+    return a, d.data / 16.0, d.target.astype(np.int64)
+
+
 def write_digits(folder: str) -> str:
     """Write scikit-learn's digits on the 8 x 8 pixel grid; returns the
     config's path. Files: ``digits-grid.csv`` (112 edges, pixel IDs 0..63),
     ``digits-x.npy`` ``(1797, 64)`` scaled to ``[0, 1]``, ``digits-y.npy``
     ``(1797,)`` labels 0..9, and ``digits.toml`` (flat readout: the pixels
     keep their place, docs/theory.md s.8.1)."""
-    from sklearn.datasets import load_digits
-
-    d = load_digits()
+    _, x, y = digits_arrays()
     os.makedirs(folder, exist_ok=True)
     _text(folder, "digits-grid.csv", "src,dst\n" + "".join(f"{a},{b}\n" for a, b in grid_edges(8, 8)))
-    _save(folder, "digits-x.npy", d.data / 16.0)
-    _save(folder, "digits-y.npy", d.target.astype(np.int64))
+    _save(folder, "digits-x.npy", x)
+    _save(folder, "digits-y.npy", y)
     return _text(folder, "digits.toml", _DIGITS_CONFIG)
 
 
@@ -209,6 +235,27 @@ def read_minnesota():
     return sp.csr_array(m["A"], dtype=np.float64), np.asarray(m["xy"], dtype=np.float64)
 
 
+def minnesota_arrays(samples: int = 300, sources: int = 4, spread: float = 20.0, observed: float = 0.3,
+                     noise: float = 0.1, seed: int = 0):
+    """``(adjacency (2642, 2642) sparse, x, y (samples, 2642))``: the road
+    network task of :func:`write_minnesota`, in memory."""
+    import scipy.sparse as sp
+    from scipy.sparse.linalg import expm_multiply
+
+    a, _ = read_minnesota()
+    n = a.shape[0]
+    lap = sp.csr_array(sp.diags_array(np.asarray(a.sum(axis=1)).ravel()) - a)
+    rng = np.random.default_rng(seed)
+    spikes = np.zeros((n, samples))
+    for s in range(samples):
+        spikes[rng.choice(n, sources, replace=False), s] = rng.uniform(-1.0, 1.0, sources)
+    field = expm_multiply(-spread * lap, spikes).T
+    field /= np.maximum(np.max(np.abs(field), axis=1, keepdims=True), np.finfo(float).tiny)
+    seen = rng.random(field.shape) < observed
+    x = np.where(seen, field + noise * rng.standard_normal(field.shape), 0.0)
+    return a, x.astype(np.float32), field.astype(np.float32)
+
+
 def write_minnesota(folder: str, samples: int = 300, sources: int = 4, spread: float = 20.0, observed: float = 0.3,
                     noise: float = 0.1, seed: int = 0) -> str:
     """Write the Minnesota road network as a node regression task; returns
@@ -225,21 +272,28 @@ def write_minnesota(folder: str, samples: int = 300, sources: int = 4, spread: f
     ``minnesota.toml``.
     """
     import scipy.sparse as sp
-    from scipy.sparse.linalg import expm_multiply
 
-    a, _ = read_minnesota()
-    n = a.shape[0]
-    lap = sp.csr_array(sp.diags_array(np.asarray(a.sum(axis=1)).ravel()) - a)
-    rng = np.random.default_rng(seed)
-    spikes = np.zeros((n, samples))
-    for s in range(samples):
-        spikes[rng.choice(n, sources, replace=False), s] = rng.uniform(-1.0, 1.0, sources)
-    field = expm_multiply(-spread * lap, spikes).T
-    field /= np.maximum(np.max(np.abs(field), axis=1, keepdims=True), np.finfo(float).tiny)
-    seen = rng.random(field.shape) < observed
-    x = np.where(seen, field + noise * rng.standard_normal(field.shape), 0.0)
+    a, x, y = minnesota_arrays(samples, sources, spread, observed, noise, seed)
     os.makedirs(folder, exist_ok=True)
     sp.save_npz(os.path.join(folder, "minnesota.npz"), sp.csr_matrix(a))
-    _save(folder, "minnesota-x.npy", x.astype(np.float32))
-    _save(folder, "minnesota-y.npy", field.astype(np.float32))
+    _save(folder, "minnesota-x.npy", x)
+    _save(folder, "minnesota-y.npy", y)
     return _text(folder, "minnesota.toml", _MINNESOTA_CONFIG)
+
+
+#: Config sources served by this module: name -> (task, targets per node).
+SOURCES = {"karate": ("classify", True), "digits": ("classify", False), "minnesota": ("regress", True)}
+
+
+def source_arrays(name: str, given: dict, seed: int):
+    """``(adjacency, x, y, ids)`` for the config source ``name`` (a key of
+    :data:`SOURCES`); ``given`` holds the ``[data]`` keys the config sets
+    itself (``samples``, ``noise``), which override the dataset's defaults."""
+    kw = {k: given[k] for k in ("samples", "noise") if k in given}
+    if name == "karate":
+        return karate_arrays(seed=seed, **kw)
+    if name == "minnesota":
+        a, x, y = minnesota_arrays(seed=seed, **kw)
+        return a, x, y, None
+    a, x, y = digits_arrays()
+    return a, x, y, None
