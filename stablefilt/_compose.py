@@ -81,7 +81,7 @@ def _widen(interval, by: float, deployed=None) -> tuple[float, float]:
 
 
 def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float, radius: float,
-                path_cover, gains) -> BankChange:
+                path_cover, gains, bank_remainder: float | None = None) -> BankChange:
     """``Delta`` of one filter or bank at ``eps``.
 
     Args:
@@ -90,10 +90,11 @@ def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float
       radius: ``R >= ||S||_2``.
       path_cover: a cover of the spectra along the path (:func:`change_cover`).
       gains: ``(B, B_hat)``, bounds on ``||H(S)||`` and ``||H(S_hat)||``.
+      bank_remainder: the whole bank's remainder (docs/theory.md 9.7), when known.
     """
     fo, rem = np.asarray(first_order), np.asarray(remainder)
     per = combine(fo + rem)
-    rem_c = combine(rem)
+    rem_c = combine(rem) if bank_remainder is None else min(combine(rem), bank_remainder)
     joint_b = float(eps * joint * (1 + REL_ALLOW) + rem_c)
     path = path_bound(taps, basis, eps, radius, path_cover)
     trivial = float(gains[0] + gains[1])
@@ -243,7 +244,8 @@ def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChan
         gains_hat.append(float(b_hat))
         changes.append(bank_change(layer["taps"], spec.basis, eps, first_order=lb.beta - lb.remainder,
                                    remainder=lb.remainder, joint=extra.joint.constant, radius=cc.radius,
-                                   path_cover=pcover, gains=(lb.gain, b_hat)))
+                                   path_cover=pcover, gains=(lb.gain, b_hat),
+                                   bank_remainder=None if lb.bank is None else lb.bank.operator()))
     rc, rg, rr = None, None, None
     if cc.readout is not None:
         ro = cc.readout
@@ -304,7 +306,7 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
     deltas = []
     e = 0.0
     for i, (ch, lb) in enumerate(zip(lc.changes, bounds)):
-        rem = combine(lb.remainder)
+        rem = lb.bank_remainder()
         right = None if cc.layers[i].right is None else eps * cc.layers[i].right
         d = _through(i, ch.certified, rem, right, cc, norms, gains, ca, cb)
         deltas.append(d)
@@ -387,10 +389,9 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
     chain = []
     x0 = z
     for i, (lb, ch, extra) in enumerate(zip(bounds, lc.changes, cc.layers)):
-        feat = np.sqrt(np.sum(z**2, axis=1))  # (B, F_in)
         d = ch.certified * np.sqrt(np.sum(z**2, axis=(1, 2)))
         if use_spec:
-            rem = np.linalg.norm(feat @ np.atleast_2d(lb.remainder), axis=1) * (1 + REL_ALLOW)
+            rem = lb.input_remainder(z)
             d = np.minimum(d, input_first_order(extra.joint, lam, eigenvectors, z, eps) + rem)
             if worst:
                 first = eps * input_worst(mc.params["layers"][i]["taps"], spec.basis, lam, eigenvectors, z, cc.slack)
@@ -440,5 +441,5 @@ def network_bounds(mc, cc: CompositionConstants, bounds, lc: LayerChanges, x, ep
             h = forward_layer(i, h)[1]
     return [network_worst(mc.params, mc.spec, mc.eigenvalues, eigenvectors, z[b], eps, slack=cc.slack,
                           chain=[float(c[b]) for c in chain], changes=[ch.certified for ch in lc.changes],
-                          remainders=[lb.remainder for lb in bounds], gains=[lb.gain for lb in bounds],
+                          remainders=[lb.input_remainder for lb in bounds], gains=[lb.gain for lb in bounds],
                           readout_norm=mc.readout, forward_layer=forward_layer) for b in range(z.shape[0])]

@@ -270,6 +270,58 @@ def remainder(taps, basis: Basis, interval, eps: float) -> np.ndarray:
     return out.reshape(shape) if shape else float(out[0])
 
 
+@dataclasses.dataclass(frozen=True)
+class BankRemainder:
+    """The whole bank's second-order remainder (docs/theory.md 9.7):
+    ``||rho(X)||_F <= sum_j t_j ||X g_j||_F`` with ``g_j`` the bank's
+    coefficient matrices in powers of ``(lam - m)`` and
+    ``t_j = (r + d)^j - r^j - j d r^(j-1)``.
+
+    Attributes:
+      tails: ``t_j``, ``(K,)``.
+      coefficients: ``g_j`` in float64, ``(K, F_in, F_out)``.
+      errors: entrywise bounds on their float64 error, same shape.
+    """
+
+    tails: np.ndarray
+    coefficients: np.ndarray
+    errors: np.ndarray
+
+    def operator(self) -> float:
+        """``sum_j t_j (||g_j||_2 + ||err_j||_F)``: for every ``||X||_F <= 1``."""
+        norms = [np.linalg.norm(g, 2) + np.linalg.norm(e) for g, e in zip(self.coefficients, self.errors)]
+        return float(with_allowance(float(np.dot(self.tails, norms)), 0.0))
+
+    def inputs(self, x) -> np.ndarray:
+        """Per signal of ``x`` ``(B, N, F_in)``: ``sum_j t_j (||X g_j||_F + ||X||_F ||err_j||_F)``."""
+        x = np.asarray(x, dtype=np.float64)
+        xn = np.sqrt(np.sum(x**2, axis=(1, 2)))
+        out = np.zeros(x.shape[0])
+        for t, g, e in zip(self.tails, self.coefficients, self.errors):
+            out += t * (np.sqrt(np.sum(np.einsum("bnf,fg->bng", x, g) ** 2, axis=(1, 2))) + xn * np.linalg.norm(e))
+        return with_allowance(out, 0.0)
+
+
+def bank_remainder(taps, basis: Basis, interval, eps: float) -> BankRemainder:
+    """The :class:`BankRemainder` of a bank ``(K, F_in, F_out)`` (or one
+    filter) for every ``S`` with spectrum in ``interval`` and ``||E|| <= eps``
+    (docs/theory.md 9.7)."""
+    t = np.asarray(taps, dtype=np.float64)
+    if t.ndim == 1:
+        t = t[:, None, None]
+    eps = check_eps(eps)
+    a, b = check_interval(interval)
+    k = t.shape[0]
+    mid = 0.5 * (a + b)
+    half = max(b - mid, mid - a) * (1 + 4 * UNIT)
+    d = 2.0 * eps * max(abs(a), abs(b))
+    cmap = power_map(k, basis, mid)
+    cols = t.reshape(k, -1)
+    g = (cmap @ cols).reshape(t.shape)
+    err = product_error(cmap, cols).reshape(t.shape)
+    return BankRemainder(_tails(half, d, k), g, err)
+
+
 def combine(per_filter) -> float:
     """Bank bound from per-filter bounds ``beta`` (``F_in x F_out``): the
     spectral norm ``||beta||_2`` (docs/theory.md section 5 item 6); a single

@@ -20,12 +20,20 @@ import numpy as np
 
 from ._certify import MODEL, NORM, deployed_text
 from ._compose import CompositionConstants, composed_bound, composed_inputs, composition_constants, layer_changes
-from ._filterbounds import FilterConstants, combine, filter_bounds, filter_constants, gain_constants
+from ._filterbounds import (
+    BankRemainder,
+    FilterConstants,
+    bank_remainder,
+    combine,
+    filter_bounds,
+    filter_constants,
+    gain_constants,
+)
 from ._filters import frequency_response
 from ._interval import SpectralInterval
 from ._kernel import spectral_first_order
 from ._model import ModelSpec, forward_np
-from ._series import with_allowance
+from ._series import REL_ALLOW, with_allowance
 
 
 def _np(params):
@@ -137,12 +145,27 @@ class LayerBound(NamedTuple):
       remainder: ``(F_in, F_out)`` their second-order remainder part.
       gain: a bound ``B_l`` on ``||H_l(S)||_2``.
       gain_perturbed: a bound ``B_hat_l`` on ``||H_l(S_hat)||_2``.
+      bank: the whole bank's remainder (docs/theory.md 9.7), or None.
     """
 
     beta: np.ndarray
     remainder: np.ndarray
     gain: float
     gain_perturbed: float
+    bank: BankRemainder | None = None
+
+    def bank_remainder(self) -> float:
+        """The bank's remainder for every unit-norm input: the smaller of
+        ``||remainder||_2`` (per filter) and the whole-bank form."""
+        per = combine(self.remainder)
+        return per if self.bank is None else min(per, self.bank.operator())
+
+    def input_remainder(self, x) -> np.ndarray:
+        """Per signal of ``x`` ``(B, N, F_in)``, the smaller of the per-filter
+        remainders weighted by feature norms and the whole-bank form."""
+        feat = np.sqrt(np.sum(np.asarray(x, dtype=np.float64) ** 2, axis=1))
+        per = np.linalg.norm(feat @ np.atleast_2d(self.remainder), axis=1) * (1 + REL_ALLOW)
+        return per if self.bank is None else np.minimum(per, self.bank.inputs(x))
 
 
 def layer_bounds(constants: ModelConstants, eps: float) -> tuple[LayerBound, ...]:
@@ -161,7 +184,8 @@ def layer_bounds(constants: ModelConstants, eps: float) -> tuple[LayerBound, ...
         if lam is not None:
             # ||H(mu) - H(lam_i)||_2 <= |mu - lam_i| ||C0||_F over the widened interval.
             b_hat = min(b_hat, b_now + float(with_allowance(w * float(np.linalg.norm(np.asarray(c0_wide))), 0.0)))
-        out.append(LayerBound(np.asarray(fb.first_order + fb.remainder), np.asarray(fb.remainder), b_now, b_hat))
+        out.append(LayerBound(np.asarray(fb.first_order + fb.remainder), np.asarray(fb.remainder), b_now, b_hat,
+                              bank_remainder(taps, spec.basis, (a, b), eps)))
     return tuple(out)
 
 

@@ -224,7 +224,8 @@ def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain
       chain: per layer, a bound on ``||q_l||`` (the pre-activation change),
         which also bounds ``||e_l||`` (9.3).
       changes: per layer, ``Delta_l >= ||H_hat_l - H_l||``.
-      remainders: per layer, ``(F_in, F_out)`` per-filter second-order remainders.
+      remainders: per layer, a function ``x (B, N, F_in) -> (B,)`` bounding
+        the second-order remainder of the bank's change of ``x``.
       gains: per layer, ``B_l >= ||H_l||``.
       readout_norm: ``||Rd||`` (Frobenius to Frobenius), 1 without readout.
       forward_layer: ``(i, z) -> (pre, out)`` in float64.
@@ -237,8 +238,7 @@ def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain
     depth = len(setup.layers)
     e_prev, eps_prev = 0.0, 0.0
     for i in range(depth):
-        feat = np.sqrt(np.sum(setup.inputs[i] ** 2, axis=0))
-        rho_bar = float(np.linalg.norm(feat @ np.atleast_2d(remainders[i]))) * (1 + REL_ALLOW)
+        rho_bar = float(remainders[i](setup.inputs[i][None])[0])
         nu = rho_bar + changes[i] * e_prev + gains[i] * eps_prev
         eps_now = nu
         if setup.slopes[i] is not None:
