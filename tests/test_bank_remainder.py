@@ -44,7 +44,8 @@ def _first_order(s, taps, basis, d, x):
 
 
 CASES = [("karate", "normalized-laplacian", "chebyshev"), ("karate", "laplacian", "monomial"),
-         ("path", "as-is", "chebyshev"), ("grid", "normalized-laplacian", "monomial")]
+         ("path", "as-is", "chebyshev"), ("grid", "normalized-laplacian", "monomial"),
+         ("grid", "scaled-adjacency", "chebyshev")]
 
 
 def _graph(name):
