@@ -72,7 +72,11 @@ def metis_parts(matrix, count: int) -> np.ndarray:
         return np.arange(m.shape[0]) * count // max(m.shape[0], 1)
     m = sp.csr_array(m - sp.diags_array(m.diagonal()))  # METIS takes no self loops
     m.eliminate_zeros()
-    _, parts = pymetis.part_graph(count, xadj=m.indptr.astype(np.int64), adjncy=m.indices.astype(np.int64))
+    starts, adjacent = m.indptr.astype(np.int64), m.indices.astype(np.int64)
+    if hasattr(pymetis, "CSRAdjacency"):  # newer pymetis; older ones take xadj/adjncy
+        _, parts = pymetis.part_graph(count, adjacency=pymetis.CSRAdjacency(starts, adjacent))
+    else:
+        _, parts = pymetis.part_graph(count, xadj=starts, adjncy=adjacent)
     return np.asarray(parts, np.int64)
 
 
