@@ -6,14 +6,16 @@ One product ``y = S x`` on device ``d`` (plan in :mod:`stablefilt._partition`):
 1. ``p_d = x_d[send_d]``: the boundary rows other devices read;
 2. ``P = all_gather(p)``: every device receives all published rows
    (``jax.lax.all_gather`` inside :func:`jax.shard_map`);
-3. ``y_d[i] = sum_(i, j) S_ij [x_d ; P]_j`` over the device's stored
-   entries (``jax.ops.segment_sum``).
+3. ``y_d = L_d [x_d ; P]``, with ``L_d`` the device's rows of ``S`` as a
+   CSR matrix whose columns index the extended vector (the BCSR kernel of
+   the single-device path, :mod:`stablefilt._sparse`).
 
 Only ``x`` (``R x M`` per device) and the published rows ever sit on a
 device, never the whole signal, so a graph too large for one device's
-memory fits on several. The gradient comes from JAX's transpose rules
-(``all_gather`` transposes to a reduce-scatter), so the backward pass is
-sharded the same way. The filter recursions and the layers are those of
+memory fits on several. The backward pass is sharded the same way: the
+cotangent of ``L_d e`` is ``L_d^T g`` (a stored transposed CSR, one more
+local product) and ``all_gather`` transposes to a reduce-scatter that sends
+each halo row's cotangent back to its owner. The filter recursions and the layers are those of
 :func:`stablefilt._filters.run_filter` and :func:`stablefilt._model.forward`,
 with this product in place of the single-device one.
 """
@@ -21,11 +23,14 @@ with this product in place of the single-device one.
 from __future__ import annotations
 
 import dataclasses
+import functools
 from typing import NamedTuple
 
 import jax
 import jax.numpy as jnp
 import numpy as np
+import scipy.sparse as sp
+from jax.experimental import sparse as jsparse
 from jax.sharding import Mesh, NamedSharding
 from jax.sharding import PartitionSpec as P
 
@@ -48,23 +53,35 @@ def node_mesh(devices: int) -> Mesh:
 class ShardedShift(NamedTuple):
     """A :class:`HaloPlan` on the devices of a mesh (a pytree).
 
-    ``send, rows, cols, vals`` are ``(D, ...)`` arrays split on their first
-    axis (device ``d`` holds row ``d``); ``position`` is ``(N,)``,
-    replicated. ``block`` (``R``) is static."""
+    ``local`` holds ``(D, ...)`` arrays split on their first axis (device
+    ``d`` holds row ``d``): ``send`` and the CSR arrays ``(data, indices,
+    indptr)`` of each device's rows ``L_d`` (``R x (R + D W)``, columns in
+    the extended vector) and of their transpose ``L_d^T``, padded to equal
+    lengths with zero entries in the last row. ``position`` is ``(N,)``,
+    replicated. ``block`` (``R``) and ``width`` (``W``) are static."""
 
-    send: jax.Array
-    rows: jax.Array
-    cols: jax.Array
-    vals: jax.Array
+    local: tuple
     position: jax.Array
     block: int
+    width: int
 
 
 jax.tree_util.register_pytree_node(
     ShardedShift,
-    lambda s: ((s.send, s.rows, s.cols, s.vals, s.position), s.block),
-    lambda block, ch: ShardedShift(*ch, block),
+    lambda s: ((s.local, s.position), (s.block, s.width)),
+    lambda aux, ch: ShardedShift(*ch, *aux),
 )
+
+
+def _padded_csr(m: sp.csr_array, nnz: int):
+    """``(data, indices, indptr)`` of ``m`` with zero entries (column 0)
+    appended to its last row up to ``nnz`` entries."""
+    k = m.nnz
+    data = np.concatenate([m.data, np.zeros(nnz - k)])
+    indices = np.concatenate([m.indices, np.zeros(nnz - k, np.int64)])
+    indptr = m.indptr.astype(np.int64).copy()
+    indptr[-1] = nnz
+    return data, indices, indptr
 
 
 def sharded_operator(plan: HaloPlan, mesh: Mesh, dtype=jnp.float32) -> ShardedShift:
@@ -78,18 +95,65 @@ def sharded_operator(plan: HaloPlan, mesh: Mesh, dtype=jnp.float32) -> ShardedSh
         a = np.asarray(a, dt)
         return jax.make_array_from_callback(a.shape, sharding, lambda idx: a[idx])
 
-    return ShardedShift(put(plan.send, split, np.int32), put(plan.rows, split, np.int32),
-                        put(plan.cols, split, np.int32), put(plan.vals, split, dtype),
-                        put(plan.position, rep, np.int32), int(plan.block))
+    r, ext = plan.block, plan.block + plan.devices * plan.width
+    z = max(1, int(plan.nnz.max()))
+    fwd, bwd = [], []
+    for d in range(plan.devices):
+        k = int(plan.nnz[d])
+        m = sp.csr_array((plan.vals[d, :k], (plan.rows[d, :k], plan.cols[d, :k])), shape=(r, ext))
+        m.sum_duplicates()
+        fwd.append(_padded_csr(m, z))
+        bwd.append(_padded_csr(sp.csr_array(m.T), z))
+    arrays = [plan.send] + [np.stack([c[i] for c in fwd]) for i in range(3)] + [
+        np.stack([c[i] for c in bwd]) for i in range(3)]
+    kinds = [np.int32, dtype, np.int32, np.int32, dtype, np.int32, np.int32]
+    local = tuple(put(a, split, k) for a, k in zip(arrays, kinds))
+    return ShardedShift(local, put(plan.position, rep, np.int32), int(plan.block), int(plan.width))
 
 
-def _local_product(send, rows, cols, vals, block: int, x):
+def _varying(y, like):
+    """``y`` marked as varying over the devices wherever ``like`` is (the
+    sparse kernel's output carries no such mark inside ``shard_map``)."""
+    want, have = _varying_axes(like), _varying_axes(y)
+    missing = tuple(a for a in want if a not in have)
+    return jax.lax.pcast(y, missing, to="varying") if missing else y
+
+
+def _varying_axes(a) -> frozenset:
+    t = jax.typeof(a)
+    kind = getattr(t, "manual_axis_type", None)  # jax 0.10; older versions call it vma
+    return frozenset(kind.varying) if kind is not None else frozenset(getattr(t, "vma", ()))
+
+
+@functools.partial(jax.custom_vjp, nondiff_argnums=(0, 1))
+def _csr_product(shape, tshape, fwd, bwd, x):
+    return _varying(jsparse.BCSR(fwd, shape=shape) @ x, x)
+
+
+def _csr_product_fwd(shape, tshape, fwd, bwd, x):
+    return _csr_product(shape, tshape, fwd, bwd, x), (fwd, bwd)
+
+
+def _csr_product_bwd(shape, tshape, res, g):
+    fwd, bwd = res
+    # The cotangent of L x with respect to x is L^T g, one more CSR product
+    # (L_d is not symmetric, so its transpose is stored); the entries of L
+    # get no gradient (the graph is fixed while training).
+    return None, None, _csr_product(tshape, shape, bwd, fwd, g)
+
+
+_csr_product.defvjp(_csr_product_fwd, _csr_product_bwd)
+
+
+def _local_product(local, block: int, width: int, x):
     """``S x`` on one device's rows (inside ``shard_map``); ``x`` is
     ``(R, M)``, the device's rows of the signal."""
-    published = jax.lax.all_gather(x[send[0]], AXIS, tiled=True)  # (D W, M)
+    send, data, indices, indptr, tdata, tindices, tindptr = (a[0] for a in local)
+    published = jax.lax.all_gather(x[send], AXIS, tiled=True)  # (D W, M)
     ext = jnp.concatenate([x, published], axis=0)
-    terms = vals[0].astype(x.dtype)[:, None] * ext[cols[0]]
-    return jax.ops.segment_sum(terms, rows[0], num_segments=block)
+    shape = (block, ext.shape[0])
+    return _csr_product(shape, shape[::-1], (data.astype(x.dtype), indices, indptr),
+                        (tdata.astype(x.dtype), tindices, tindptr), ext)
 
 
 def _to_slots(op: ShardedShift, x, devices: int, axis: int):
@@ -104,8 +168,16 @@ def _from_slots(op: ShardedShift, y, axis: int):
     return jnp.take(y, op.position, axis=axis)
 
 
-def _local_parts(op: ShardedShift):
-    return op.send, op.rows, op.cols, op.vals
+def slot_product(op: ShardedShift, xs, mesh: Mesh):
+    """``S x`` for ``xs`` of shape ``(D R, M)`` already in slot order (split
+    over ``mesh``; what the layers of :func:`sharded_forward` pass along):
+    the exchange and the local products only."""
+
+    def body(local, xl):
+        return _local_product(local, op.block, op.width, xl)
+
+    spec = P(AXIS)
+    return jax.shard_map(body, mesh=mesh, in_specs=(spec, spec), out_specs=spec)(op.local, xs)
 
 
 def sharded_product(op: ShardedShift, x, mesh: Mesh):
@@ -114,14 +186,7 @@ def sharded_product(op: ShardedShift, x, mesh: Mesh):
     single-device product up to float round-off."""
     x = jnp.asarray(x)
     vec = x.ndim == 1
-    xs = _to_slots(op, x[:, None] if vec else x, mesh.size, 0)
-
-    def body(send, rows, cols, vals, xl):
-        return _local_product(send, rows, cols, vals, op.block, xl)
-
-    spec = P(AXIS)
-    y = jax.shard_map(body, mesh=mesh, in_specs=(spec,) * 5, out_specs=spec)(*_local_parts(op), xs)
-    y = _from_slots(op, y, 0)
+    y = _from_slots(op, slot_product(op, _to_slots(op, x[:, None] if vec else x, mesh.size, 0), mesh), 0)
     return y[:, 0] if vec else y
 
 
@@ -133,12 +198,11 @@ def sharded_filter(op: ShardedShift, taps, x, basis: Basis, mesh: Mesh):
     vec = x.ndim == 1
     xs = _to_slots(op, x[:, None] if vec else x, mesh.size, 0)
 
-    def body(send, rows, cols, vals, c, xl):
-        return run_filter(lambda z: _local_product(send, rows, cols, vals, op.block, z), c, xl, basis, xp=jnp)
+    def body(local, c, xl):
+        return run_filter(lambda z: _local_product(local, op.block, op.width, z), c, xl, basis, xp=jnp)
 
     spec = P(AXIS)
-    y = jax.shard_map(body, mesh=mesh, in_specs=(spec,) * 4 + (P(), spec), out_specs=spec)(
-        *_local_parts(op), jnp.asarray(taps), xs)
+    y = jax.shard_map(body, mesh=mesh, in_specs=(spec, P(), spec), out_specs=spec)(op.local, jnp.asarray(taps), xs)
     y = _from_slots(op, y, 0)
     return y[:, 0] if vec else y
 
@@ -150,15 +214,12 @@ def sharded_forward(params: dict, op: ShardedShift, x, spec: ModelSpec, mesh: Me
     inner = dataclasses.replace(spec, readout="none", nodes=0)
     xs = _to_slots(op, jnp.asarray(x), mesh.size, 1)
 
-    def body(send, rows, cols, vals, layers, xl):
-        def prod(v):
-            return _local_product(send, rows, cols, vals, op.block, v)
-
-        return forward({"layers": layers}, prod, xl, inner)
+    def body(local, layers, xl):
+        return forward({"layers": layers}, lambda v: _local_product(local, op.block, op.width, v), xl, inner)
 
     nodes = P(None, AXIS)
-    h = jax.shard_map(body, mesh=mesh, in_specs=(P(AXIS),) * 4 + (P(), nodes), out_specs=nodes)(
-        *_local_parts(op), params["layers"], xs)
+    h = jax.shard_map(body, mesh=mesh, in_specs=(P(AXIS), P(), nodes), out_specs=nodes)(
+        op.local, params["layers"], xs)
     h = _from_slots(op, h, 1)
     if spec.readout == "none":
         return h

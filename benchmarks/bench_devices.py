@@ -1,0 +1,144 @@
+"""A graph split over devices: bytes exchanged per shift product for RCM and
+METIS partitions, and the sharded product timed against one device.
+
+Graph: a random geometric graph (average degree about 10, nodes in the
+random order the points were drawn in), ``N`` nodes, split over ``D``
+devices (default 4, simulated on CPU with
+``XLA_FLAGS=--xla_force_host_platform_device_count=D``, which this script
+sets before JAX starts). One product ``S X`` on ``F = 32`` float32 columns.
+Per partition (``stablefilt._partition``):
+
+- ``halo rows``: rows every device needs from others, summed over devices;
+- ``halo MB``: those rows' bytes, the least any exchange must move;
+- ``gather MB``: what the plan's ``all_gather`` moves (``D (D-1) W`` rows,
+  ``W`` the widest device's boundary);
+- ``local MB``: bytes of the rows the devices own (``N F 4``);
+- ``cut``: edges between parts; ``seconds``: time to find the partition.
+
+Times (interleaved rounds, medians): ``one device`` is ``jit`` of the
+library's single-device product (BCSR), the reference; ``sharded rcm`` and
+``sharded metis`` run ``stablefilt._sharded.sharded_product`` (signal in
+node order: spread to the devices' slots, product, gathered back);
+``slots rcm`` and ``slots metis`` the exchange and local products alone on
+a signal already split (what each layer of a sharded model does). The simulated
+devices share this machine's cores and memory, so the sharded times show
+the overhead of the exchange and the scatter-add kernel, not the speed-up
+of real devices. Every product is checked against scipy's CSR product.
+
+    python benchmarks/bench_devices.py [--sizes 1e4,1e5] [--devices 4] [--rounds 7]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+
+
+def _force_devices(argv) -> int:
+    count = 4
+    for i, a in enumerate(argv):
+        if a == "--devices" and i + 1 < len(argv):
+            count = int(argv[i + 1])
+        elif a.startswith("--devices="):
+            count = int(a.split("=", 1)[1])
+    flags = [f for f in os.environ.get("XLA_FLAGS", "").split() if "force_host_platform_device_count" not in f]
+    os.environ["XLA_FLAGS"] = " ".join(flags + [f"--xla_force_host_platform_device_count={count}"])
+    return count
+
+
+_force_devices(sys.argv[1:])  # before JAX starts
+
+import jax  # noqa: E402
+import numpy as np  # noqa: E402
+import scipy.sparse as sp  # noqa: E402
+from _common import geometric_adjacency, interleaved, machine_note, ms, parse_sizes, ratio, spread  # noqa: E402
+from jax.sharding import NamedSharding, PartitionSpec  # noqa: E402
+
+import stablefilt as sf  # noqa: E402
+from stablefilt._partition import METHODS, halo_plan, node_parts  # noqa: E402
+from stablefilt._sharded import node_mesh, sharded_operator, sharded_product, slot_product  # noqa: E402
+from stablefilt._sparse import jax_operator, shift_product  # noqa: E402
+
+F = 32
+DEGREE = 10.0
+MB = 1e-6
+
+
+def _slots(plan, x, devices: int) -> np.ndarray:
+    """``x`` spread over the plan's padded slots (zero padding rows)."""
+    out = np.zeros((devices * plan.block,) + x.shape[1:], x.dtype)
+    out[plan.position] = x
+    return out
+
+
+def methods_available() -> list[str]:
+    try:
+        import pymetis  # noqa: F401
+    except ImportError:
+        print("pymetis is not installed: METIS rows skipped (pip install 'stablefilt[partition]')")
+        return ["rcm"]
+    return list(METHODS)
+
+
+def run(n: int, devices: int, rounds: int, rng) -> bool:
+    a = geometric_adjacency(n, DEGREE, rng)
+    op = sf.shift_operator(a, "normalized-laplacian")
+    s = sp.csr_array(op.matrix)
+    x = rng.standard_normal((n, F)).astype(np.float32)
+    ref = s @ x.astype(np.float64)
+    mesh = node_mesh(devices)
+    print(f"\nN = {n}, edges {op.edges}, {devices} devices, F = {F} float32 columns")
+    print(f"{'partition':10s} {'seconds':>8s} {'cut':>8s} {'halo rows':>10s} {'halo MB':>9s} {'gather MB':>10s} "
+          f"{'local MB':>9s} {'halo/local':>10s} {'gather/local':>12s}")
+    fns, ok = {}, True
+    jop = jax_operator(op)
+    one = jax.jit(shift_product)
+    fns["one device"] = lambda: one(jop, x).block_until_ready()
+    for method in methods_available():
+        t0 = time.perf_counter()
+        parts = node_parts(s, devices, method)
+        seconds = time.perf_counter() - t0
+        plan = halo_plan(s, parts, method, devices)
+        coo = s.tocoo()
+        cut = int(np.sum(parts[coo.row] != parts[coo.col]) // 2)
+        h, g, lo = plan.halo_bytes(F), plan.gather_bytes(F), plan.local_bytes(F)
+        print(f"{method:10s} {seconds:8.3f} {cut:8d} {int(plan.halo.sum()):10d} {h * MB:9.3f} {g * MB:10.3f} "
+              f"{lo * MB:9.3f} {h / lo:10.4f} {g / lo:12.4f}")
+        sh = sharded_operator(plan, mesh)
+        f = jax.jit(lambda o, v: sharded_product(o, v, mesh))
+        err = float(np.max(np.abs(np.asarray(f(sh, x)) - ref)) / np.max(np.abs(ref)))
+        if err > 1e-5:
+            print(f"WRONG RESULT: sharded {method} product differs from scipy's by {err:.2e} (relative)")
+            ok = False
+        fns[f"sharded {method}"] = (lambda f=f, sh=sh: f(sh, x).block_until_ready())
+        # The exchange and local products alone, on a signal already split in slot order.
+        xs = jax.device_put(_slots(plan, x, devices), NamedSharding(mesh, PartitionSpec("nodes")))
+        fs = jax.jit(lambda o, v: slot_product(o, v, mesh))
+        fns[f"slots {method}"] = (lambda fs=fs, sh=sh, xs=xs: fs(sh, xs).block_until_ready())
+    times = interleaved(fns, rounds)
+    print(f"{'product':16s} {'median ms':>10s} {'x one device':>13s} {'quartiles':>16s}")
+    for name in fns:
+        q = spread(times, name, "one device")
+        print(f"{name:16s} {ms(times[name]):10.3f} {ratio(times, name, 'one device'):13.2f} "
+              f"{q[0]:7.2f}-{q[1]:<7.2f}")
+    return ok
+
+
+def main(argv=None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    p.add_argument("--sizes", default="1e4,1e5", help="node counts, comma-separated (default 1e4,1e5)")
+    p.add_argument("--devices", type=int, default=4, help="simulated CPU devices (default 4)")
+    p.add_argument("--rounds", type=int, default=7, help="timing rounds (default 7)")
+    args = p.parse_args(argv)
+    print("simulated devices share one machine: sharded times show overhead, not real speed-up")
+    print(machine_note())
+    rng = np.random.default_rng(0)
+    ok = all([run(n, args.devices, args.rounds, rng) for n in parse_sizes(args.sizes)])
+    print(machine_note())
+    return 0 if ok else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())
