@@ -16,7 +16,8 @@ Per partition (``stablefilt._partition``):
 - ``cut``: edges between parts; ``seconds``: time to find the partition.
 
 Times (interleaved rounds, medians): ``one device`` is ``jit`` of the
-library's single-device product (BCSR), the reference; ``sharded rcm`` and
+library's single-device product (BCSR) in the trainer's node order (RCM),
+the reference; ``sharded rcm`` and
 ``sharded metis`` run ``stablefilt._sharded.sharded_product`` (signal in
 node order: spread to the devices' slots, product, gathered back);
 ``slots rcm`` and ``slots metis`` the exchange and local products alone on
@@ -24,6 +25,10 @@ a signal already split (what each layer of a sharded model does). The simulated
 devices share this machine's cores and memory, so the sharded times show
 the overhead of the exchange and the scatter-add kernel, not the speed-up
 of real devices. Every product is checked against scipy's CSR product.
+
+Memory: bytes per node of one forward+backward of a two-layer GNN, from
+XLA's compiled memory analysis, on one device, with the batch split and
+with the nodes split (docs/devices.md uses these figures).
 
     python benchmarks/bench_devices.py [--sizes 1e4,1e5] [--devices 4] [--rounds 7]
 """
@@ -58,7 +63,13 @@ from jax.sharding import NamedSharding, PartitionSpec  # noqa: E402
 
 import stablefilt as sf  # noqa: E402
 from stablefilt._partition import METHODS, halo_plan, node_parts  # noqa: E402
-from stablefilt._sharded import node_mesh, sharded_operator, sharded_product, slot_product  # noqa: E402
+from stablefilt._sharded import (  # noqa: E402
+    node_mesh,
+    sharded_forward,
+    sharded_operator,
+    sharded_product,
+    slot_product,
+)
 from stablefilt._sparse import jax_operator, shift_product  # noqa: E402
 
 F = 32
@@ -93,9 +104,12 @@ def run(n: int, devices: int, rounds: int, rng) -> bool:
     print(f"{'partition':10s} {'seconds':>8s} {'cut':>8s} {'halo rows':>10s} {'halo MB':>9s} {'gather MB':>10s} "
           f"{'local MB':>9s} {'halo/local':>10s} {'gather/local':>12s}")
     fns, ok = {}, True
-    jop = jax_operator(op)
+    # One device in the trainer's node order (reverse Cuthill-McKee): the
+    # random order would slow it by cache misses and flatter the split.
+    ordered, perm = sf.reorder(op)
+    jop, xo = jax_operator(ordered), x[perm]
     one = jax.jit(shift_product)
-    fns["one device"] = lambda: one(jop, x).block_until_ready()
+    fns["one device"] = lambda: one(jop, xo).block_until_ready()
     for method in methods_available():
         t0 = time.perf_counter()
         parts = node_parts(s, devices, method)
@@ -126,6 +140,43 @@ def run(n: int, devices: int, rounds: int, rng) -> bool:
     return ok
 
 
+def memory(n: int, devices: int, rng, batch: int = 32, width: int = 16, taps: int = 5) -> None:
+    """Bytes per node of one forward+backward of a two-layer GNN (``width``
+    features, ``taps`` taps, mean readout, a batch of ``batch`` one-feature
+    signals), from XLA's compiled memory analysis (arguments + temporaries)
+    of the jitted gradient: on one device, per device with the batch split
+    (data parallel), and per device with the nodes split (METIS if
+    installed, else RCM), the last divided by the nodes a device owns."""
+    from stablefilt._model import ModelSpec, forward, init_params
+
+    a = geometric_adjacency(n, DEGREE, rng)
+    op = sf.shift_operator(a, "normalized-laplacian")
+    spec = ModelSpec((1, width, width), taps=taps, basis=sf.Basis("chebyshev", (0.0, 2.0)), readout="mean",
+                     outputs=3)
+    params = init_params(spec, 0)
+    jop = jax_operator(op)
+
+    def one(b):
+        x = np.zeros((b, n, 1), np.float32)
+        f = jax.jit(jax.grad(lambda p, o, x: jax.numpy.sum(forward(p, o, x, spec))))
+        m = f.lower(params, jop, x).compile().memory_analysis()
+        return m.argument_size_in_bytes + m.temp_size_in_bytes
+
+    mesh = node_mesh(devices)
+    plan = halo_plan(op.matrix, node_parts(op.matrix, devices, methods_available()[-1]), "", devices)
+    sh = sharded_operator(plan, mesh)
+    g = jax.jit(jax.grad(lambda p, o, x: jax.numpy.sum(sharded_forward(p, o, x, spec, mesh))))
+    m = g.lower(params, sh, np.zeros((batch, n, 1), np.float32)).compile().memory_analysis()
+    # The program is the same on every device; its figures are one device's.
+    split_nodes = m.temp_size_in_bytes + m.argument_size_in_bytes
+    print(f"\nmemory of one forward+backward, N = {n}, batch {batch}, 2 layers of {width} features, K = {taps} "
+          "(XLA memory analysis: arguments + temporaries)")
+    print(f"  one device:                    {one(batch) / n:9.0f} bytes per node")
+    print(f"  batch split over {devices} devices:   {one(-(-batch // devices)) / n:9.0f} bytes per node, per device")
+    print(f"  nodes split over {devices} devices:   {split_nodes / plan.block:9.0f} bytes per owned node, per device "
+          f"({plan.block} nodes each)")
+
+
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--sizes", default="1e4,1e5", help="node counts, comma-separated (default 1e4,1e5)")
@@ -135,7 +186,9 @@ def main(argv=None) -> int:
     print("simulated devices share one machine: sharded times show overhead, not real speed-up")
     print(machine_note())
     rng = np.random.default_rng(0)
-    ok = all([run(n, args.devices, args.rounds, rng) for n in parse_sizes(args.sizes)])
+    sizes = parse_sizes(args.sizes)
+    ok = all([run(n, args.devices, args.rounds, rng) for n in sizes])
+    memory(sizes[0], args.devices, rng)
     print(machine_note())
     return 0 if ok else 1
 
