@@ -98,7 +98,8 @@ class HaloPlan:
       method: how the parts were chosen (``rcm``, ``metis`` or ``given``).
       parts: ``(N,)`` part of each node.
       position: ``(N,)`` slot of each node in the padded, part-major order
-        (device ``d`` holds slots ``d R .. (d + 1) R - 1``).
+        (device ``d`` holds slots ``d R .. (d + 1) R - 1``; within a part the
+        nodes follow the reverse Cuthill-McKee order).
       block: ``R``, rows per device (the largest part).
       send: ``(D, W)`` local rows each device publishes (its boundary rows,
         padded with row 0).
@@ -166,8 +167,11 @@ def halo_plan(matrix, parts: np.ndarray, method: str = "given", devices: int | N
     d = max(int(parts.max()) + 1 if n else 1, int(devices or 1))
     sizes = np.bincount(parts, minlength=d)
     block = max(int(sizes.max()), 1)
-    # Slot of each node: part-major, the node order kept within a part.
-    order = np.argsort(parts, kind="stable")
+    # Slot of each node: part-major, and within a part in reverse
+    # Cuthill-McKee order (neighbours close in memory, as on one device).
+    rank = np.empty(n, np.int64)
+    rank[reverse_cuthill_mckee(sp.csr_matrix(m), symmetric_mode=True)] = np.arange(n)
+    order = np.lexsort((rank, parts))
     local = np.empty(n, np.int64)
     starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
     local[order] = np.arange(n) - np.repeat(starts, sizes)
