@@ -163,3 +163,64 @@ def parallel_functions(spec: ModelSpec, task: str, tx, pen_fn, active: bool, dev
         return _evaluate(params, _place_op(op), x, y, m)
 
     return step, evaluate
+
+
+def node_split_functions(spec: ModelSpec, task: str, tx, pen_fn, active: bool, devices: int, method: str):
+    """``(step, evaluate)`` with the trainer's signatures that split the
+    graph's nodes over ``devices`` devices instead of the batch
+    (:func:`stablefilt._sharded.sharded_forward`), the partition found by
+    ``method`` (``rcm`` or ``metis``) on the first call. The loss is the
+    trainer's: the mean of the per-signal losses plus the penalty."""
+    from ._partition import partition_plan
+    from ._sharded import node_mesh, sharded_forward, sharded_operator
+
+    check_devices(devices)
+    mesh = node_mesh(devices)
+    rep = NamedSharding(mesh, P())
+
+    def outputs(params, sop, xb, yb):
+        out = sharded_forward(params, sop, xb, spec, mesh)
+        return per_signal_loss(out, yb, task), per_signal_metric(out, yb, task)
+
+    def loss_fn(params, sop, xb, yb):
+        tl = jnp.mean(outputs(params, sop, xb, yb)[0])
+        pen = pen_fn(params) if active else jnp.float32(0.0)
+        return tl + pen, (tl, pen)
+
+    @jax.jit
+    def _step(params, opt_state, sop, xb, yb):
+        (loss, (tl, pen)), grads = jax.value_and_grad(loss_fn, has_aux=True)(params, sop, xb, yb)
+        updates, opt_state = tx.update(grads, opt_state, params)
+        params = optax.apply_updates(params, updates)
+        return params, opt_state, loss, tl, pen
+
+    @jax.jit
+    def _evaluate(params, sop, xb, yb):
+        lo, me = outputs(params, sop, xb, yb)
+        return jnp.mean(lo), (jnp.mean(me) if task == "classify" else jnp.sqrt(jnp.mean(me)))
+
+    placed = {}
+
+    def _sharded(op):
+        # The partition and the devices' rows, found once per operator.
+        key = id(op)
+        if key not in placed:
+            import scipy.sparse as sp
+
+            m = sp.csr_array((np.asarray(op.data, np.float64), np.asarray(op.indices), np.asarray(op.indptr)),
+                             shape=op.shape)
+            placed.clear()
+            placed[key] = (op, sharded_operator(partition_plan(m, devices, method), mesh, dtype=op.data.dtype))
+        return placed[key][1]
+
+    def _replicated(tree):
+        return jax.tree_util.tree_map(
+            lambda a: a if isinstance(a, jax.Array) and a.sharding == rep else _split(np.asarray(a), rep), tree)
+
+    def step(params, opt_state, op, xb, yb):
+        return _step(_replicated(params), _replicated(opt_state), _sharded(op), _replicated(xb), _replicated(yb))
+
+    def evaluate(params, op, xb, yb):
+        return _evaluate(_replicated(params), _sharded(op), _replicated(xb), _replicated(yb))
+
+    return step, evaluate

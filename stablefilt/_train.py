@@ -203,9 +203,11 @@ def _build_step_cached(key):
         return tl + pen, (tl, pen)
 
     devices = cfg["train"].get("devices", 1)
-    if devices > 1:  # the batch split over several devices (docs/devices.md)
-        from ._parallel import parallel_functions
+    if devices > 1:  # the batch or the nodes split over several devices (docs/devices.md)
+        from ._parallel import node_split_functions, parallel_functions
 
+        if cfg["train"].get("split", "signals") == "nodes":
+            return (tx,) + node_split_functions(spec, task, tx, pen_fn, active, devices, cfg["train"]["partition"])
         return (tx,) + parallel_functions(spec, task, tx, pen_fn, active, devices)
 
     @jax.jit

@@ -74,6 +74,8 @@ def test_devices_key_is_checked(tmp_path, capsys):
     number of devices JAX sees; otherwise one sentence, exit status 2."""
     with pytest.raises(ConfigError, match="positive integer"):
         parse_config(_config_text(0), ".")
+    with pytest.raises(ConfigError, match="train.split = 'edges' is invalid"):
+        parse_config(_config_text(1).replace("devices = 1", 'devices = 1\nsplit = "edges"'), ".")
     too_many = jax.device_count() + 1
     with pytest.raises(ConfigError, match=f"train.devices = {too_many} asks for more devices"):
         Trainer.from_config(parse_config(_config_text(too_many), "."))
@@ -87,20 +89,24 @@ def test_devices_key_is_checked(tmp_path, capsys):
 # Data parallel.
 
 
-def test_data_parallel_training_equals_one_device():
-    """Two epochs of the trainer's step on 4 devices give the parameters of
-    two epochs on one, and the same evaluation, within float32 round-off
-    (1e-5 relative; common practice for float32). 36 training signals in
-    batches of 10: every batch is padded to 12 with masked signals, so the
-    padding is exercised; evaluation on 12 signals needs none."""
+def test_training_on_four_devices_equals_one_device():
+    """Two epochs of the trainer's step on 4 devices, with the batch split
+    (``split = "signals"``) and with the nodes split (``split = "nodes"``,
+    METIS if installed, else RCM), give the parameters of two epochs on one
+    device and the same evaluation, within float32 round-off (1e-5
+    relative; common practice for float32). 36 training signals in batches
+    of 10: with the batch split every batch is padded to 12 with masked
+    signals, so the padding is exercised."""
+    partition = _methods()[-1]
     result = _run(f"""
         import json, numpy as np, jax
         from stablefilt import parse_config, init_params
         from stablefilt._train import Trainer, build_step
         assert jax.device_count() == 4
         params, evals = {{}}, {{}}
-        for d in (1, 4):
-            text = {_config_text(1)!r}.replace("devices = 1", f"devices = {{d}}")
+        for name, extra in (("one", "devices = 1"), ("signals", "devices = 4"),
+                            ("nodes", 'devices = 4\\nsplit = "nodes"\\npartition = "{partition}"')):
+            text = {_config_text(1)!r}.replace("devices = 1", extra)
             tr = Trainer.from_config(parse_config(text, "."))
             batches = tr.batches(1)
             tx, step, evaluate = build_step(tr, len(batches))
@@ -109,15 +115,17 @@ def test_data_parallel_training_equals_one_device():
             for epoch in (1, 2):
                 for b in tr.batches(epoch):
                     p, st, *_ = step(p, st, tr.op, tr.x[b], tr.y[b])
-            params[d] = [np.asarray(a) for a in jax.tree_util.tree_leaves(p)]
-            evals[d] = [float(v) for v in evaluate(p, tr.op, tr.x[tr.data.val], tr.y[tr.data.val])]
-        rel = max(float(np.max(np.abs(a - b)) / np.max(np.abs(a))) for a, b in zip(params[1], params[4]))
-        print(json.dumps({{"rel": rel, "leaves": len(params[1]), "sizes": [len(b) for b in batches],
-                          "e1": evals[1], "e4": evals[4]}}))
+            params[name] = [np.asarray(a) for a in jax.tree_util.tree_leaves(p)]
+            evals[name] = [float(v) for v in evaluate(p, tr.op, tr.x[tr.data.val], tr.y[tr.data.val])]
+        rel = {{k: max(float(np.max(np.abs(a - b)) / np.max(np.abs(a))) for a, b in zip(params["one"], params[k]))
+               for k in ("signals", "nodes")}}
+        print(json.dumps({{"rel": rel, "leaves": len(params["one"]), "sizes": [len(b) for b in batches],
+                          "evals": evals}}))
     """)
     assert result["leaves"] >= 4 and all(n % 4 for n in result["sizes"])  # padding was needed
-    assert result["rel"] < 1e-5, result
-    np.testing.assert_allclose(result["e4"], result["e1"], rtol=1e-5)
+    for split in ("signals", "nodes"):
+        assert result["rel"][split] < 1e-5, result
+        np.testing.assert_allclose(result["evals"][split], result["evals"]["one"], rtol=1e-5)
 
 
 # ---------------------------------------------------------------------------
