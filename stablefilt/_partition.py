@@ -3,16 +3,23 @@ shift product.
 
 Device ``d`` owns the rows of ``S`` of its part ``V_d``. Computing
 ``(S x)_i`` for ``i`` in ``V_d`` reads ``x_j`` for every neighbour ``j``;
-the neighbours outside ``V_d`` are the *halo* of ``d``. Each device
-publishes its *boundary* rows (those some other device needs), padded to a
-common width ``W``; one ``all_gather`` hands every device all boundary rows,
-and the product is local from then on.
+the neighbours outside ``V_d`` are the *halo* of ``d``. Two ways to hand
+every device its halo rows before the product, which is local from then on:
+
+* ``permute`` (default): for each shift ``s = 1 .. D-1`` with traffic,
+  device ``p`` sends device ``(p + s) mod D`` exactly the rows that device
+  reads from it (``jax.lax.ppermute``), padded to the widest pair of that
+  shift, ``W_s``; RCM blocks talk to their two neighbours only;
+* ``gather``: each device publishes its *boundary* rows (those any other
+  device needs), padded to a common width ``W``; one ``all_gather`` hands
+  every device all boundary rows.
 
 Per product on ``F`` columns of ``b``-byte numbers:
 
 * halo bytes (the least any exchange must move): ``b F sum_d |halo_d|``;
-* all_gather bytes (what this plan moves): ``b F D (D - 1) W``;
-* local bytes (the device's own rows it reads): ``b F N``.
+* moved bytes: ``b F D sum_s W_s`` (permute) or ``b F D (D - 1) W``
+  (gather);
+* local bytes (the devices' own rows): ``b F N``.
 
 Two partitions:
 
@@ -38,6 +45,7 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 from ._errors import ConfigError
 
 METHODS = ("rcm", "metis")
+EXCHANGES = ("permute", "gather")
 
 
 def _csr(matrix) -> sp.csr_array:
@@ -109,6 +117,9 @@ class HaloPlan:
         have ``vals = 0``.
       halo: ``(D,)`` number of distinct rows each device needs from others.
       nnz: ``(D,)`` stored entries of each device's rows (before padding).
+      exchange: ``permute`` or ``gather``.
+      shifts: for ``permute``, the ``(s, W_s)`` pairs with traffic, in the
+        order of ``send``'s segments; empty for ``gather``.
     """
 
     method: str
@@ -121,6 +132,8 @@ class HaloPlan:
     vals: np.ndarray
     halo: np.ndarray
     nnz: np.ndarray
+    exchange: str = "gather"
+    shifts: tuple = ()
 
     @property
     def devices(self) -> int:
@@ -138,10 +151,19 @@ class HaloPlan:
         """Bytes any exchange must move per product: ``b F sum_d |halo_d|``."""
         return int(itemsize * features * int(self.halo.sum()))
 
-    def gather_bytes(self, features: int = 1, itemsize: int = 4) -> int:
-        """Bytes the ``all_gather`` of this plan moves: ``b F D (D - 1) W``."""
+    @property
+    def extended(self) -> int:
+        """Rows of a device's extended vector: its own and those received."""
+        if self.exchange == "gather":
+            return self.block + self.devices * self.width
+        return self.block + self.width
+
+    def moved_bytes(self, features: int = 1, itemsize: int = 4) -> int:
+        """Bytes the exchange moves per product: ``b F D (D - 1) W``
+        (gather) or ``b F D sum_s W_s`` (permute)."""
         d = self.devices
-        return int(itemsize * features * d * (d - 1) * self.width)
+        rows = d * (d - 1) * self.width if self.exchange == "gather" else d * sum(w for _, w in self.shifts)
+        return int(itemsize * features * rows)
 
     def local_bytes(self, features: int = 1, itemsize: int = 4) -> int:
         """Bytes of the devices' own rows read per product: ``b F N``."""
@@ -151,14 +173,18 @@ class HaloPlan:
         return {"method": self.method, "devices": self.devices, "nodes": self.nodes, "block": self.block,
                 "width": self.width, "halo_rows": int(self.halo.sum()), "nnz": [int(z) for z in self.nnz],
                 "halo_bytes": self.halo_bytes(features, itemsize),
-                "gather_bytes": self.gather_bytes(features, itemsize),
+                "exchange": self.exchange, "moved_bytes": self.moved_bytes(features, itemsize),
                 "local_bytes": self.local_bytes(features, itemsize)}
 
 
-def halo_plan(matrix, parts: np.ndarray, method: str = "given", devices: int | None = None) -> HaloPlan:
+def halo_plan(matrix, parts: np.ndarray, method: str = "given", devices: int | None = None,
+              exchange: str = "permute") -> HaloPlan:
     """The :class:`HaloPlan` of ``matrix`` (``N x N``, symmetric) split by
     ``parts`` (``(N,)`` ints) over ``devices`` devices (default
-    ``max(parts) + 1``; a part may be empty)."""
+    ``max(parts) + 1``; a part may be empty), exchanging halo rows by
+    ``exchange`` (``permute`` or ``gather``, module docstring)."""
+    if exchange not in EXCHANGES:
+        raise ConfigError(f"unknown exchange {exchange!r}; expected one of {', '.join(EXCHANGES)}.")
     m = _csr(matrix)
     n = m.shape[0]
     parts = np.asarray(parts, np.int64)
@@ -180,15 +206,12 @@ def halo_plan(matrix, parts: np.ndarray, method: str = "given", devices: int | N
     r, c, v = coo.row.astype(np.int64), coo.col.astype(np.int64), coo.data
     pr, pc = parts[r], parts[c]
     cross = pr != pc
-    # Boundary rows of each part: nodes some other part reads.
-    boundary = [np.unique(c[cross & (pc == p)]) for p in range(d)]
-    width = max(1, max((len(b) for b in boundary), default=0))
-    send = np.zeros((d, width), np.int64)
-    slot_in_send = np.zeros(n, np.int64)
-    for p, b in enumerate(boundary):
-        send[p, :len(b)] = local[b]
-        slot_in_send[b] = np.arange(len(b))
-    ext = np.where(cross, block + pc * width + slot_in_send[c], local[c])
+    if exchange == "gather":
+        send, ext_cross, shifts = _gather_layout(c, cross, pc, local, d, block, n)
+    else:
+        send, ext_cross, shifts = _permute_layout(c, cross, pr, pc, local, d, block)
+    ext = local[c].copy()
+    ext[cross] = ext_cross
     nnz = np.bincount(pr, minlength=d)
     z = max(1, int(nnz.max()) if n else 1)
     rows = np.zeros((d, z), np.int64)
@@ -200,9 +223,53 @@ def halo_plan(matrix, parts: np.ndarray, method: str = "given", devices: int | N
         k = int(sel.sum())
         rows[p, :k], cols[p, :k], vals[p, :k] = local[r[sel]], ext[sel], v[sel]
         halo[p] = np.unique(c[sel & cross]).size
-    return HaloPlan(method, parts, position, block, send, rows, cols, vals, halo, nnz)
+    return HaloPlan(method, parts, position, block, send, rows, cols, vals, halo, nnz, exchange, shifts)
 
 
-def partition_plan(matrix, devices: int, method: str = "rcm") -> HaloPlan:
+def _gather_layout(c, cross, pc, local, d: int, block: int, n: int):
+    """Every part publishes its boundary rows (nodes any other part reads),
+    padded to the widest, ``W``; the extended vector is ``[own ; D W]``."""
+    boundary = [np.unique(c[cross & (pc == p)]) for p in range(d)]
+    width = max(1, max((len(b) for b in boundary), default=0))
+    send = np.zeros((d, width), np.int64)
+    slot_in_send = np.zeros(n, np.int64)
+    for p, b in enumerate(boundary):
+        send[p, :len(b)] = local[b]
+        slot_in_send[b] = np.arange(len(b))
+    return send, block + pc[cross] * width + slot_in_send[c[cross]], ()
+
+
+def _permute_layout(c, cross, pr, pc, local, d: int, block: int):
+    """For each shift ``s`` with traffic, part ``p`` sends part
+    ``(p + s) mod D`` exactly the rows it reads from ``p``, padded to the
+    widest pair of that shift, ``W_s``; the extended vector of a part is
+    ``[own ; received at shift s_1 ; at s_2 ; ...]``."""
+    cc, rr, cp = c[cross], pr[cross], pc[cross]
+    shift_of = (rr - cp) % d
+    lists = {}  # (s, sender) -> sorted nodes sent
+    for s in range(1, d):
+        for p in range(d):
+            sel = (shift_of == s) & (cp == p)
+            if sel.any():
+                lists[s, p] = np.unique(cc[sel])
+    shifts = tuple((s, max(len(lists[s, p]) for p in range(d) if (s, p) in lists))
+                   for s in range(1, d) if any((s, p) in lists for p in range(d)))
+    total = max(1, sum(w for _, w in shifts))
+    send = np.zeros((d, total), np.int64)
+    ext_cross = np.zeros(cc.shape[0], np.int64)
+    off = 0
+    for s, w in shifts:
+        for p in range(d):
+            nodes = lists.get((s, p))
+            if nodes is None:
+                continue
+            send[p, off:off + len(nodes)] = local[nodes]
+            sel = (shift_of == s) & (cp == p)
+            ext_cross[sel] = block + off + np.searchsorted(nodes, cc[sel])
+        off += w
+    return send, ext_cross, shifts
+
+
+def partition_plan(matrix, devices: int, method: str = "rcm", exchange: str = "permute") -> HaloPlan:
     """:func:`halo_plan` of the partition ``method`` into ``devices`` parts."""
-    return halo_plan(matrix, node_parts(matrix, devices, method), method, devices)
+    return halo_plan(matrix, node_parts(matrix, devices, method), method, devices, exchange)

@@ -3,9 +3,10 @@ over devices: each device holds ``R`` rows of ``S`` and of every signal.
 
 One product ``y = S x`` on device ``d`` (plan in :mod:`stablefilt._partition`):
 
-1. ``p_d = x_d[send_d]``: the boundary rows other devices read;
-2. ``P = all_gather(p)``: every device receives all published rows
-   (``jax.lax.all_gather`` inside :func:`jax.shard_map`);
+1. ``p_d = x_d[send_d]``: the rows other devices read;
+2. ``P``: the rows device ``d`` reads from others, received by one
+   ``jax.lax.ppermute`` per shift with traffic (or one ``all_gather`` of
+   every device's boundary rows), inside :func:`jax.shard_map`;
 3. ``y_d = L_d [x_d ; P]``, with ``L_d`` the device's rows of ``S`` as a
    CSR matrix whose columns index the extended vector (the BCSR kernel of
    the single-device path, :mod:`stablefilt._sparse`).
@@ -14,7 +15,8 @@ Only ``x`` (``R x M`` per device) and the published rows ever sit on a
 device, never the whole signal, so a graph too large for one device's
 memory fits on several. The backward pass is sharded the same way: the
 cotangent of ``L_d e`` is ``L_d^T g`` (a stored transposed CSR, one more
-local product) and ``all_gather`` transposes to a reduce-scatter that sends
+local product) and the exchange transposes to the reverse exchange
+(``ppermute`` backwards, ``all_gather`` to a reduce-scatter), which sends
 each halo row's cotangent back to its owner. The filter recursions and the layers are those of
 :func:`stablefilt._filters.run_filter` and :func:`stablefilt._model.forward`,
 with this product in place of the single-device one.
@@ -55,20 +57,21 @@ class ShardedShift(NamedTuple):
 
     ``local`` holds ``(D, ...)`` arrays split on their first axis (device
     ``d`` holds row ``d``): ``send`` and the CSR arrays ``(data, indices,
-    indptr)`` of each device's rows ``L_d`` (``R x (R + D W)``, columns in
-    the extended vector) and of their transpose ``L_d^T``, padded to equal
+    indptr)`` of each device's rows ``L_d`` (``R x E``, columns in the
+    extended vector of ``E`` rows, :attr:`HaloPlan.extended`) and of their transpose ``L_d^T``, padded to equal
     lengths with zero entries in the last row. ``position`` is ``(N,)``,
-    replicated. ``block`` (``R``) and ``width`` (``W``) are static."""
+    replicated. ``block`` (``R``), ``devices`` and ``shifts`` are static."""
 
     local: tuple
     position: jax.Array
     block: int
-    width: int
+    devices: int
+    shifts: tuple  # (s, W_s) of a permute exchange; () for gather
 
 
 jax.tree_util.register_pytree_node(
     ShardedShift,
-    lambda s: ((s.local, s.position), (s.block, s.width)),
+    lambda s: ((s.local, s.position), (s.block, s.devices, s.shifts)),
     lambda aux, ch: ShardedShift(*ch, *aux),
 )
 
@@ -95,7 +98,7 @@ def sharded_operator(plan: HaloPlan, mesh: Mesh, dtype=jnp.float32) -> ShardedSh
         a = np.asarray(a, dt)
         return jax.make_array_from_callback(a.shape, sharding, lambda idx: a[idx])
 
-    r, ext = plan.block, plan.block + plan.devices * plan.width
+    r, ext = plan.block, plan.extended
     z = max(1, int(plan.nnz.max()))
     fwd, bwd = [], []
     for d in range(plan.devices):
@@ -108,7 +111,8 @@ def sharded_operator(plan: HaloPlan, mesh: Mesh, dtype=jnp.float32) -> ShardedSh
         np.stack([c[i] for c in bwd]) for i in range(3)]
     kinds = [np.int32, dtype, np.int32, np.int32, dtype, np.int32, np.int32]
     local = tuple(put(a, split, k) for a, k in zip(arrays, kinds))
-    return ShardedShift(local, put(plan.position, rep, np.int32), int(plan.block), int(plan.width))
+    shifts = tuple((int(a), int(w)) for a, w in plan.shifts) if plan.exchange == "permute" else ()
+    return ShardedShift(local, put(plan.position, rep, np.int32), int(plan.block), int(plan.devices), shifts)
 
 
 def _varying(y, like):
@@ -145,12 +149,20 @@ def _csr_product_bwd(shape, tshape, res, g):
 _csr_product.defvjp(_csr_product_fwd, _csr_product_bwd)
 
 
-def _local_product(local, block: int, width: int, x):
+def _local_product(op: ShardedShift, local, x):
     """``S x`` on one device's rows (inside ``shard_map``); ``x`` is
     ``(R, M)``, the device's rows of the signal."""
     send, data, indices, indptr, tdata, tindices, tindptr = (a[0] for a in local)
-    published = jax.lax.all_gather(x[send], AXIS, tiled=True)  # (D W, M)
-    ext = jnp.concatenate([x, published], axis=0)
+    out = x[send]
+    if op.shifts:  # permute: each shift's rows straight to the device that reads them
+        d, pieces, off = op.devices, [x], 0
+        for s, w in op.shifts:
+            pieces.append(jax.lax.ppermute(out[off:off + w], AXIS, perm=[(i, (i + s) % d) for i in range(d)]))
+            off += w
+        ext = jnp.concatenate(pieces, axis=0)
+    else:  # gather: every device receives all published rows, (D W, M)
+        ext = jnp.concatenate([x, jax.lax.all_gather(out, AXIS, tiled=True)], axis=0)
+    block = op.block
     shape = (block, ext.shape[0])
     return _csr_product(shape, shape[::-1], (data.astype(x.dtype), indices, indptr),
                         (tdata.astype(x.dtype), tindices, tindptr), ext)
@@ -174,7 +186,7 @@ def slot_product(op: ShardedShift, xs, mesh: Mesh):
     the exchange and the local products only."""
 
     def body(local, xl):
-        return _local_product(local, op.block, op.width, xl)
+        return _local_product(op, local, xl)
 
     spec = P(AXIS)
     return jax.shard_map(body, mesh=mesh, in_specs=(spec, spec), out_specs=spec)(op.local, xs)
@@ -199,7 +211,7 @@ def sharded_filter(op: ShardedShift, taps, x, basis: Basis, mesh: Mesh):
     xs = _to_slots(op, x[:, None] if vec else x, mesh.size, 0)
 
     def body(local, c, xl):
-        return run_filter(lambda z: _local_product(local, op.block, op.width, z), c, xl, basis, xp=jnp)
+        return run_filter(lambda z: _local_product(op, local, z), c, xl, basis, xp=jnp)
 
     spec = P(AXIS)
     y = jax.shard_map(body, mesh=mesh, in_specs=(spec, P(), spec), out_specs=spec)(op.local, jnp.asarray(taps), xs)
@@ -215,7 +227,7 @@ def sharded_forward(params: dict, op: ShardedShift, x, spec: ModelSpec, mesh: Me
     xs = _to_slots(op, jnp.asarray(x), mesh.size, 1)
 
     def body(local, layers, xl):
-        return forward({"layers": layers}, lambda v: _local_product(local, op.block, op.width, v), xl, inner)
+        return forward({"layers": layers}, lambda v: _local_product(op, local, v), xl, inner)
 
     nodes = P(None, AXIS)
     h = jax.shard_map(body, mesh=mesh, in_specs=(P(AXIS), P(), nodes), out_specs=nodes)(

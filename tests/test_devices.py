@@ -132,26 +132,34 @@ def test_training_on_four_devices_equals_one_device():
 # Partitions and halo plans (no devices needed).
 
 
+@pytest.mark.parametrize("exchange", ["permute", "gather"])
 @pytest.mark.parametrize("method", ["rcm", "metis"])
-def test_halo_plan_counts_the_halo_and_rebuilds_the_matrix(method):
+def test_halo_plan_counts_the_halo_and_rebuilds_the_matrix(method, exchange):
     """Each device's halo is the node boundary of its part
-    (``networkx.node_boundary``), and the plan's local entries, mapped back
-    to global indices, are exactly the matrix's entries."""
+    (``networkx.node_boundary``), the plan's local entries, mapped back to
+    global indices through the exchange, are exactly the matrix's entries,
+    and a permute exchange moves no more rows than a gather."""
     if method == "metis":
         pytest.importorskip("pymetis", reason="the METIS partition needs the optional package pymetis")
     a = geometric(200, 0.12, seed=3)
     a = sp.csr_array(a + sp.diags_array(np.linspace(0.5, 1.5, 200)))  # self loops stay local
-    plan = partition_plan(a, 4, method)
+    plan = partition_plan(a, 4, method, exchange)
     g = nx.from_scipy_sparse_array(a)
     assert plan.devices == 4 and sorted(np.unique(plan.parts)) == [0, 1, 2, 3]
     slot_node = np.full(4 * plan.block, -1)
     slot_node[plan.position] = np.arange(200)
+    sent = slot_node[np.arange(4)[:, None] * plan.block + plan.send]  # (D, width): global node of each sent row
     rebuilt = np.zeros((200, 200))
     for d in range(4):
         part = set(np.flatnonzero(plan.parts == d))
         assert plan.halo[d] == len(nx.node_boundary(g, part))
-        published = slot_node[np.arange(4)[:, None] * plan.block + plan.send].ravel()
-        ext = np.concatenate([slot_node[d * plan.block:(d + 1) * plan.block], published])
+        if exchange == "gather":
+            received = sent.ravel()
+        else:  # shift s brings device (d - s) mod D's segment s
+            offs = np.cumsum([0] + [w for _, w in plan.shifts])
+            received = np.concatenate([sent[(d - s) % 4, offs[i]:offs[i + 1]] for i, (s, _) in enumerate(plan.shifts)])
+        ext = np.concatenate([slot_node[d * plan.block:(d + 1) * plan.block], received])
+        assert ext.shape[0] == plan.extended
         k = plan.nnz[d]
         rows = slot_node[d * plan.block + plan.rows[d, :k]]
         np.add.at(rebuilt, (rows, ext[plan.cols[d, :k]]), plan.vals[d, :k])
@@ -159,6 +167,9 @@ def test_halo_plan_counts_the_halo_and_rebuilds_the_matrix(method):
     np.testing.assert_array_equal(rebuilt, a.toarray())
     s = plan.summary(3)
     assert s["halo_bytes"] == 4 * 3 * int(plan.halo.sum()) and s["local_bytes"] == 4 * 3 * 200
+    assert s["halo_bytes"] <= s["moved_bytes"]
+    if exchange == "permute":
+        assert s["moved_bytes"] <= halo_plan(a, plan.parts, devices=4, exchange="gather").moved_bytes(3)
 
 
 def test_rcm_parts_are_balanced_and_corner_cases():
@@ -199,7 +210,8 @@ def _methods():
 def test_sharded_product_equals_scipy_csr():
     """``S x`` with the nodes split over 4 devices equals scipy's float64
     CSR product (the reference) within float32 round-off, for a random
-    geometric graph and for a disconnected graph with isolated nodes."""
+    geometric graph and for a disconnected graph with isolated nodes, with
+    either exchange."""
     result = _run(_SHARDED_SETUP.format(methods=_methods()) + """
     rng = np.random.default_rng(0)
     g = nx.random_geometric_graph(300, 0.1, seed=1)
@@ -208,15 +220,15 @@ def test_sharded_product_equals_scipy_csr():
     errs = []
     for m in (a, b):
         m = sp.csr_array(m, dtype=np.float64)
-        for method in methods:
-            op = sharded_operator(partition_plan(m, 4, method), mesh)
+        for method, exchange in [(a, b) for a in methods for b in ("permute", "gather")]:
+            op = sharded_operator(partition_plan(m, 4, method, exchange), mesh)
             for x in (rng.standard_normal((m.shape[0], 3)), rng.standard_normal(m.shape[0])):
                 y = np.asarray(jax.jit(lambda o, v: sharded_product(o, v, mesh))(op, x.astype(np.float32)))
                 ref = m @ x  # scipy CSR, float64
                 errs.append(float(np.max(np.abs(y - ref)) / np.max(np.abs(ref))))
     print(json.dumps({"errs": errs}))
     """)
-    assert len(result["errs"]) == 4 * len(_methods())
+    assert len(result["errs"]) == 8 * len(_methods())
     assert max(result["errs"]) < 1e-5, result
 
 
@@ -253,7 +265,9 @@ def test_sharded_filter_bank_and_gnn_equal_one_device():
     jop = jax_operator(op)
     xb = rng.standard_normal((5, 240, 3)).astype(np.float32)
     for method in methods:
-        sh = sharded_operator(partition_plan(s, 4, method), mesh)
+        # The gather exchange after RCM, the permute exchange after METIS (or after RCM without pymetis).
+        exchange = "gather" if method == "rcm" and len(methods) > 1 else "permute"
+        sh = sharded_operator(partition_plan(s, 4, method, exchange), mesh)
         f = jax.jit(lambda c: sharded_filter(sh, c, x.astype(np.float32), basis, mesh))
         y = np.asarray(f(taps.astype(np.float32)))
         out["bank"].append(float(np.max(np.abs(y - ref_y)) / np.max(np.abs(ref_y))))
