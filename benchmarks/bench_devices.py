@@ -10,17 +10,19 @@ Per partition (``stablefilt._partition``):
 
 - ``halo rows``: rows every device needs from others, summed over devices;
 - ``halo MB``: those rows' bytes, the least any exchange must move;
-- ``gather MB``: what the plan's ``all_gather`` moves (``D (D-1) W`` rows,
-  ``W`` the widest device's boundary);
+- ``permute MB``: what the default exchange moves (one ``ppermute`` per
+  shift ``s``, ``D W_s`` rows, ``W_s`` the widest pair of that shift);
+- ``gather MB``: what the ``all_gather`` exchange moves (``D (D-1) W``
+  rows, ``W`` the widest device's boundary);
 - ``local MB``: bytes of the rows the devices own (``N F 4``);
 - ``cut``: edges between parts; ``seconds``: time to find the partition.
 
 Times (interleaved rounds, medians): ``one device`` is ``jit`` of the
 library's single-device product (BCSR) in the trainer's node order (RCM),
-the reference; ``sharded rcm`` and
-``sharded metis`` run ``stablefilt._sharded.sharded_product`` (signal in
-node order: spread to the devices' slots, product, gathered back);
-``slots rcm`` and ``slots metis`` the exchange and local products alone on
+the reference; ``sharded rcm`` and ``sharded metis`` run
+``stablefilt._sharded.sharded_product`` with the permute exchange (signal
+in node order: spread to the devices' slots, product, gathered back);
+``slots <partition> <exchange>`` the exchange and local products alone on
 a signal already split (what each layer of a sharded model does). The simulated
 devices share this machine's cores and memory, so the sharded times show
 the overhead of the exchange and the scatter-add kernel, not the speed-up
@@ -62,7 +64,7 @@ from _common import geometric_adjacency, interleaved, machine_note, ms, parse_si
 from jax.sharding import NamedSharding, PartitionSpec  # noqa: E402
 
 import stablefilt as sf  # noqa: E402
-from stablefilt._partition import METHODS, halo_plan, node_parts  # noqa: E402
+from stablefilt._partition import EXCHANGES, METHODS, halo_plan, node_parts  # noqa: E402
 from stablefilt._sharded import (  # noqa: E402
     node_mesh,
     sharded_forward,
@@ -101,8 +103,8 @@ def run(n: int, devices: int, rounds: int, rng) -> bool:
     ref = s @ x.astype(np.float64)
     mesh = node_mesh(devices)
     print(f"\nN = {n}, edges {op.edges}, {devices} devices, F = {F} float32 columns")
-    print(f"{'partition':10s} {'seconds':>8s} {'cut':>8s} {'halo rows':>10s} {'halo MB':>9s} {'gather MB':>10s} "
-          f"{'local MB':>9s} {'halo/local':>10s} {'gather/local':>12s}")
+    print(f"{'partition':10s} {'seconds':>8s} {'cut':>7s} {'halo rows':>10s} {'halo MB':>8s} {'permute MB':>11s} "
+          f"{'gather MB':>10s} {'local MB':>9s} {'halo/local':>10s} {'permute/local':>13s} {'gather/local':>12s}")
     fns, ok = {}, True
     # One device in the trainer's node order (reverse Cuthill-McKee): the
     # random order would slow it by cache misses and flatter the split.
@@ -114,28 +116,32 @@ def run(n: int, devices: int, rounds: int, rng) -> bool:
         t0 = time.perf_counter()
         parts = node_parts(s, devices, method)
         seconds = time.perf_counter() - t0
-        plan = halo_plan(s, parts, method, devices)
+        plans = {ex: halo_plan(s, parts, method, devices, ex) for ex in EXCHANGES}
         coo = s.tocoo()
         cut = int(np.sum(parts[coo.row] != parts[coo.col]) // 2)
-        h, g, lo = plan.halo_bytes(F), plan.gather_bytes(F), plan.local_bytes(F)
-        print(f"{method:10s} {seconds:8.3f} {cut:8d} {int(plan.halo.sum()):10d} {h * MB:9.3f} {g * MB:10.3f} "
-              f"{lo * MB:9.3f} {h / lo:10.4f} {g / lo:12.4f}")
-        sh = sharded_operator(plan, mesh)
-        f = jax.jit(lambda o, v: sharded_product(o, v, mesh))
-        err = float(np.max(np.abs(np.asarray(f(sh, x)) - ref)) / np.max(np.abs(ref)))
-        if err > 1e-5:
-            print(f"WRONG RESULT: sharded {method} product differs from scipy's by {err:.2e} (relative)")
-            ok = False
-        fns[f"sharded {method}"] = (lambda f=f, sh=sh: f(sh, x).block_until_ready())
-        # The exchange and local products alone, on a signal already split in slot order.
-        xs = jax.device_put(_slots(plan, x, devices), NamedSharding(mesh, PartitionSpec("nodes")))
-        fs = jax.jit(lambda o, v: slot_product(o, v, mesh))
-        fns[f"slots {method}"] = (lambda fs=fs, sh=sh, xs=xs: fs(sh, xs).block_until_ready())
+        pm, gm = plans["permute"], plans["gather"]
+        h, lo = pm.halo_bytes(F), pm.local_bytes(F)
+        mp, mg = pm.moved_bytes(F), gm.moved_bytes(F)
+        print(f"{method:10s} {seconds:8.3f} {cut:7d} {int(pm.halo.sum()):10d} {h * MB:8.3f} {mp * MB:11.3f} "
+              f"{mg * MB:10.3f} {lo * MB:9.3f} {h / lo:10.4f} {mp / lo:13.4f} {mg / lo:12.4f}")
+        for ex, plan in plans.items():
+            sh = sharded_operator(plan, mesh)
+            f = jax.jit(lambda o, v: sharded_product(o, v, mesh))
+            err = float(np.max(np.abs(np.asarray(f(sh, x)) - ref)) / np.max(np.abs(ref)))
+            if err > 1e-5:
+                print(f"WRONG RESULT: sharded {method} {ex} product differs from scipy's by {err:.2e} (relative)")
+                ok = False
+            if ex == "permute":
+                fns[f"sharded {method}"] = (lambda f=f, sh=sh: f(sh, x).block_until_ready())
+            # The exchange and local products alone, on a signal already split in slot order.
+            xs = jax.device_put(_slots(plan, x, devices), NamedSharding(mesh, PartitionSpec("nodes")))
+            fs = jax.jit(lambda o, v: slot_product(o, v, mesh))
+            fns[f"slots {method} {ex}"] = (lambda fs=fs, sh=sh, xs=xs: fs(sh, xs).block_until_ready())
     times = interleaved(fns, rounds)
-    print(f"{'product':16s} {'median ms':>10s} {'x one device':>13s} {'quartiles':>16s}")
+    print(f"{'product':22s} {'median ms':>10s} {'x one device':>13s} {'quartiles':>16s}")
     for name in fns:
         q = spread(times, name, "one device")
-        print(f"{name:16s} {ms(times[name]):10.3f} {ratio(times, name, 'one device'):13.2f} "
+        print(f"{name:22s} {ms(times[name]):10.3f} {ratio(times, name, 'one device'):13.2f} "
               f"{q[0]:7.2f}-{q[1]:<7.2f}")
     return ok
 
@@ -163,7 +169,7 @@ def memory(n: int, devices: int, rng, batch: int = 32, width: int = 16, taps: in
         return m.argument_size_in_bytes + m.temp_size_in_bytes
 
     mesh = node_mesh(devices)
-    plan = halo_plan(op.matrix, node_parts(op.matrix, devices, methods_available()[-1]), "", devices)
+    plan = halo_plan(op.matrix, node_parts(op.matrix, devices, methods_available()[-1]), "", devices, "permute")
     sh = sharded_operator(plan, mesh)
     g = jax.jit(jax.grad(lambda p, o, x: jax.numpy.sum(sharded_forward(p, o, x, spec, mesh))))
     m = g.lower(params, sh, np.zeros((batch, n, 1), np.float32)).compile().memory_analysis()
