@@ -55,6 +55,9 @@ def check_devices(count) -> int:
 
 def signal_mesh(count: int) -> Mesh:
     """A one-axis mesh named ``signals`` over the first ``count`` devices."""
+    from ._sharded import require_shard_map
+
+    require_shard_map()
     return Mesh(np.array(jax.devices()[:check_devices(count)]), (AXIS,))
 
 

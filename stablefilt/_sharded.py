@@ -44,8 +44,16 @@ from ._partition import HaloPlan
 AXIS = "nodes"
 
 
+def require_shard_map() -> None:
+    """Refuse, in one sentence, a JAX without ``jax.shard_map`` (added to
+    the public API in JAX 0.7)."""
+    if not hasattr(jax, "shard_map"):
+        raise ConfigError(f"several devices need JAX 0.7 or later (jax.shard_map); this is JAX {jax.__version__}.")
+
+
 def node_mesh(devices: int) -> Mesh:
     """A one-axis mesh named ``nodes`` over the first ``devices`` devices."""
+    require_shard_map()
     have = jax.device_count()
     if not isinstance(devices, int) or devices < 1 or devices > have:
         raise ConfigError(f"the graph can be split over 1 to {have} devices (the ones JAX sees); got {devices!r}.")
