@@ -302,12 +302,15 @@ def _free_port() -> int:
         return sock.getsockname()[1]
 
 
-def test_two_processes_train_like_one(tmp_path):
+@pytest.mark.parametrize("split", ["signals", "nodes"])
+def test_two_processes_train_like_one(tmp_path, split):
     """``stablefilt train`` in two local processes joined by
     ``STABLEFILT_COORDINATOR`` (one CPU device each, ``train.devices = 2``,
-    gloo collectives) ends with the parameters of a one-process run, within
-    float32 round-off (common practice)."""
-    H.write(tmp_path / "two.toml", _config_text(2))
+    gloo collectives), with the batch or the nodes split over the two,
+    ends with the parameters of a one-process run, within float32 round-off
+    (common practice)."""
+    extra = f'split = "{split}"\npartition = "{_methods()[-1]}"'
+    H.write(tmp_path / "two.toml", _config_text(2).replace("devices = 2", f"devices = 2\n{extra}"))
     H.write(tmp_path / "one.toml", _config_text(1))
     addr = f"127.0.0.1:{_free_port()}"
     cmd = [sys.executable, "-m", "stablefilt.cli", "train", "--quiet"]
