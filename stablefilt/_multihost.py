@@ -20,6 +20,9 @@ from ._errors import ConfigError, RunError
 
 VARIABLES = ("STABLEFILT_COORDINATOR", "STABLEFILT_PROCESSES", "STABLEFILT_PROCESS_ID")
 
+#: How long a process waits for the others to join before giving up.
+JOIN_SECONDS = 300
+
 _joined = False
 
 
@@ -51,7 +54,8 @@ def join_from_env(environ=None) -> bool:
 
     try:
         jax.config.update("jax_cpu_collectives_implementation", "gloo")
-        jax.distributed.initialize(coordinator_address=addr, num_processes=count, process_id=index)
+        jax.distributed.initialize(coordinator_address=addr, num_processes=count, process_id=index,
+                                   initialization_timeout=JOIN_SECONDS)
     except Exception as exc:  # the runtime reports timeouts and late starts as several types
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise RunError(f"could not join the {count}-process run at {addr} as process {index} ({first}).") from None

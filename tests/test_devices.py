@@ -334,3 +334,21 @@ def test_two_processes_train_like_one(tmp_path, split):
         got = np.load(tmp_path / f"r{i}" / "checkpoint.npz")
         for k in keys:
             assert np.max(np.abs(got[k] - ref[k])) <= 1e-5 * np.max(np.abs(ref[k])), (i, k)
+
+
+@pytest.mark.parametrize("env, word", [
+    ({"STABLEFILT_COORDINATOR": "hostonly"}, "STABLEFILT_COORDINATOR"),
+    ({"STABLEFILT_COORDINATOR": "127.0.0.1:1", "STABLEFILT_PROCESSES": "two"}, "STABLEFILT_PROCESSES"),
+    ({"STABLEFILT_COORDINATOR": "127.0.0.1:1", "STABLEFILT_PROCESSES": "2", "STABLEFILT_PROCESS_ID": "2"},
+     "STABLEFILT_PROCESS_ID"),
+])
+def test_bad_process_variables_are_one_sentence(tmp_path, capsys, monkeypatch, env, word):
+    """Malformed process variables are refused before JAX's runtime starts:
+    one sentence naming the variable, exit status 2 (the project's
+    bad-input rule)."""
+    for k, v in env.items():
+        monkeypatch.setenv(k, v)
+    cfg = H.write(tmp_path / "c.toml", _config_text(1))
+    line = H.one_line_exit_2(capsys, ["train", cfg, "--out", str(tmp_path / "run")])
+    assert word in line
+    assert not (tmp_path / "run").exists()
