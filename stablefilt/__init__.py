@@ -85,3 +85,15 @@ from ._runs import Run as Run
 from ._runs import compare_rows as compare_rows
 from ._runs import open_run as open_run
 from ._train import train as train
+
+# Several devices: the graph's nodes split over devices (docs/devices.md).
+from ._partition import HaloPlan as HaloPlan
+from ._partition import halo_plan as halo_plan
+from ._partition import node_parts as node_parts
+from ._partition import partition_plan as partition_plan
+from ._sharded import ShardedShift as ShardedShift
+from ._sharded import node_mesh as node_mesh
+from ._sharded import sharded_filter as sharded_filter
+from ._sharded import sharded_forward as sharded_forward
+from ._sharded import sharded_operator as sharded_operator
+from ._sharded import sharded_product as sharded_product

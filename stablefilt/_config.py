@@ -140,6 +140,9 @@ SCHEMA = {
         "batch_size": (_nonneg_int, 32),
         "patience": (_nonneg_int, 0),
         "seed": (_nonneg_int, 0),
+        "devices": (_pos_int, 1),
+        "split": (_choice(("signals", "nodes")), "signals"),
+        "partition": (_choice(("rcm", "metis")), "rcm"),
     },
     "certify": {
         "eps": (_eps_list, [0.001, 0.01]),

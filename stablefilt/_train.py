@@ -136,6 +136,10 @@ class Trainer:
 
     @classmethod
     def from_config(cls, config: Config, seed: int | None = None) -> "Trainer":
+        if config["train"].get("devices", 1) > 1:
+            from ._parallel import check_devices
+
+            check_devices(config["train"]["devices"])
         data = build_dataset(config)
         interval = spectral_interval(data.op)
         spec = model_spec(config, interval, data.x.shape[2], data.classes, data.op.nodes)
@@ -197,6 +201,14 @@ def _build_step_cached(key):
         tl = task_loss(out, yb, task)
         pen = pen_fn(params) if active else jnp.float32(0.0)
         return tl + pen, (tl, pen)
+
+    devices = cfg["train"].get("devices", 1)
+    if devices > 1:  # the batch or the nodes split over several devices (docs/devices.md)
+        from ._parallel import node_split_functions, parallel_functions
+
+        if cfg["train"].get("split", "signals") == "nodes":
+            return (tx,) + node_split_functions(spec, task, tx, pen_fn, active, devices, cfg["train"]["partition"])
+        return (tx,) + parallel_functions(spec, task, tx, pen_fn, active, devices)
 
     @jax.jit
     def step(params, opt_state, op, xb, yb):

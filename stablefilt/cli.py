@@ -123,8 +123,10 @@ def cmd_bound(args) -> int:
 
 def cmd_train(args) -> int:
     from ._config import load_config
+    from ._multihost import join_from_env
     from ._train import train
 
+    join_from_env()  # a run over several processes (docs/devices.md); nothing without STABLEFILT_COORDINATOR
     config = load_config(args.config)
     if args.epochs is not None and args.epochs < 1:
         raise UsageError(f"--epochs must be at least 1; got {args.epochs}")

@@ -21,7 +21,8 @@ ACCEPTED = {
              "signals", "task", "shift", "train_fraction", "val_fraction"],
     "model": ["features", "taps", "basis", "basis_interval", "nonlinearity", "bias", "readout"],
     "penalty": ["mode", "weight", "reduce", "target", "grid"],
-    "train": ["epochs", "learning_rate", "schedule", "weight_decay", "clip", "batch_size", "patience", "seed"],
+    "train": ["epochs", "learning_rate", "schedule", "weight_decay", "clip", "batch_size", "patience", "seed",
+              "devices", "split", "partition"],
     "certify": ["eps"],
 }
 
@@ -57,6 +58,9 @@ BAD_VALUES = [
     ('[model]\nreadout = "max"\n', "model.readout"),
     ('[model]\nbasis_interval = [2.0, 1.0]\n', "model.basis_interval"),
     ('[certify]\neps = [-0.01]\n', "certify.eps"),
+    ('[train]\ndevices = 0\n', "train.devices"),
+    ('[train]\nsplit = "rows"\n', "train.split"),
+    ('[train]\npartition = "spectral"\n', "train.partition"),
     ('[certify]\neps = [0.001, "x"]\n', "certify.eps"),
     ('[certify]\neps = []\n', "certify.eps"),
     ('[train]\nepochs = 0\n', "train.epochs"),
