@@ -52,11 +52,15 @@ THREAD_LIMITS = {
 #: Seconds between two looks at whether the parent process still runs.
 PARENT_POLL = 0.5
 
+#: The environment variable that tells a run process its parent's id.
+PARENT_VAR = "STABLEFILT_SWEEP_PARENT"
+
 
 def child_env(limit_threads: bool) -> dict:
     """The environment of a run process: this one's, the package importable
     from where it is imported here, and :data:`THREAD_LIMITS` when asked."""
     env = dict(os.environ)
+    env[PARENT_VAR] = str(os.getpid())
     root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
     env["PYTHONPATH"] = os.pathsep.join(p for p in (root, env.get("PYTHONPATH", "")) if p)
     if limit_threads:
@@ -162,13 +166,22 @@ def stop_children() -> None:
 def _watch_parent() -> None:
     """End this process when its parent goes (a killed sweep leaves no run
     writing behind it; the run's lock is then stale and its checkpoint
-    resumes)."""
-    parent = os.getppid()
+    resumes). The parent's id comes from the environment: read here, after
+    the imports, ``getppid`` would already name the adopting process."""
+    parent = os.environ.get(PARENT_VAR, "")
+    if not parent.isdigit():
+        return
+
+    def gone():
+        return os.getppid() != int(parent)
+
+    if gone():
+        os._exit(3)
 
     def watch():
         while True:
             time.sleep(PARENT_POLL)
-            if os.getppid() != parent:
+            if gone():
                 os._exit(3)
 
     threading.Thread(target=watch, daemon=True).start()
