@@ -245,3 +245,20 @@ def test_sweep_on_a_dask_cluster(tmp_path, capsys):
         assert r["model"]["taps"] == r["settings"]["model.taps"]
     with open(os.path.join(out, "sweep.json")) as fh:
         assert json.load(fh)["scheduler"] == c.scheduler_address
+
+
+def test_progress_display_counts_runs(capsys):
+    """On a terminal the display shows runs done of all, running and failed
+    (tqdm's own meter format, n/total); off a terminal it prints nothing."""
+    pytest.importorskip("tqdm", reason="tqdm (the progress extra) is not installed")
+    from stablefilt._sweep import _Progress
+
+    bar = _Progress(total=4, done=1, show=True)
+    bar.update(1, 2, 1)
+    bar.close()
+    err = capsys.readouterr().err
+    assert "2/4" in err and "running 2, failed 1" in err
+    quiet = _Progress(total=4, done=1, show=False)
+    quiet.update(1, 2, 0)
+    quiet.close()
+    assert capsys.readouterr().err == ""
