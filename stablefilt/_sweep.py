@@ -238,8 +238,13 @@ class _Progress:
             except ImportError:
                 print("(install the progress extra, tqdm, for a live progress display)", file=sys.stderr)
                 return
+            # The size from shutil, which falls back to 80 x 24 where the
+            # terminal reports 0 x 0 (tqdm would then draw nothing).
+            import shutil
+
+            size = shutil.get_terminal_size()
             self.bar = tqdm(total=total, initial=done, unit="run", desc="sweep", file=sys.stderr,
-                            dynamic_ncols=True)
+                            ncols=size.columns, nrows=size.lines)
 
     def update(self, finished: int, running: int, failed: int) -> None:
         if self.bar is None:
