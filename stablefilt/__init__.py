@@ -61,6 +61,7 @@ from ._modelcert import certify_inputs as certify_inputs
 from ._modelcert import certify_model as certify_model
 from ._modelcert import model_bounds as model_bounds
 from ._modelcert import model_constants as model_constants
+from ._usercert import certify_layers as certify_layers
 
 # Penalties (grid constants in JAX, the pluggable penalty, the optax transformation).
 from ._constants import bank_sup_norm as bank_sup_norm

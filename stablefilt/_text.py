@@ -193,3 +193,33 @@ def distance_text(d, name_a: str, name_b: str, nodes: int, aligned: bool) -> str
               f"a generic E however small): {fmt(d.delta)}",
               f"  additive distance ||S_hat - S||_2: {fmt(d.additive)}"]
     return "\n".join(lines)
+
+
+def front_text(points, eps: float, metric: str) -> str:
+    """The accuracy-stability front as text: the non-dominated runs of
+    :func:`~stablefilt._figures.front_points`, smallest bound first."""
+    front = sorted((p for p in points if p["front"]), key=lambda p: p["bound"])
+    lines = [[p["run"], fmt(p["bound"]), f"{p['metric']:.4f}"] for p in front]
+    head = (f"accuracy-stability front at eps {eps:g}: {len(front)} of {len(points)} runs are not beaten on both "
+            f"the certified bound and test {metric} by another run")
+    return head + "\n" + table(lines, ["run", f"certified@{eps:g}", f"test {metric}"])
+
+
+def sweep_text(rows, failed, points, eps, figure) -> str:
+    """What ``sweep`` prints at the end: the comparison of the complete runs,
+    their front (``points`` of :func:`~stablefilt._figures.front_points` at
+    ``eps``), the failed runs with their reasons and the figure's path."""
+    parts = []
+    if rows:
+        header, lines = compare_table(rows)
+        parts += [table(lines, header), "", front_text(points, eps, rows[0]["metric"])]
+    else:
+        parts.append("no run of the sweep is complete.")
+    if failed:
+        parts += ["", f"{len(failed)} run(s) failed or did not finish:"]
+        parts += [f"  {f['name']}: {f['failed']}" for f in failed]
+    if figure:
+        parts += ["", f"front figure written to {figure}"]
+    elif rows:
+        parts += ["", "(install the report extra, matplotlib, for the front figure)"]
+    return "\n".join(parts)

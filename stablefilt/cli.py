@@ -340,6 +340,35 @@ def cmd_report(args) -> int:
     return 0
 
 
+def cmd_sweep(args) -> int:
+    from ._config import load_config
+    from ._figures import front_points
+    from ._grid import grid, parse_vary
+    from ._sweep import run_sweep, sweep_rows, write_front
+    from ._text import sweep_text
+
+    if args.jobs < 1:
+        raise UsageError(f"--jobs must be at least 1; got {args.jobs}")
+    if args.epochs is not None and args.epochs < 1:
+        raise UsageError(f"--epochs must be at least 1; got {args.epochs}")
+    config = load_config(args.config)
+    varies = [parse_vary(v) for v in args.vary]
+    settings = grid(config, varies)
+    out = args.out or os.path.join("runs", f"sweep-{config.name}")
+    record = run_sweep(settings, out, epochs=args.epochs, jobs=args.jobs, scheduler=args.scheduler,
+                       limit_threads=not args.no_thread_limits,
+                       show_progress=not (args.quiet or args.json) and sys.stderr.isatty(),
+                       sources={"config": args.config, "vary": {k: v for k, v in varies}})
+    rows, failed, eps = sweep_rows(record)
+    figure = write_front(out, rows, eps) if rows else None
+    if args.json:
+        _print_json(rows + failed, "sweep")
+    else:
+        points = front_points(rows, eps) if rows else []
+        print(sweep_text(rows, failed, points, eps, figure))
+    return 1 if failed else 0
+
+
 def cmd_demo(args) -> int:
     from .demo import run_demo
 
@@ -425,6 +454,22 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--out", help="folder for report.html and the PNGs (default <first run>/report)")
     r.add_argument("--eps", action="append", help="eps of the front (default: the smallest eps all runs hold)")
     r.set_defaults(func=cmd_report)
+    w = sub.add_parser("sweep", help="train a grid of settings of a config, each as its own run, and compare them")
+    w.add_argument("config", help="TOML config the settings start from")
+    w.add_argument("--vary", action="append", required=True, metavar="KEY=V1,V2,...",
+                   help="a dotted config key and its values (TOML values), such as penalty.weight=0,0.5; "
+                   "repeat for a grid")
+    w.add_argument("--epochs", type=int, help="train each run this many epochs instead of the config's")
+    w.add_argument("--jobs", type=int, default=1, help="runs at once on this machine, each its own process (default 1)")
+    w.add_argument("--out", help="folder for the runs (default runs/sweep-<name>); a complete run there is skipped, "
+                   "an interrupted one resumed")
+    w.add_argument("--json", action="store_true", help="print one JSON list, one object per run")
+    w.add_argument("--quiet", action="store_true", help="no progress display")
+    w.add_argument("--scheduler", metavar="ADDRESS", help="submit the runs to this Dask scheduler (distributed extra); "
+                   "--out must be a folder every worker shares")
+    w.add_argument("--no-thread-limits", action="store_true",
+                   help="let each run use all cores (by default each run process is limited to one thread)")
+    w.set_defaults(func=cmd_sweep)
     d = sub.add_parser("demo", help="train the orchard demo with and without the penalty and compare")
     d.add_argument("--out", help="folder for the two runs (default runs/demo-<time>)")
     d.add_argument("--epochs", type=int, help="train each run this many epochs instead of the configs' 40")
