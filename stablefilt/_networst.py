@@ -237,14 +237,19 @@ def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain
     n = setup.n
     depth = len(setup.layers)
     e_prev, eps_prev = 0.0, 0.0
+    last = depth - 1
+    nu_last, switch_last, live_last = 0.0, 0.0, None
     for i in range(depth):
         rho_bar = float(remainders[i](setup.inputs[i][None])[0])
         nu = rho_bar + changes[i] * e_prev + gains[i] * eps_prev
         eps_now = nu
         if setup.slopes[i] is not None:
-            eps_now = nu + (1.0 - alpha) * _switching(setup, i, eps, float(chain[i]) + nu, gains, iters)
+            sw, live = _switching(setup, i, eps, float(chain[i]) + nu, gains, iters)
+            eps_now = nu + (1.0 - alpha) * sw
+            if i == last:
+                switch_last, live_last = (1.0 - alpha) * sw, live
+        nu_last = nu
         e_prev, eps_prev = float(chain[i]), eps_now
-    last = depth - 1
     f_l = setup.pre[last].shape[1]
     rd = _readout_matrix(params, spec, n, f_l)  # (N F_L, d)
     y = rd.T.reshape(-1, n, f_l)  # A^* of unit directions, before D_L
@@ -252,12 +257,20 @@ def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain
         y = y * setup.slopes[last][None]
     stacked = np.concatenate(setup.adjoint_chain(last, y), axis=2)
     lin = _worst_linear(setup, last, stacked, iters) + _carried_error(setup, last, gains, readout_norm)
-    linear, residual = eps * lin, readout_norm * eps_prev
+    # epsilon_L = (g(nu) - g(0)) + g(0): the first part has norm <= nu_bar,
+    # the second lives on the units that may switch, where the readout's
+    # restriction is used (docs/theory.md 9.6).
+    residual = readout_norm * eps_prev
+    if live_last is not None:
+        masked = float(np.linalg.norm(rd[live_last], 2)) * (1 + REL_ALLOW) if live_last.size else 0.0
+        residual = min(residual, readout_norm * nu_last + masked * switch_last)
+    linear = eps * lin
     return NetworkWorst(float((linear + residual) * (1 + REL_ALLOW)), float(linear), float(residual))
 
 
-def _switching(setup: _Setup, i: int, eps: float, reach: float, gains, iters: int) -> float:
-    """A bound on ``||(|mu_i| - |p_i|)_+||`` (docs/theory.md 9.6): units
+def _switching(setup: _Setup, i: int, eps: float, reach: float, gains, iters: int):
+    """``(bound, units)``: a bound on ``||(|mu_i| - |p_i|)_+||`` and the
+    (flat, node-major) units it lives on, or None for all (docs/theory.md 9.6): units
     whose margin ``|p_u|`` is at least ``reach >= ||mu_i||`` are skipped; for
     the others, per-unit suprema ``M_u``, and the smaller of
     ``||(M_u - |p_u|)_+||`` and the joint ``sup ||w o mu_i||``,
@@ -267,9 +280,9 @@ def _switching(setup: _Setup, i: int, eps: float, reach: float, gains, iters: in
     margin = np.abs(pre).ravel()
     units = np.flatnonzero(margin < reach)
     if units.size == 0:
-        return 0.0
+        return 0.0, units
     if units.size > UNIT_LIMIT:
-        return reach  # ||(|mu| - |p|)_+|| <= ||mu||
+        return reach, None  # ||(|mu| - |p|)_+|| <= ||mu||
     y = np.zeros((units.size, n * f))
     y[np.arange(units.size), units] = 1.0
     stacked = np.concatenate(setup.adjoint_chain(i, y.reshape(units.size, n, f)), axis=2)
@@ -282,4 +295,4 @@ def _switching(setup: _Setup, i: int, eps: float, reach: float, gains, iters: in
         wts = (excess[live] / sups[live])[:, None, None]
         joint = eps * (_worst_linear(setup, i, stacked[live] * wts, iters) + _carried_error(setup, i, gains, 1.0))
         best = min(best, joint)
-    return best * (1 + REL_ALLOW)
+    return best * (1 + REL_ALLOW), units[live]
