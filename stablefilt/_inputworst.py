@@ -68,6 +68,23 @@ def input_worst(taps, basis: Basis, lam, vecs, z, slack: float = 0.0, iters: int
     return out * (1 + 1e-8)
 
 
+def value_and_gradient(c, w, phi2, k: int, delta: float):
+    """``(f(W), G)`` for ``f(W) = tr((C^T S(W) C + delta I)^(1/2))``,
+    ``S(W) = sum_i W_i (x) phi_i phi_i^T`` (``w`` ``(N, F, F)``, ``phi2`` the
+    rows ``phi_i (x) phi_i``), and its gradient blocks
+    ``G_i = (1/2) Phi_i^T C (C^T S C + delta I)^(-1/2) C^T Phi_i`` (docs/theory.md 9.5)."""
+    n, f = w.shape[0], w.shape[1]
+    dim = c.shape[1]
+    s = (w.reshape(n, f * f).T @ phi2).reshape(f, f, k, k).transpose(0, 2, 1, 3).reshape(f * k, f * k)
+    y = c.T @ s @ c
+    ev, ew = np.linalg.eigh(0.5 * (y + y.T) + delta * np.eye(dim))
+    ev = np.maximum(ev, delta)
+    inv_half = (ew / np.sqrt(ev)) @ ew.T
+    tmat = (0.5 * c @ inv_half @ c.T).reshape(f, k, f, k)
+    g = (phi2 @ tmat.transpose(1, 3, 0, 2).reshape(k * k, f * f)).reshape(n, f, f)
+    return float(np.sum(np.sqrt(ev))), g
+
+
 def _frank_wolfe(c, phi, fout: int, k: int, iters: int) -> float:
     """``min over iterates of f(W) + max_i lambda_max(G_i) - <G, W>``: an upper
     bound on ``sup_W tr((C^T S(W) C + delta I)^(1/2))`` (concavity), with
@@ -80,16 +97,7 @@ def _frank_wolfe(c, phi, fout: int, k: int, iters: int) -> float:
     dim = c.shape[1]
     phi2 = np.einsum("ia,ib->iab", phi, phi).reshape(n, k * k)  # (N, K^2)
     for t in range(iters):
-        # S = sum_i W_i (x) phi_i phi_i^T and G_i = Phi_i^T T Phi_i as matrix products.
-        s = (w.reshape(n, fout * fout).T @ phi2).reshape(fout, fout, k, k).transpose(0, 2, 1, 3)
-        s = s.reshape(fout * k, fout * k)
-        y = c.T @ s @ c
-        ev, ew = np.linalg.eigh(0.5 * (y + y.T) + delta * np.eye(dim))
-        ev = np.maximum(ev, delta)
-        f = float(np.sum(np.sqrt(ev)))
-        inv_half = (ew / np.sqrt(ev)) @ ew.T
-        tmat = (0.5 * c @ inv_half @ c.T).reshape(fout, k, fout, k)
-        g = (phi2 @ tmat.transpose(1, 3, 0, 2).reshape(k * k, fout * fout)).reshape(n, fout, fout)
+        f, g = value_and_gradient(c, w, phi2, k, delta)
         gv, gw = np.linalg.eigh(g)
         top = gv[:, -1]
         i = int(np.argmax(top))

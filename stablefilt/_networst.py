@@ -18,7 +18,7 @@ import numpy as np
 
 from ._exact import UNIT
 from ._filters import Basis, basis_values, frequency_response
-from ._inputworst import _sqrt_psd
+from ._inputworst import _sqrt_psd, value_and_gradient
 from ._joint import block_kernels
 from ._series import REL_ALLOW
 
@@ -143,14 +143,7 @@ def _worst_linear(setup: _Setup, top: int, stacked, iters: int) -> float:
     phi2 = np.einsum("ia,ib->iab", phi, phi).reshape(n, k * k)
     best = np.inf
     for it in range(iters):
-        s = (w.reshape(n, f * f).T @ phi2).reshape(f, f, k, k).transpose(0, 2, 1, 3).reshape(f * k, f * k)
-        y = c.T @ s @ c
-        ev, ew = np.linalg.eigh(0.5 * (y + y.T) + delta * np.eye(dim))
-        ev = np.maximum(ev, delta)
-        val = float(np.sum(np.sqrt(ev)))
-        inv_half = (ew / np.sqrt(ev)) @ ew.T
-        tmat = (0.5 * c @ inv_half @ c.T).reshape(f, k, f, k)
-        g = (phi2 @ tmat.transpose(1, 3, 0, 2).reshape(k * k, f * f)).reshape(n, f, f)
+        val, g = value_and_gradient(c, w, phi2, k, delta)
         gt = np.einsum("ist,kit->kis", g, t, optimize=True)
         h = np.einsum("kis,lis->kl", t, gt, optimize=True)
         hv, hw = np.linalg.eigh(0.5 * (h + h.T))
