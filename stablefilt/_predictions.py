@@ -257,3 +257,32 @@ def run_predictions(run, rc, eps_list, *, radius_upper: float | None = None,
     return certify_predictions(run_outputs(run), run.test_y, run.spec, task, eps_list, bounds,
                                "input-specific bound of each test signal (docs/theory.md s.5 item 6, s.9)",
                                at, radius_upper, steps)
+
+
+OPERATOR_BOUND = ("operator-level certificate, for every input with ||x||_F <= rho (docs/theory.md s.5 item 6, s.9), "
+                  "the same for every signal")
+
+
+def training_predictions(params, spec: ModelSpec, matrix, x, y, task: str, cert, *,
+                         constants=None, eigenvectors=None) -> PredictionCertificate:
+    """Certified predictions during training, cheap: the model in float64 on
+    signals ``x`` ``(B, N, F_0)`` with targets ``y``, and per signal the
+    operator-level bound of the :class:`~stablefilt._modelcert.ModelCertificate`
+    ``cert`` (every signal has ``||x||_F <= rho``). With ``constants`` (the
+    :func:`~stablefilt._modelcert.model_constants` on this graph), the smaller
+    of that and each signal's input-specific bound without refinement."""
+    from ._model import forward_np
+    from ._modelcert import certify_inputs
+
+    out = forward_np(params, matrix, x, spec)
+    eps = [b.eps for b in cert.bounds]
+    bounds = {b.eps: np.full(len(x), b.certified) for b in cert.bounds}
+    how = OPERATOR_BOUND
+    if constants is not None:
+        for e in eps:
+            own = certify_inputs(params, spec, matrix, constants.interval, x, e, constants.eigenvalues, eigenvectors,
+                                 constants)
+            bounds[e] = np.minimum(bounds[e], own)
+        how = ("the smaller of the operator-level certificate and each signal's input-specific bound "
+               "(docs/theory.md s.5 item 6, s.9)")
+    return certify_predictions(out, y, spec, task, eps, bounds, how)
