@@ -12,6 +12,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from ._distance import distance
+from ._errors import GraphError
 from ._graph import ShiftOperator
 from ._model import forward_np
 from ._predictions import certified_mask, margins, prediction_rows, run_outputs
@@ -159,4 +160,8 @@ def read_new_graph(run, path: str, kind: str | None = None, **csv_options) -> Sh
     if path.lower().endswith(".csv") and csv_options.get("nodes") is None and os.path.isfile(saved):
         csv_options = {**csv_options, "nodes": read_node_list(saved)}
     matrix, _ = read_graph(path, **csv_options)
-    return shift_operator(matrix, kind or run.op.kind, name=f"graph file {path!r}")
+    new = shift_operator(matrix, kind or run.op.kind, name=f"graph file {path!r}")
+    if new.nodes != run.op.nodes:
+        raise GraphError(f"graph file {path!r} has {new.nodes} nodes and the run's graph {run.op.nodes}; "
+                         "the new version must have the same nodes.")
+    return new

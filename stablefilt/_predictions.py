@@ -119,7 +119,7 @@ def certified_radii(rows: np.ndarray, bound_at: Callable[[float], np.ndarray], u
         if 0 < e <= upper:
             passed[float(e)] = certified_mask(rows, b)
     passed[0.0] = certified_mask(rows, np.zeros(rows.shape[0]))
-    ladder = min(LADDER, max(1, steps // 2))
+    ladder = min(LADDER, max(1, steps - 8))
     points = [upper * RATIO ** -k for k in range(ladder)]
     # Every ladder point, so radii far from the median get a point too; then
     # the bracket of the median: the largest passing point and the smallest
