@@ -23,12 +23,14 @@ FULL = {
     "bench_penalty.py": [],
     "bench_tightness.py": [],
     "bench_attack.py": [],
+    "bench_predictions.py": [],
 }
 QUICK = {
     "bench_filter.py": ["--sizes", "1e3,1e4", "--rounds", "9"],
     "bench_penalty.py": ["--sizes", "1e3,1e4", "--rounds", "9"],
     "bench_tightness.py": ["--graphs", "12"],
     "bench_attack.py": ["--quick"],
+    "bench_predictions.py": ["--rounds", "2"],
 }
 
 
