@@ -251,3 +251,28 @@ def test_training_log_and_summary_carry_certified_accuracy(run_dir):
     assert p["task"] == "classify" and p["per"] == "node"
     assert p["certified_accuracy"]["0.001"] >= p["certified_accuracy"]["0.01"]
     assert p["certified_accuracy"]["0.001"] <= p["accuracy"]
+
+
+def test_regression_per_node_bounds_hold_and_the_rms_one_is_not_a_per_node_bound():
+    from stablefilt._model import ModelSpec
+    from stablefilt._predictions import certify_predictions
+
+    rng = np.random.default_rng(11)
+    b, n = 5, 40
+    spec = ModelSpec((1, 4), readout="node", outputs=1)
+    y = rng.standard_normal((b, n, 1))
+    c = rng.uniform(0.1, 2.0, size=b)
+    pc = certify_predictions(y, y[..., 0], spec, "regress", [1e-3], {1e-3: c}, "test")
+    assert pc.node_bound_max[0] == pytest.approx(c.max()) and pc.rms_bound_max[0] == pytest.approx(c.max() / np.sqrt(n))
+    for _ in range(20):  # random changes with ||Delta_b||_F = c_b (the certificate's statement)
+        d = rng.standard_normal((b, n, 1))
+        d *= (c / np.linalg.norm(d.reshape(b, -1), axis=1))[:, None, None]
+        rows = np.linalg.norm(d, axis=-1)
+        assert np.all(rows <= c[:, None] * (1 + 1e-12))  # 10.5: one node's change
+        assert np.all(np.sqrt(np.mean(rows**2, axis=1)) <= c / np.sqrt(n) * (1 + 1e-12))  # 10.5: root mean square
+    # All of the change on one node reaches the per-node bound, so the RMS
+    # figure c / sqrt(N) is no bound on a single node's change.
+    d = np.zeros((b, n, 1))
+    d[:, 0, 0] = c
+    assert np.all(np.abs(d[:, 0, 0]) > c / np.sqrt(n))
+    assert np.all(np.abs(d[:, 0, 0]) <= c)
