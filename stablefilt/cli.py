@@ -163,7 +163,7 @@ def cmd_certify(args) -> int:
 
     run = open_run(args.run)
     eps = _eps_list(args.eps) or [float(e) for e in run.config["certify"]["eps"]]
-    upper = _eps_list([args.radius_max], positive=True)[0] if args.radius_max is not None else 10 * max(max(eps), 1e-3)
+    upper = _eps_list([args.radius_max], positive=True)[0] if args.radius_max is not None else max(0.1, 10 * max(eps))
     _deployed(run.op.kind, args.same_kind)
     new = None
     if args.against is not None:
@@ -410,7 +410,7 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--eps", action="append", help="relative perturbation size; repeat for several (default: the config's)")
     c.add_argument("--json", action="store_true", help="print one JSON object")
     c.add_argument("--same-kind", action="store_true", help="assume the deployed graph is rebuilt as the same kind of operator, so its spectrum lies in that kind's interval; recorded with the certificate")
-    c.add_argument("--radius-max", type=float, help="largest eps tried for the certified radius of each prediction (default: 10 times the largest --eps)")
+    c.add_argument("--radius-max", type=float, help="largest eps tried for the certified radius of each prediction (default: 0.1, or 10 times the largest --eps if more)")
     c.add_argument("--against", metavar="GRAPH", help="a new version of the graph (.npz, .npy or .csv): measure and certify the model on it")
     c.add_argument("--align", action="store_true", help="with --against: match the new graph's nodes to the training graph's first")
     c.add_argument("--shift", choices=KINDS, help="with --against: build the new graph as this kind of operator (default: the run's)")
