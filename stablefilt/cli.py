@@ -157,8 +157,8 @@ def _progress(args):
 
 
 def cmd_certify(args) -> int:
-    from ._predictions import run_predictions
-    from ._runcert import certify_run, input_bounds
+    from ._predictions import run_predictions, signal_bounds_at
+    from ._runcert import certify_run
     from ._runs import open_run
 
     run = open_run(args.run)
@@ -181,8 +181,7 @@ def cmd_certify(args) -> int:
             d["certified_accuracy"] = d["predictions"]["certified_accuracy"]
         ag = None
         if new is not None:
-            ag = against(run, new, lambda e: input_bounds(run, rc.spectrum, e, rc.constants, refine=0),
-                         align=args.align, same_kind=args.same_kind)
+            ag = against(run, new, signal_bounds_at(run, rc), align=args.align, same_kind=args.same_kind)
             d["against"] = ag.as_dict()
     check_finite(d, "certificate")
     iv = rc.spectrum.interval

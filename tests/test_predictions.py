@@ -23,7 +23,7 @@ import pytest
 
 from stablefilt import _attack as atk
 from stablefilt import cli, open_run
-from stablefilt._predictions import certified_mask, certified_radii, run_outputs
+from stablefilt._predictions import certified_mask, certified_radii, plain_bounds, run_outputs
 
 # ---------------------------------------------------------------------------
 # The margin test on its own.
@@ -216,8 +216,10 @@ def test_against_recovers_a_relabelled_relative_perturbation(run_dir, rc, pertur
     s = np.sort(z, axis=-1)
     margin = s[..., -1] - s[..., -2]
     correct = np.argmax(z, axis=-1) == run.test_y
+    plain = plain_bounds(run, cert)  # the same per-signal bounds certify uses (the smaller of two, both sound)
     for eps, key in ((1e-3, "0.001"), (1e-2, "0.01")):
-        certified = margin > np.sqrt(2.0) * cert.signal_bounds[eps][:, None]
+        c = np.minimum(cert.signal_bounds[eps], plain(eps))
+        certified = margin > np.sqrt(2.0) * c[:, None]
         assert d["certified_accuracy"][key] == pytest.approx((correct & certified).mean(), abs=1e-12)
     assert d["predictions"]["radius"]["median"] > 0
 
