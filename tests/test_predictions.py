@@ -278,3 +278,18 @@ def test_regression_per_node_bounds_hold_and_the_rms_one_is_not_a_per_node_bound
     d[:, 0, 0] = c
     assert np.all(np.abs(d[:, 0, 0]) > c / np.sqrt(n))
     assert np.all(np.abs(d[:, 0, 0]) <= c)
+
+
+def test_coverage_conditions_of_a_known_graph():
+    # docs/theory.md s.10.6: expressible; a flat readout keeps the node order;
+    # under --same-kind the new graph keeps the training graph's kind.
+    from stablefilt._against import _why_not
+
+    ok = dict(expressible=True, residual=0.0, tolerance=1e-13, flat=False, kept_order=True, same_kind=False,
+              train_kind="normalized-laplacian", new_kind="normalized-laplacian")
+    assert _why_not(**ok) is None
+    assert "no relative perturbation" in _why_not(**{**ok, "expressible": False, "residual": 1e-3})
+    assert "flat readout" in _why_not(**{**ok, "flat": True, "kept_order": False})
+    assert _why_not(**{**ok, "flat": False, "kept_order": False}) is None  # relabelling is in the model
+    assert "keeps the kind" in _why_not(**{**ok, "same_kind": True, "new_kind": "as-is"})
+    assert _why_not(**{**ok, "same_kind": False, "new_kind": "as-is"}) is None  # Weyl widening: any S_hat
