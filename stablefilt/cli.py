@@ -195,6 +195,10 @@ def cmd_certify(args) -> int:
             print(against_text(ag, args.against))
         if warn:
             print(f"warning: {warn}")
+    if ag is not None and ag.covered and (ag.exceeded or ag.certified_flipped):
+        print(f"stablefilt certify: SOUNDNESS FAILURE: on {args.against!r} {ag.exceeded} measured changes exceed "
+              f"their certificate and {ag.certified_flipped or 0} certified predictions changed class.", file=sys.stderr)
+        return 3
     return 0
 
 
