@@ -293,3 +293,21 @@ def test_coverage_conditions_of_a_known_graph():
     assert _why_not(**{**ok, "flat": False, "kept_order": False}) is None  # relabelling is in the model
     assert "keeps the kind" in _why_not(**{**ok, "same_kind": True, "new_kind": "as-is"})
     assert _why_not(**{**ok, "same_kind": False, "new_kind": "as-is"}) is None  # Weyl widening: any S_hat
+
+
+@pytest.mark.parametrize("readout", ["mean", "flat"])
+def test_graph_level_predictions_are_one_per_signal(readout):
+    from stablefilt._model import ModelSpec
+    from stablefilt._predictions import certify_predictions
+
+    rng = np.random.default_rng(5)
+    out = rng.standard_normal((50, 4))
+    y = rng.integers(0, 4, size=50)
+    c = rng.uniform(0, 1, size=50)
+    spec = ModelSpec((1, 4), readout=readout, outputs=4, nodes=10 if readout == "flat" else 0)
+    pc = certify_predictions(out, y, spec, "classify", [1e-3], {1e-3: c}, "test")
+    s = np.sort(out, axis=1)  # numpy reference: margin > sqrt(2) c per signal
+    want = ((np.argmax(out, axis=1) == y) & (s[:, -1] - s[:, -2] > np.sqrt(2.0) * c)).mean()
+    assert pc.per == "signal" and pc.predictions == 50
+    assert pc.certified_accuracy[0] == pytest.approx(want, abs=1e-12)
+    assert pc.accuracy == pytest.approx((np.argmax(out, axis=1) == y).mean())
