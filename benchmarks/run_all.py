@@ -24,6 +24,7 @@ FULL = {
     "bench_tightness.py": [],
     "bench_attack.py": [],
     "bench_devices.py": [],
+    "bench_predictions.py": [],
 }
 QUICK = {
     "bench_filter.py": ["--sizes", "1e3,1e4", "--rounds", "9"],
@@ -31,6 +32,7 @@ QUICK = {
     "bench_tightness.py": ["--graphs", "12"],
     "bench_attack.py": ["--quick"],
     "bench_devices.py": ["--sizes", "1e4", "--rounds", "5"],
+    "bench_predictions.py": ["--rounds", "2"],
 }
 
 

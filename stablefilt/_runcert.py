@@ -76,6 +76,9 @@ class RunCertificate:
       model: the operator-level :class:`ModelCertificate`.
       input_test_max: per eps of ``model.bounds``, the largest
         input-specific bound over the test signals.
+      signal_bounds: per eps, the input-specific bounds ``(signals,)`` of
+        the test signals.
+      constants: the eps-free constants the bounds came from.
     """
 
     run: str
@@ -83,6 +86,8 @@ class RunCertificate:
     spectrum: RunSpectrum
     model: ModelCertificate
     input_test_max: tuple[float, ...]
+    signal_bounds: dict = dataclasses.field(default_factory=dict, repr=False)
+    constants: ModelConstants | None = dataclasses.field(default=None, repr=False)
 
     def input_at(self, eps: float) -> float:
         """The largest input-specific bound over the test signals at ``eps``."""
@@ -113,5 +118,6 @@ def certify_run(run: Run, eps_list, *, same_kind: bool = False) -> RunCertificat
     constants = run_constants(run, spectrum, deployed)
     cert = certify_model(run.params, run.spec, spectrum.interval, run.op.nodes, eps_list, rho=spectrum.rho,
                          eigenvalues=spectrum.eigenvalues, constants=constants)
-    inputs = tuple(float(input_bounds(run, spectrum, e, constants).max()) for e in eps_list)
-    return RunCertificate(run.path, run.op.nodes, spectrum, cert, inputs)
+    per_signal = {float(e): input_bounds(run, spectrum, e, constants) for e in dict.fromkeys(float(e) for e in eps_list)}
+    inputs = tuple(float(per_signal[float(e)].max()) for e in eps_list)
+    return RunCertificate(run.path, run.op.nodes, spectrum, cert, inputs, per_signal, constants)

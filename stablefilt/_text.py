@@ -223,3 +223,51 @@ def sweep_text(rows, failed, points, eps, figure) -> str:
     elif rows:
         parts += ["", "(install the report extra, matplotlib, for the front figure)"]
     return "\n".join(parts)
+
+
+def predictions_text(pc) -> str:
+    """A :class:`~stablefilt._predictions.PredictionCertificate`: per eps,
+    the certified share and certified accuracy (classify) or the per-node
+    output bounds (regress), and the certified radius."""
+    what = "node" if pc.per == "node" else "signal"
+    lines = [f"predictions: {pc.predictions} test predictions, one per {what}; bound: {pc.bound}"]
+    if pc.task == "classify":
+        rows = [[f"{e:g}", f"{100 * c:.1f}%", f"{100 * a:.1f}%"]
+                for e, c, a in zip(pc.eps, pc.certified, pc.certified_accuracy)]
+        lines.append(table(rows, ["eps", "certified (class cannot change)", "certified accuracy"]))
+        lines.append(f"accuracy {100 * pc.accuracy:.1f}%; a prediction is certified when its logit margin exceeds "
+                     "sqrt(2) times the bound on its signal's output change (docs/theory.md s.10.2)")
+        r = pc.radii
+        if r is not None:
+            q1, q3 = (float(np.quantile(r.radius, q)) for q in (0.25, 0.75))
+            lines.append(f"certified radius: median {r.median:.4g} (quartiles {q1:.4g}, {q3:.4g}; "
+                         f"{100 * float(np.mean(r.radius >= r.upper)):.1f}% certified up to the largest eps tried, "
+                         f"{r.upper:g}); each the largest eps, of {len(r.evaluated) - 1} evaluated, at which the "
+                         "prediction's class provably cannot change")
+    else:
+        rows = [[f"{e:g}", fmt(mx), fmt(md)] for e, mx, md in zip(pc.eps, pc.node_bound_max, pc.node_bound_median)]
+        head = ["eps", f"bound on one {what}'s output change (largest)", "(median)"]
+        if pc.rms_bound_max:
+            rows = [r + [fmt(a), fmt(b)] for r, a, b in zip(rows, pc.rms_bound_max, pc.rms_bound_median)]
+            head += ["root mean square over nodes (largest)", "(median)"]
+        lines.append(table(rows, head))
+    return "\n".join(lines)
+
+
+def against_text(ag, graph: str) -> str:
+    """An :class:`~stablefilt._against.Against`: distance, measured change,
+    flips and the certificate, and whether it covers the new graph."""
+    d = ag.as_dict()
+    lines = [f"against {graph}: relative distance {ag.relative:.4g}"
+             + (" after aligning nodes (an upper bound)" if ag.aligned else "")
+             + f", residual {ag.residual:.3g} ({'expressible' if ag.expressible else 'not expressible'} "
+               "in the relative model)",
+             f"  measured output change on the test signals: largest {d['measured_max']:.4g}, mean "
+             f"{d['measured_mean']:.4g}; certified at eps {ag.eps:.4g}: largest {fmt(d['certified'])}"]
+    if ag.flipped is not None:
+        lines.append(f"  predictions whose class changed: {100 * ag.flipped:.2f}%; certified at this eps: "
+                     f"{100 * ag.certified_predictions:.1f}% (of which changed: {ag.certified_flipped})")
+    lines.append("  covered: the certificate applies to this graph." if ag.covered else f"  not covered: {ag.reason}")
+    if ag.exceeded and ag.covered:
+        lines.append(f"  SOUNDNESS FAILURE: {ag.exceeded} measured changes exceed their certificate.")
+    return "\n".join(lines)

@@ -24,8 +24,9 @@ from ._graph import reorder
 from ._interval import SpectralInterval, spectral_interval
 from ._lock import check_unlocked, run_lock
 from ._model import ModelSpec, forward, init_params, spec_from
-from ._modelcert import certify_model
+from ._modelcert import certify_model, model_constants
 from ._penalty import model_penalty, penalty
+from ._predictions import training_predictions
 from ._runs import (
     check_out_dir,
     make_out_dir,
@@ -334,6 +335,7 @@ def _train_locked(trainer: Trainer, params, out: str, epochs, resume: bool, prog
         tr_m, va_m, va_l = float(tr_m), float(va_m), float(va_l)
         cert = trainer.certificate(params)
         cert_json = cert.as_dict()
+        val_cert = _val_certified(trainer, params, cert)
         seconds = time.perf_counter() - t0
         record = {
             "epoch": epoch, "loss": loss, "task_loss": tl, "penalty": pen,
@@ -343,6 +345,8 @@ def _train_locked(trainer: Trainer, params, out: str, epochs, resume: bool, prog
                        for lr in cert.layers],
             "seconds": seconds,
         }
+        if val_cert is not None:
+            record["val_certified_acc"] = val_cert
         improved = best_val is None or (va_m > best_val if higher_better else va_m < best_val)
         if improved:
             best_val, bad, best, best_epoch = va_m, 0, params, epoch
@@ -362,6 +366,32 @@ def _train_locked(trainer: Trainer, params, out: str, epochs, resume: bool, prog
             progress(f"early stop: validation {mname} did not improve for {patience} epochs")
             break
     return finish(trainer, best, evaluate, out, manifest, paths, epoch, best_epoch)
+
+
+def _val_certified(trainer: Trainer, params, cert) -> dict | None:
+    """Per eps, the certified accuracy of the validation predictions under
+    the epoch's operator-level certificate (docs/theory.md s.10.3; cheap: one
+    float64 forward pass), or None for regression."""
+    if trainer.data.task != "classify":
+        return None
+    va = trainer.data.val
+    pc = training_predictions(params, trainer.spec, trainer.data.op.matrix, trainer.data.x[va], trainer.data.y[va],
+                              "classify", cert)
+    return pc.as_dict()["certified_accuracy"]
+
+
+def _test_predictions(trainer: Trainer, params, cert):
+    """The certified test predictions of the kept parameters: the smaller of
+    the final certificate and each signal's input-specific bound (without the
+    per-signal refinement; ``stablefilt certify`` refines and adds radii)."""
+    d = trainer.data
+    lam = trainer.interval.eigenvalues
+    vecs = None
+    if lam is not None:
+        lam, vecs = np.linalg.eigh(d.op.dense())
+    constants = model_constants(params, trainer.spec, trainer.interval, d.op.nodes, lam, matrix=d.op.matrix)
+    return training_predictions(params, trainer.spec, d.op.matrix, d.x[d.test], d.y[d.test], d.task, cert,
+                                constants=constants, eigenvectors=vecs)
 
 
 def finish(trainer: Trainer, params, evaluate, out: str, manifest: dict, paths: dict, last_epoch: int,
@@ -389,6 +419,7 @@ def finish(trainer: Trainer, params, evaluate, out: str, manifest: dict, paths: 
                   "basis": trainer.spec.basis.kind, "nonlinearity": trainer.spec.nonlinearity,
                   "readout": trainer.spec.readout},
         "certificate": cert.as_dict(),
+        "predictions": _test_predictions(trainer, params, cert).as_dict(),
     }
     write_json(paths["summary"], summary)
     manifest["finished"] = now()

@@ -15,11 +15,13 @@ import warnings
 from ._checks import basis_range_warning, check_eps, check_finite
 from ._errors import OverflowFigure, StablefiltError, TrainingDiverged
 from ._text import (
+    against_text,
     compare_csv,
     compare_table,
     distance_text,
     filter_certificate_text,
     perm_text,
+    predictions_text,
     progress_printer,
     run_certificate_text,
     stress_text,
@@ -157,15 +159,32 @@ def _progress(args):
 
 
 def cmd_certify(args) -> int:
+    from ._predictions import run_predictions, signal_bounds_at
     from ._runcert import certify_run
     from ._runs import open_run
 
     run = open_run(args.run)
     eps = _eps_list(args.eps) or [float(e) for e in run.config["certify"]["eps"]]
+    upper = _eps_list([args.radius_max], positive=True)[0] if args.radius_max is not None else max(0.1, 10 * max(eps))
     _deployed(run.op.kind, args.same_kind)
+    new = None
+    if args.against is not None:
+        from ._against import against, read_new_graph
+
+        new = read_new_graph(run, args.against, args.shift, **_csv_options(args))
+    elif args.align or args.shift:
+        raise UsageError("--align and --shift go with --against GRAPH")
     with _float64("certificate"):
         rc = certify_run(run, eps, same_kind=args.same_kind)
         d = rc.as_dict()
+        pc = run_predictions(run, rc, eps, radius_upper=upper)
+        d["predictions"] = pc.as_dict()
+        if pc.task == "classify":
+            d["certified_accuracy"] = d["predictions"]["certified_accuracy"]
+        ag = None
+        if new is not None:
+            ag = against(run, new, signal_bounds_at(run, rc), align=args.align, same_kind=args.same_kind)
+            d["against"] = ag.as_dict()
     check_finite(d, "certificate")
     iv = rc.spectrum.interval
     warn = basis_range_warning(iv.lower, iv.upper, run.spec.basis)
@@ -173,8 +192,15 @@ def cmd_certify(args) -> int:
         _print_json({**d, "warnings": [warn] if warn else []}, "certificate")
     else:
         print(run_certificate_text(run, rc, eps))
+        print(predictions_text(pc))
+        if ag is not None:
+            print(against_text(ag, args.against))
         if warn:
             print(f"warning: {warn}")
+    if ag is not None and ag.covered and (ag.exceeded or ag.certified_flipped):
+        print(f"stablefilt certify: SOUNDNESS FAILURE: on {args.against!r} {ag.exceeded} measured changes exceed "
+              f"their certificate and {ag.certified_flipped or 0} certified predictions changed class.", file=sys.stderr)
+        return 3
     return 0
 
 
@@ -418,6 +444,11 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--eps", action="append", help="relative perturbation size; repeat for several (default: the config's)")
     c.add_argument("--json", action="store_true", help="print one JSON object")
     c.add_argument("--same-kind", action="store_true", help="assume the deployed graph is rebuilt as the same kind of operator, so its spectrum lies in that kind's interval; recorded with the certificate")
+    c.add_argument("--radius-max", type=float, help="largest eps tried for the certified radius of each prediction (default: 0.1, or 10 times the largest --eps if more)")
+    c.add_argument("--against", metavar="GRAPH", help="a new version of the graph (.npz, .npy or .csv): measure and certify the model on it")
+    c.add_argument("--align", action="store_true", help="with --against: match the new graph's nodes to the training graph's first")
+    c.add_argument("--shift", choices=KINDS, help="with --against: build the new graph as this kind of operator (default: the run's)")
+    _add_csv_options(c)
     c.set_defaults(func=cmd_certify)
     m = sub.add_parser("compare", help="compare runs on accuracy and certified bound")
     m.add_argument("runs", nargs="+", help="run directories written by train")
