@@ -15,6 +15,7 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 
+from ._certpenalty import CERT_GRID, CertifiedSetup, certified_penalty, certified_setup
 from ._config import Config
 from ._data import Dataset, build_dataset
 from ._edgelist import node_list_text
@@ -25,7 +26,6 @@ from ._interval import SpectralInterval, spectral_interval
 from ._lock import check_unlocked, run_lock
 from ._model import ModelSpec, forward, init_params, spec_from
 from ._modelcert import certify_model
-from ._certpenalty import CertifiedSetup, certified_penalty, certified_setup
 from ._penalty import model_penalty, penalty
 from ._runs import (
     check_out_dir,
@@ -193,7 +193,7 @@ def build_step(trainer: Trainer, steps: int):
     setup = None
     if c["penalty"]["mode"] == "certified":
         setup = certified_setup(trainer.spec, iv, rho=trainer.rho, nodes=trainer.data.op.nodes,
-                                matrix=trainer.data.op.matrix, grid=c["penalty"]["grid"])
+                                matrix=trainer.data.op.matrix, grid=min(c["penalty"]["grid"], CERT_GRID))
     key = (trainer.spec, trainer.data.task, json.dumps(c["penalty"], sort_keys=True),
            json.dumps(c["train"], sort_keys=True), int(steps), iv, setup)
     return _build_step_cached(key)
