@@ -18,7 +18,6 @@ import os
 import sys
 
 import jax
-import jax.numpy as jnp
 import numpy as np
 
 from stablefilt._config import load_config
