@@ -184,3 +184,25 @@ def test_chebyshev_penalty_matches_numpy():
     want_mono = np.max(np.abs(lam * np.polynomial.polynomial.polyval(lam, np.polynomial.polynomial.polyder(taps))))
     assert mono == pytest.approx(want_mono, rel=1e-5)
     assert abs(mono - got) > 0.05 * want
+
+
+def test_training_step_adds_the_weighted_certified_penalty():
+    """The trainer's step with ``mode = "certified"`` reports ``w P`` as its
+    penalty, ``P`` the certified penalty of the params before the step with
+    the trainer's setup (the training graph's interval, rho and N)."""
+    import helpers as H
+
+    from stablefilt._model import init_params
+    from stablefilt._train import Trainer, build_step
+
+    text = H.tiny_text(features="[3]", taps=3, mode="certified", weight=1e-3)
+    tr = Trainer.from_config(parse_config(text, "."))
+    batches = tr.batches(1)
+    tx, step, _ = build_step(tr, len(batches))
+    params = init_params(tr.spec, 0)
+    b = np.asarray(batches[0])
+    _, _, _, _, pen = step(params, tx.init(params), tr.op, tr.x[b], tr.y[b])
+    iv = (tr.interval.lower, tr.interval.upper)
+    setup = certified_setup(tr.spec, iv, rho=tr.rho, nodes=tr.data.op.nodes, matrix=tr.data.op.matrix)
+    want = 1e-3 * float(certified_penalty(params, setup))
+    assert want > 0 and float(pen) == pytest.approx(want, rel=1e-4)
