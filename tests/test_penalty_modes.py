@@ -162,7 +162,7 @@ def test_certified_mode_in_config():
 def test_penalty_requires_a_basis():
     taps = jnp.asarray([0.1, 0.4, -0.2], jnp.float32)
     with pytest.raises(TypeError, match="basis"):
-        sf.penalty(taps, (0.0, 2.0))  # noqa: the missing keyword is the point
+        sf.penalty(taps, (0.0, 2.0))  # the missing keyword is the point
     with pytest.raises(sf.ConfigError, match="Basis"):
         sf.penalty(taps, (0.0, 2.0), basis="chebyshev")
 
