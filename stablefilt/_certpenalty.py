@@ -5,10 +5,11 @@ section 10).
 ``certified(eps) = eps P + O(eps^2)`` for the interval certificate of
 sections 9.2-9.3; :func:`certified_penalty` evaluates ``P`` in JAX with every
 supremum over the spectral interval replaced by a maximum over grid points.
-A maximum over grid points is at most the supremum and ``P`` is
-non-decreasing in each, so the penalty estimates ``P`` from below: it is a
-training surrogate, never a certificate (the reported figures stay the
-float64 ones of :mod:`stablefilt._modelcert`).
+Grid maxima, power steps and Newton-Schulz steps lower the estimate, and
+leaving out the per-filter form raises it, so it is an estimate of ``P``
+(0.26% below on the demo run), not a bound: a training surrogate, never a
+certificate (the reported figures stay the float64 ones of
+:mod:`stablefilt._modelcert`).
 """
 
 from __future__ import annotations
@@ -215,7 +216,7 @@ def _through(i, d, right, norms, gains, betas, ca, cb):
 def certified_penalty(params, setup: CertifiedSetup):
     """The eps-linear coefficient ``P`` of the model's interval certificate
     (``certified(eps) = eps P + O(eps^2)``) on a grid: a differentiable
-    surrogate, at most ``P`` up to float32 round-off (docs/theory.md s.10).
+    surrogate, an estimate of ``P``, not a bound (docs/theory.md s.10).
 
     Args:
       params: the model's params (``{"layers": [...], "readout": ...}``).
