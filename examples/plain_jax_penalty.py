@@ -2,7 +2,8 @@
 
 A two-layer graph filter model of our own making (not stablefilt's model),
 trained to denoise signals on a random sensor graph. Shows both ways in:
-(1) add ``penalty(params, interval, basis=...)`` to the loss, with the
+(1) add ``penalty(params, interval, basis=basis)`` to the loss (the basis is
+required: the same taps are another filter in another basis), with the
 float64 certificate of the whole model every epoch (``certify_layers``:
 taps, basis, interval, activation, readout); (2) chain the
 ``stability_penalty`` optax transformation before the optimiser. Then the

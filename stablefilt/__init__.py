@@ -71,6 +71,9 @@ from ._constants import lipschitz as lipschitz
 from ._constants import pairwise_constant as pairwise_constant
 from ._constants import spectral_grid as spectral_grid
 from ._constants import sup_norm as sup_norm
+from ._certpenalty import CertifiedSetup as CertifiedSetup
+from ._certpenalty import certified_penalty as certified_penalty
+from ._certpenalty import certified_setup as certified_setup
 from ._penalty import find_taps as find_taps
 from ._penalty import model_penalty as model_penalty
 from ._penalty import penalty as penalty

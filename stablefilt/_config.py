@@ -210,6 +210,9 @@ def parse_config(text: str, base: str = ".", name: str = "the config") -> Config
     if d["train_fraction"] + d["val_fraction"] >= 1:
         raise ConfigError("data.train_fraction + data.val_fraction must be below 1, leaving test data.")
     w = sections["penalty"]["weight"]
+    if sections["penalty"]["mode"] == "certified" and isinstance(w, list):
+        raise ConfigError("penalty.weight must be a single number with mode = 'certified', which penalises the "
+                          "whole model's certificate, not each layer.")
     depth = len(sections["model"]["features"])
     if isinstance(w, list) and len(w) != depth:
         raise ConfigError(f"penalty.weight lists {len(w)} values for {depth} layers; give one per layer or a single number.")

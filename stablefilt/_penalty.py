@@ -21,7 +21,9 @@ from . import _constants as C
 from ._errors import ConfigError
 from ._filters import Basis
 
-MODES = ("integral_lipschitz", "pairwise", "kernel", "lipschitz", "model")
+MODES = ("integral_lipschitz", "pairwise", "kernel", "lipschitz", "model", "certified")
+#: Modes that need the whole model, not only its taps.
+MODEL_MODES = ("model", "certified")
 REDUCTIONS = ("max", "mean", "hinge")
 
 
@@ -73,8 +75,8 @@ def _reduce(values, reduce, target):
     raise ConfigError(f"unknown penalty reduction {reduce!r}; expected one of {', '.join(REDUCTIONS)}.")
 
 
-def penalty(params, interval, *, mode: str = "integral_lipschitz", reduce: str = "max", target: float = 0.0,
-            weights: float | Sequence[float] = 1.0, basis: Basis = Basis(), grid: int = C.DEFAULT_GRID,
+def penalty(params, interval, *, basis: Basis, mode: str = "integral_lipschitz", reduce: str = "max",
+            target: float = 0.0, weights: float | Sequence[float] = 1.0, grid: int = C.DEFAULT_GRID,
             select: Callable | None = None):
     """Stability penalty of every filter bank in ``params``: a scalar.
 
@@ -88,12 +90,17 @@ def penalty(params, interval, *, mode: str = "integral_lipschitz", reduce: str =
     Args:
       params: taps, or a pytree holding them.
       interval: ``(a, b)``, the spectral interval of the training graph.
+      basis: the filters' basis, required: the same taps are a different
+        filter in another basis (``Basis()`` for monomials,
+        ``Basis("chebyshev", (a, b))``), so it is never guessed.
       weights: one weight for all banks, or one per bank.
-      basis: the filters' basis.
       select: chooses tap leaves (see :func:`find_taps`).
     """
-    if mode == "model":
-        raise ConfigError("penalty mode 'model' needs the whole model; use model_penalty.")
+    if not isinstance(basis, Basis):
+        raise ConfigError(f"penalty basis must be a stablefilt.Basis (the taps' basis); got {basis!r}.")
+    if mode in MODEL_MODES:
+        raise ConfigError(f"penalty mode {mode!r} needs the whole model; use "
+                          f"{'model_penalty' if mode == 'model' else 'certified_penalty'}.")
     banks = find_taps(params, select)
     ws = [float(weights)] * len(banks) if isinstance(weights, (int, float)) else [float(w) for w in weights]
     if len(ws) != len(banks):
@@ -106,7 +113,7 @@ def penalty(params, interval, *, mode: str = "integral_lipschitz", reduce: str =
     return jnp.asarray(total, dtype=jnp.float32)
 
 
-def model_penalty(params, interval, *, basis: Basis = Basis(), grid: int = C.DEFAULT_GRID, readout: str = "node",
+def model_penalty(params, interval, *, basis: Basis, grid: int = C.DEFAULT_GRID, readout: str = "node",
                   reduce: str = "max", target: float = 0.0):
     """Differentiable surrogate of the certified model bound per unit
     ``eps`` (first order, bias-free): ``||W||_2 sum_l (prod_{m != l} B_m)
@@ -144,7 +151,7 @@ def stability_penalty(weight: float, penalty_fn: Callable) -> optax.GradientTran
     Example::
 
         tx = optax.chain(
-            stability_penalty(0.1, lambda p: penalty(p, (0.0, 2.0))),
+            stability_penalty(0.1, lambda p: penalty(p, (0.0, 2.0), basis=Basis("chebyshev", (0.0, 2.0)))),
             optax.adam(1e-2),
         )
     """

@@ -15,6 +15,7 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 
+from ._certpenalty import CERT_GRID, CertifiedSetup, certified_penalty, certified_setup
 from ._config import Config
 from ._data import Dataset, build_dataset
 from ._edgelist import node_list_text
@@ -87,13 +88,22 @@ def metric(out, y, task: str):
     return jnp.sqrt(jnp.mean(_residual(out, y) ** 2))
 
 
-def make_penalty_fn(config, spec: ModelSpec, interval):
+def make_penalty_fn(config, spec: ModelSpec, interval, setup: CertifiedSetup | None = None):
     """``(penalty(params), active)`` from the config's ``[penalty]``;
-    ``interval`` is ``(a, b)``."""
+    ``interval`` is ``(a, b)``; ``setup`` is needed by mode ``certified``
+    (:func:`stablefilt._certpenalty.certified_setup`)."""
     p = config["penalty"]
     iv = (float(interval[0]), float(interval[1]))
     weight = p["weight"]
-    if p["mode"] == "model":
+    if p["mode"] == "certified":
+        if setup is None:
+            raise ConfigError("penalty mode 'certified' needs the training graph's setup (rho, nodes).")
+        w = float(weight)
+
+        def fn(params):
+            val = certified_penalty(params, setup)
+            return w * (jax.nn.relu(val - p["target"]) ** 2 if p["reduce"] == "hinge" else val)
+    elif p["mode"] == "model":
         w = float(weight if not isinstance(weight, list) else max(weight))
 
         def fn(params):
@@ -184,18 +194,22 @@ def build_step(trainer: Trainer, steps: int):
     depend on, so a process training many runs of the same shapes compiles
     each step once (see the soak test)."""
     c = trainer.config
+    iv = (float(trainer.interval.lower), float(trainer.interval.upper))
+    setup = None
+    if c["penalty"]["mode"] == "certified":
+        setup = certified_setup(trainer.spec, iv, rho=trainer.rho, nodes=trainer.data.op.nodes,
+                                matrix=trainer.data.op.matrix, grid=min(c["penalty"]["grid"], CERT_GRID))
     key = (trainer.spec, trainer.data.task, json.dumps(c["penalty"], sort_keys=True),
-           json.dumps(c["train"], sort_keys=True), int(steps),
-           (float(trainer.interval.lower), float(trainer.interval.upper)))
+           json.dumps(c["train"], sort_keys=True), int(steps), iv, setup)
     return _build_step_cached(key)
 
 
 @functools.lru_cache(maxsize=16)
 def _build_step_cached(key):
-    spec, task, pen_json, train_json, steps, iv = key
+    spec, task, pen_json, train_json, steps, iv, setup = key
     cfg = {"penalty": json.loads(pen_json), "train": json.loads(train_json)}
     tx = make_optimizer(cfg, steps)
-    pen_fn, active = make_penalty_fn(cfg, spec, iv)
+    pen_fn, active = make_penalty_fn(cfg, spec, iv, setup)
 
     def loss_fn(params, op, xb, yb):
         out = forward(params, op, xb, spec)

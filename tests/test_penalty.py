@@ -164,7 +164,7 @@ def test_penalty_float32_agrees_with_reference(mode):
 def test_reductions_and_weights(float64_jax, reduce, target, weights):
     tree = user_tree(seed=3, dtype=jnp.float64)
     interval = (0.0, 2.0)
-    got = float(penalty(tree, interval, reduce=reduce, target=target, weights=weights, grid=GRID))
+    got = float(penalty(tree, interval, basis=Basis(), reduce=reduce, target=target, weights=weights, grid=GRID))
     want = ref_penalty(bank_list(tree), interval, "integral_lipschitz", reduce, target, weights, "monomial", GRID)
     assert got == pytest.approx(want, rel=1e-6, abs=1e-12)
     if reduce == "hinge" and target == 100.0:
@@ -175,10 +175,10 @@ def test_single_filter_closed_form():
     """``h(lam) = lam^2`` on ``[0, 2]``: ``max |lam h'| = max 2 lam^2 = 8``
     and ``max |h'| = 4`` (closed form, by hand)."""
     taps = jnp.asarray([0.0, 0.0, 1.0], jnp.float32)
-    assert float(penalty(taps, (0.0, 2.0))) == pytest.approx(8.0, rel=1e-6)
-    assert float(penalty(taps, (0.0, 2.0), mode="lipschitz")) == pytest.approx(4.0, rel=1e-6)
+    assert float(penalty(taps, (0.0, 2.0), basis=Basis())) == pytest.approx(8.0, rel=1e-6)
+    assert float(penalty(taps, (0.0, 2.0), basis=Basis(), mode="lipschitz")) == pytest.approx(4.0, rel=1e-6)
     # A constant filter has no derivative.
-    assert float(penalty(jnp.asarray([3.0], jnp.float32), (0.0, 2.0))) == 0.0
+    assert float(penalty(jnp.asarray([3.0], jnp.float32), (0.0, 2.0), basis=Basis())) == 0.0
 
 
 # ---------------------------------------------------------------------------
@@ -192,7 +192,7 @@ def test_penalty_under_jit_and_grad(mode):
     grid = PAIR if mode == "pairwise" else GRID
 
     def fn(p):
-        return penalty(p, interval, mode=mode, grid=grid)
+        return penalty(p, interval, basis=Basis(), mode=mode, grid=grid)
 
     eager = fn(tree)
     jitted = jax.jit(fn)(tree)
@@ -236,7 +236,7 @@ def ref_il_gradient(banks, interval, grid):
 def test_penalty_gradient_matches_analytic(float64_jax):
     tree = user_tree(seed=5, dtype=jnp.float64)
     interval = (-1.5, 3.0)
-    g = jax.jit(jax.grad(lambda p: penalty(p, interval, grid=GRID)))(tree)
+    g = jax.jit(jax.grad(lambda p: penalty(p, interval, basis=Basis(), grid=GRID)))(tree)
     want = ref_il_gradient(bank_list(tree), interval, GRID)
     np.testing.assert_allclose(np.asarray(g["encoder"]["conv1"]["taps"]), want[0], rtol=1e-6, atol=1e-9)
     np.testing.assert_allclose(np.asarray(g["encoder"]["conv2"]["taps"]), want[1], rtol=1e-6, atol=1e-9)
@@ -250,7 +250,7 @@ def test_select_chooses_leaves():
     tree = {"blocks": [{"kernel": conv, "scale": jnp.float32(2.0)}, {"kernel": other}],
             "out": jnp.ones((4, 3), jnp.float32)}
     with pytest.raises(ConfigError, match="no taps"):
-        penalty(tree, (0.0, 2.0))
+        penalty(tree, (0.0, 2.0), basis=Basis())
 
     def by_ndim(path, leaf):
         return jnp.ndim(leaf) == 3
@@ -259,14 +259,14 @@ def test_select_chooses_leaves():
         return jnp.ndim(leaf) == 3 and getattr(path[1], "idx", None) == 0
 
     assert len(find_taps(tree, by_ndim)) == 2
-    got = float(penalty(tree, (0.0, 2.0), select=by_ndim, grid=GRID))
+    got = float(penalty(tree, (0.0, 2.0), basis=Basis(), select=by_ndim, grid=GRID))
     want = ref_penalty([np.asarray(conv, np.float64), np.asarray(other, np.float64)], (0.0, 2.0),
                        "integral_lipschitz", "max", 0.0, 1.0, "monomial", GRID)
     assert got == pytest.approx(want, rel=1e-5)
-    one = float(penalty(tree, (0.0, 2.0), select=first_block, grid=GRID))
+    one = float(penalty(tree, (0.0, 2.0), basis=Basis(), select=first_block, grid=GRID))
     assert one == pytest.approx(ref_penalty([np.asarray(conv, np.float64)], (0.0, 2.0), "integral_lipschitz",
                                             "max", 0.0, 1.0, "monomial", GRID), rel=1e-5)
-    g = jax.jit(jax.grad(lambda p: penalty(p, (0.0, 2.0), select=first_block)))(tree)
+    g = jax.jit(jax.grad(lambda p: penalty(p, (0.0, 2.0), basis=Basis(), select=first_block)))(tree)
     assert np.all(np.asarray(g["blocks"][1]["kernel"]) == 0) and np.any(np.asarray(g["blocks"][0]["kernel"]) != 0)
     assert float(g["blocks"][0]["scale"]) == 0.0 and np.all(np.asarray(g["out"]) == 0)
 
@@ -274,17 +274,17 @@ def test_select_chooses_leaves():
 def test_penalty_errors():
     tree = user_tree()
     with pytest.raises(ConfigError, match="no taps"):
-        penalty({"head": {"w": jnp.ones((2, 2))}}, (0.0, 2.0))
+        penalty({"head": {"w": jnp.ones((2, 2))}}, (0.0, 2.0), basis=Basis())
     with pytest.raises(ConfigError, match="no taps"):
-        penalty(tree, (0.0, 2.0), select=lambda path, leaf: False)
+        penalty(tree, (0.0, 2.0), basis=Basis(), select=lambda path, leaf: False)
     with pytest.raises(ConfigError, match="weights"):
-        penalty(tree, (0.0, 2.0), weights=[1.0, 2.0, 3.0])
+        penalty(tree, (0.0, 2.0), basis=Basis(), weights=[1.0, 2.0, 3.0])
     with pytest.raises(ConfigError, match="mode"):
-        penalty(tree, (0.0, 2.0), mode="spectral")
+        penalty(tree, (0.0, 2.0), basis=Basis(), mode="spectral")
     with pytest.raises(ConfigError, match="reduction"):
-        penalty(tree, (0.0, 2.0), reduce="median")
+        penalty(tree, (0.0, 2.0), basis=Basis(), reduce="median")
     with pytest.raises(ConfigError, match="model_penalty"):
-        penalty(tree, (0.0, 2.0), mode="model")
+        penalty(tree, (0.0, 2.0), basis=Basis(), mode="model")
 
 
 # ---------------------------------------------------------------------------
@@ -328,7 +328,7 @@ def test_stability_penalty_adds_weighted_gradient(weight):
     lr = 0.05
 
     def pen(p):
-        return penalty(p, interval, grid=GRID)
+        return penalty(p, interval, basis=Basis(), grid=GRID)
 
     tx = optax.chain(stability_penalty(weight, pen), optax.sgd(lr))
     state = tx.init(tree)
