@@ -92,6 +92,7 @@ class Certificate:
             "nodes": self.nodes,
             "interval": [self.interval.lower, self.interval.upper],
             "interval_method": self.interval.method,
+            "interval_ends": self.interval.ends(),
             "basis": {"kind": self.basis.kind, "interval": None if self.basis.interval is None else list(self.basis.interval)},
             "constants": self.constants.as_dict(),
             "bounds": [b.as_dict() for b in self.bounds],

@@ -96,7 +96,7 @@ class RunCertificate:
         iv = self.spectrum.interval
         d = self.model.as_dict()
         d.update({"run": self.run, "nodes": self.nodes, "interval": [iv.lower, iv.upper],
-                  "interval_method": iv.method,
+                  "interval_method": iv.method, "interval_ends": iv.ends(),
                   "input_specific_test_max": {eps_key(b.eps): v for b, v in zip(self.model.bounds, self.input_test_max)}})
         return d
 

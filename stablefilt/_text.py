@@ -32,6 +32,15 @@ def progress_printer(every: int):
     return show
 
 
+def interval_ends_text(iv) -> str:
+    """How each end of a spectral interval was proved and how long it took."""
+    parts = []
+    for side, e in iv.ends().items():
+        note = f" ({e['note']})" if e.get("note") else ""
+        parts.append(f"{side} end by {e['method']} in {e['seconds']:.3g} s{note}")
+    return "spectral interval: " + "; ".join(parts)
+
+
 def table(rows, header) -> str:
     """Right-aligned columns under a header and a rule."""
     cells = [header] + [[str(c) for c in r] for r in rows]
@@ -62,6 +71,7 @@ def filter_certificate_text(cert) -> str:
     lines = [
         f"graph: {cert.nodes} nodes; spectral interval [{cert.interval.lower:.6g}, {cert.interval.upper:.6g}] "
         f"({cert.interval.method})",
+        interval_ends_text(cert.interval),
         f"filter basis: {b.kind}" + (f" on [{b.interval[0]:g}, {b.interval[1]:g}]" if b.interval else ""),
         "constants (max over filters): "
         f"integral Lipschitz {fmt(_big(c.integral_lipschitz))}, Lipschitz {fmt(_big(c.lipschitz))}, "
@@ -83,7 +93,8 @@ def run_certificate_text(run, rc, eps_list) -> str:
     iv = rc.spectrum.interval
     cert = rc.model
     lines = [f"run {rc.run}: {rc.nodes} nodes, spectral interval [{iv.lower:.6g}, {iv.upper:.6g}] ({iv.method}), "
-             f"model {list(run.spec.features)} with K = {run.spec.taps} ({run.spec.basis.kind})"]
+             f"model {list(run.spec.features)} with K = {run.spec.taps} ({run.spec.basis.kind})",
+             interval_ends_text(iv)]
     at = [cert.at(e) for e in eps_list]
     rows = [[str(i + 1), fmt(lc.integral_lipschitz), fmt(lc.kernel), fmt(lc.sup)]
             + [fmt(b.layer_changes[i]) for b in at] for i, lc in enumerate(cert.layers)]
