@@ -283,7 +283,7 @@ def cmd_distance(args) -> int:
 
 def cmd_stress(args) -> int:
     from ._runs import open_run
-    from ._stress import KINDS, stress_run
+    from ._stress import KINDS, skipped_kinds, stress_run
 
     kinds = [k.strip() for k in args.kinds.split(",") if k.strip()]
     bad = [k for k in kinds if k not in KINDS]
@@ -302,11 +302,17 @@ def cmd_stress(args) -> int:
                          "(docs/theory.md s.8.1); leave relabel out of --kinds")
     eps = _eps_list(args.eps, positive=True) or [float(e) for e in run.config["certify"]["eps"]]
     show = None if args.json else (lambda m: print(m, flush=True))
+    skipped = skipped_kinds(run, kinds)
+    if len(skipped) == len(kinds) and not args.attack:
+        raise UsageError("no kind in --kinds applies to this run: " + "; ".join(f"{k}: {r}" for k, r in skipped))
+    for k, why in skipped if show else ():
+        show(f"skipped {k}: {why}")
     rows = stress_run(run, eps, kinds=kinds, samples=args.samples, attack_signals=2 if args.attack else 0,
                       progress=show)
     violations = sum(r.violations for r in rows)
     result = {"run": args.run, "nodes": run.op.nodes, "rho": run.manifest.get("rho"),
-              "rows": [r.as_dict() for r in rows], "violations": violations}
+              "rows": [r.as_dict() for r in rows], "violations": violations,
+              "skipped": [{"kind": k, "reason": r} for k, r in skipped]}
     if args.save:
         from ._runs import now, set_aside
         from ._store import write_json
@@ -406,6 +412,7 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--json", action="store_true", help="print one JSON object (with the permutation when aligned)")
     g.add_argument("--save-perm", metavar="FILE", help="with --align: write the permutation to this new CSV file "
                    "(graph_a_index,graph_b_index[,graph_a_id,graph_b_id] per node of graph_a)")
+    g.add_argument("--quiet", action="store_true", help="show no progress bar")
     _add_csv_options(g)
     g.set_defaults(func=cmd_distance)
     st = sub.add_parser("stress", help="hold a run's certificates against perturbed graphs and attacks")
@@ -417,6 +424,7 @@ def build_parser() -> argparse.ArgumentParser:
                     help="comma-separated kinds of random perturbation (default relative,diagonal,scaling,edges)")
     st.add_argument("--json", action="store_true", help="print one JSON object")
     st.add_argument("--save", action="store_true", help="also write the results to stress.json in the run folder")
+    st.add_argument("--quiet", action="store_true", help="show no progress bar")
     st.set_defaults(func=cmd_stress)
     r = sub.add_parser("report", help="draw runs' figures and write one self-contained HTML page")
     r.add_argument("runs", nargs="+", help="run directories written by train")
@@ -434,6 +442,10 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    if getattr(args, "quiet", False):  # no progress bars either
+        from ._progress import set_quiet
+
+        set_quiet()
     try:
         status = int(args.func(args) or 0)
         sys.stdout.flush()  # a closed pipe shows here, not at exit
