@@ -112,14 +112,17 @@ def say_through(b, show):
     return out
 
 
+@contextlib.contextmanager
 def steps(desc: str):
-    """A callable ``progress(message)`` that shows each message as the
-    current step of an open-ended task (a spinner-like bar without total),
-    for the core's ``progress`` arguments. Returns ``(callback, bar)``."""
+    """Context of an open-ended task shown as its current step: yields
+    ``(progress, bar)`` where ``progress(message)`` is the plain callable the
+    core takes (it names the step on the bar and counts it). The bar closes
+    when the context ends."""
     b = bar(None, desc, unit="step")
 
     def cb(msg: str) -> None:
         b.set_description_str(f"{desc}: {msg}")
         b.update(1)
 
-    return cb, b
+    with b:
+        yield cb, b

@@ -188,9 +188,18 @@ def distance_text(d, name_a: str, name_b: str, nodes: int, aligned: bool) -> str
                      "below are upper bounds on the distance over all node orders (--json lists the permutation)")
     lines += [f"  relative distance ||E||_2 (S_hat = S + E S + S E): {fmt(d.relative)}"
               + (" (an upper bound)" if d.as_dict()["upper_bound"] else ""),
-              f"  residual ||S E + E S - (S_hat - S)||_2: {fmt(d.residual)} (round-off allowance {fmt(d.tolerance)}) -> "
+              f"  residual ||S E + E S - (S_hat - S)||_{d.residual_norm}: {fmt(d.residual)} "
+              f"({'round-off' if d.method == 'eigenbasis' else 'iterative'} allowance {fmt(d.tolerance)}) -> "
               + ("expressible as a relative perturbation" if d.expressible else
                  "NOT expressible as a relative perturbation; the relative distance covers only part of the change")]
+    if d.method == "diagonal":
+        lines.append("  found with a diagonal E (S_ij (1 + e_i + e_j)) by sparse least squares, no dense "
+                     "eigendecomposition; exact when the residual is within the allowance")
+    elif d.method == "minres":
+        sv = d.solve
+        lines.append(f"  found by MINRES on S E + E S ({sv.get('iterations')} iterations, "
+                     f"{'converged' if sv.get('converged') else 'stopped at its budget'}, {sv.get('seconds')} s); "
+                     f"||E||_2 is a Lanczos estimate, at most ||E||_F = {fmt(d.relative_upper)}")
     if d.singular_pairs:
         lines.append(f"  {d.singular_pairs} eigenvalue pairs with lam_i + lam_j = 0: E is not determined there (set to 0)")
     if d.amplified:

@@ -97,7 +97,9 @@ def _add_csv_options(p) -> None:
 
 def cmd_bound(args) -> int:
     from ._certify import certify_filter
+    from ._interval import spectral_interval
     from ._io import load_filter, load_graph
+    from ._progress import steps
 
     eps = _eps_list(args.eps)
     if not eps:
@@ -106,9 +108,10 @@ def cmd_bound(args) -> int:
         raise UsageError(f"--delta must lie in [0, 8]; got {args.delta}")
     op = load_graph(args.graph, args.shift, **_csv_options(args))
     taps, basis = load_filter(args.filter)
-    with _float64("certificate"):
+    with _float64("certificate"), steps("certificate") as (shown, _):
         cert = certify_filter(op, taps, basis, eps, delta=8.0 if args.delta is None else args.delta,
-                              deployed=_deployed(op.kind, args.same_kind))
+                              deployed=_deployed(op.kind, args.same_kind),
+                              interval=spectral_interval(op, progress=shown))
         d = cert.as_dict()
     check_finite(d, "certificate")
     warn = basis_range_warning(cert.interval.lower, cert.interval.upper, basis)
@@ -258,6 +261,7 @@ def cmd_distance(args) -> int:
     from ._distance import distance
     from ._graph import shift_operator
     from ._io import read_graph
+    from ._progress import steps
 
     if args.save_perm is not None:
         if not args.align:
@@ -267,8 +271,8 @@ def cmd_distance(args) -> int:
     (ma, ids_a), (mb, ids_b) = read_graph(args.graph_a, **opts), read_graph(args.graph_b, **opts)
     a = shift_operator(ma, args.shift, name=f"graph file {args.graph_a!r}")
     b = shift_operator(mb, args.shift, name=f"graph file {args.graph_b!r}")
-    with _float64("distance"):
-        d = distance(a, b, align_nodes=args.align)
+    with _float64("distance"), steps("distance") as (shown, _):
+        d = distance(a, b, align_nodes=args.align, progress=shown)
         out = d.as_dict()
     check_finite(out, "distance")
     out.update({"nodes": a.nodes, "graph_a": args.graph_a, "graph_b": args.graph_b})
