@@ -74,8 +74,8 @@ class LanczosBudget:
     """
 
     maxiter: int = 300
-    ncv: int = 32
-    seconds: float = 5.0
+    ncv: int = 20
+    seconds: float = 8.0
     inertia_seconds: float = 10.0
 
     @property

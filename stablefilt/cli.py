@@ -158,14 +158,15 @@ def _progress(args):
 
 
 def cmd_certify(args) -> int:
+    from ._progress import steps
     from ._runcert import certify_run
     from ._runs import open_run
 
     run = open_run(args.run)
     eps = _eps_list(args.eps) or [float(e) for e in run.config["certify"]["eps"]]
     _deployed(run.op.kind, args.same_kind)
-    with _float64("certificate"):
-        rc = certify_run(run, eps, same_kind=args.same_kind)
+    with _float64("certificate"), steps("certificate") as (shown, _):
+        rc = certify_run(run, eps, same_kind=args.same_kind, progress=shown)
         d = rc.as_dict()
     check_finite(d, "certificate")
     iv = rc.spectrum.interval

@@ -148,3 +148,20 @@ def test_bound_command_json_records_each_end(tmp_path, capsys):
     assert set(d["interval_ends"]) == {"lower", "upper"}
     assert d["interval_ends"]["lower"]["method"] == "exact"
     assert isinstance(d["interval_ends"]["upper"]["seconds"], float)
+
+
+def test_lower_figure_stops_at_its_time_and_stays_a_realised_change():
+    # The realised change of E = eps I on S is ||H((1 + 2 eps) S) - H(S)||_2
+    # (docs/theory.md s.2: scaling), computed here from numpy.linalg.eigvalsh.
+    from stablefilt._search import lower_change
+
+    op = sf.shift_operator(nx.to_numpy_array(GRAPHS["geometric"]()), "laplacian")
+    taps, basis = np.array([1.0, -0.3, 0.05]), sf.make_basis()
+    lam = np.linalg.eigvalsh(op.dense())
+    eps = 0.01
+    exact = max(np.max(np.abs(np.polyval(taps[::-1], (1 + 2 * sign * eps) * lam) - np.polyval(taps[::-1], lam)))
+                for sign in (1.0, -1.0))
+    full = lower_change(op, taps, basis, eps)
+    quick = lower_change(op, taps, basis, eps, seconds=0.0)  # one iteration per start
+    assert 0 < quick.value <= full.value <= exact * (1 + 1e-9)
+    assert full.value >= exact * (1 - 1e-6)
