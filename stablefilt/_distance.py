@@ -119,7 +119,8 @@ class Distance:
             "expressible": self.expressible,
             "delta": self.delta, "delta_of": "eigenvectors of E against eigenvectors of S (graph_a)",
             "additive": self.additive, "aligned": self.aligned,
-            "upper_bound": self.aligned or self.singular_pairs > 0,
+            # A diagonal E is one solution; the distance is the least ||E||_2 over all.
+            "upper_bound": self.aligned or self.singular_pairs > 0 or self.method == "diagonal",
             "singular_pairs": self.singular_pairs,
             "model": "S_hat = S + E S + S E" + (" after aligning nodes (an upper bound)" if self.aligned else ""),
             "spectrum_a": self.pairs.get("eigenvalues"),

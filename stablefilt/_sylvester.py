@@ -107,7 +107,7 @@ def minres_sylvester(s, d, *, tol: float = 1e-10, maxiter: int = 2000, seconds: 
     b = (0.5 * (dd + dd.T)).ravel()
     t0 = time.perf_counter()
     count = [0]
-    best = {"x": np.zeros_like(b)}
+    state = {"x": np.zeros_like(b)}
 
     def tick():
         if time.perf_counter() - t0 > seconds:
@@ -115,8 +115,7 @@ def minres_sylvester(s, d, *, tol: float = 1e-10, maxiter: int = 2000, seconds: 
 
     def callback(xk):
         count[0] += 1
-        best["x"] = xk.copy() if count[0] % 10 == 0 or count[0] < 10 else best["x"]
-        best["last"] = xk
+        state["x"] = xk  # the iterate of the last completed iteration
         if progress is not None:
             progress(1)
 
@@ -125,8 +124,8 @@ def minres_sylvester(s, d, *, tol: float = 1e-10, maxiter: int = 2000, seconds: 
     try:
         x, info = spla.minres(op, b, rtol=tol, maxiter=maxiter, callback=callback)
         converged = info == 0
-    except _Stop:
-        x = best.get("last", best["x"])
+    except _Stop:  # out of time: the last completed iterate; its residual is measured below
+        x = np.array(state["x"])
     e = x.reshape(n, n)
     e = 0.5 * (e + e.T)
     se = s @ e
@@ -177,7 +176,7 @@ def diagonal_sylvester(s, d, *, tol: float = 1e-12, maxiter: int = 500, seconds:
         out = spla.lsqr(op, rhs, atol=tol, btol=tol, iter_lim=maxiter)
         e, istop = out[0], out[1]
         converged = istop in (1, 2, 4, 5) and istop != 7
-    except _Stop:
+    except _Stop:  # out of time before LSQR returned: no fit, the whole change stays residual
         e = np.zeros(n)
     ed = sp.diags_array(e)
     r = s @ ed + ed @ s - d

@@ -165,3 +165,24 @@ def test_lower_figure_stops_at_its_time_and_stays_a_realised_change():
     quick = lower_change(op, taps, basis, eps, seconds=0.0)  # one iteration per start
     assert 0 < quick.value <= full.value <= exact * (1 + 1e-9)
     assert full.value >= exact * (1 - 1e-6)
+
+
+def test_minres_solve_agrees_with_bartels_stewart_and_stops_at_its_budget():
+    import scipy.linalg as sla
+
+    from stablefilt._sylvester import minres_sylvester
+
+    a = nx.to_numpy_array(nx.karate_club_graph(), weight=None)  # Zachary 1977, bundled with networkx
+    s = np.diag(a.sum(axis=1)) - a + 0.5 * np.eye(34)  # L + I/2: every lam_i + lam_j >= 1
+    rng = np.random.default_rng(4)
+    e = rng.standard_normal((34, 34))
+    e = 0.01 * (e + e.T)
+    d = s @ e + e @ s
+    sol = minres_sylvester(sp.csr_array(s), d, tol=1e-12)
+    ref = sla.solve_sylvester(s, s, d)  # reference: scipy (Bartels-Stewart)
+    assert sol.converged and sol.method == "minres"
+    np.testing.assert_allclose(sol.e, ref, atol=1e-10 * np.abs(ref).max())
+    assert sol.residual == pytest.approx(np.linalg.norm(s @ sol.e + sol.e @ s - d), rel=1e-6, abs=1e-14)
+    stopped = minres_sylvester(sp.csr_array(s), d, seconds=0.0)  # out of time at the first product
+    assert not stopped.converged and stopped.iterations == 0
+    assert stopped.residual == pytest.approx(np.linalg.norm(d), rel=1e-12)  # E = 0 leaves all of D
