@@ -447,10 +447,9 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
-    if getattr(args, "quiet", False):  # no progress bars either
-        from ._progress import set_quiet
+    from ._progress import set_quiet
 
-        set_quiet()
+    set_quiet(getattr(args, "quiet", False))  # --quiet: no progress bars either (set on every call)
     try:
         status = int(args.func(args) or 0)
         sys.stdout.flush()  # a closed pipe shows here, not at exit

@@ -86,6 +86,7 @@ def test_bar_is_silent_in_a_pipe():
 
 def test_silent_without_tqdm(monkeypatch):
     monkeypatch.setitem(sys.modules, "tqdm", None)  # import tqdm now raises ImportError
+    _progress.set_quiet(False)
     _progress.force_display(True)
     try:
         b = _progress.bar(3, "x")
@@ -99,6 +100,7 @@ def test_silent_without_tqdm(monkeypatch):
 
 def test_forced_display_is_a_tqdm_bar_on_stderr(capsys):
     pytest.importorskip("tqdm", reason="the optional progress extra (tqdm) is not installed")
+    _progress.set_quiet(False)  # as a command without --quiet leaves it
     _progress.force_display(True)
     try:
         with _progress.bar(2, "forced") as b:
