@@ -38,6 +38,10 @@ DISTANCE_LIMIT = 3000
 #: Largest graph whose dense ``E`` is solved for by MINRES (above
 #: :data:`DISTANCE_LIMIT`); beyond it only a diagonal ``E`` is fitted.
 ITERATIVE_LIMIT = 8000
+#: Largest graph whose eigenvector misalignment ``delta`` is computed (an
+#: eigendecomposition of ``E`` and a dense linear assignment); above it
+#: ``delta`` is None.
+MISALIGNMENT_LIMIT = 1500
 #: Largest graph aligned by quadratic assignment (dense ``O(N^3)`` steps).
 ALIGN_LIMIT = 1000
 #: Relative residual ``||S E + E S - D||_F / ||D||_F`` below which an
@@ -454,16 +458,21 @@ def distance(a: ShiftOperator, b: ShiftOperator, *, align_nodes: bool = False, s
     say("solving S E + E S = S_hat - S in the eigenbasis")
     sol = sylvester_relative(s, s_hat, eig=(lam, v))
     e, resid, nsing = sol.e, sol.residual, sol.singular_pairs
-    say("norms and eigenvector misalignment")
-    w_e, u_e = np.linalg.eigh(e)
-    e_norm = float(max(abs(w_e[0]), abs(w_e[-1]))) if n else 0.0
+    if n <= MISALIGNMENT_LIMIT:
+        say("norms and eigenvector misalignment")
+        w_e, u_e = np.linalg.eigh(e)
+        e_norm = float(max(abs(w_e[0]), abs(w_e[-1]))) if n else 0.0
+    else:  # the misalignment's eigenvectors of E and assignment are left out at this size
+        say("norms")
+        e_norm, w_e, u_e = sym_norm2(e), None, None
     d = s_hat - s
     add = sym_norm2(d)
     s_norm = float(max(abs(lam[0]), abs(lam[-1]))) if n else 0.0
     # ||S_hat||_2 <= ||S||_2 + ||S_hat - S||_2 (triangle inequality): a larger allowance, never a smaller one.
     tol = _tolerance(n, s_norm, s_norm + add, e_norm)
     ok = resid <= tol or add == 0.0
-    return Distance(e_norm, resid, bool(ok), misalignment(s, e, v, (w_e, u_e)), add, align_nodes, perm,
+    delta = misalignment(s, e, v, (w_e, u_e)) if w_e is not None else None
+    return Distance(e_norm, resid, bool(ok), delta, add, align_nodes, perm,
                     nsing, e, tol, al, _pair_sums(lam, v, d, add))
 
 

@@ -426,3 +426,16 @@ def test_cli_distance_save_perm_with_node_ids(tmp_path, capsys):
     assert main(["distance", a, b, "--align", "--save-perm", str(path)]) == 0
     rows = list(csv.DictReader(open(path, newline="")))
     assert len(rows) == 4 and all(r["graph_a_id"] == r["graph_b_id"] for r in rows)
+
+
+def test_misalignment_left_out_above_its_limit_with_the_same_distance(monkeypatch):
+    s = PD["random-L+I"]
+    e = H.random_error(np.random.default_rng(6), len(s), 0.02)
+    a, b = sf.shift_operator(s), sf.shift_operator(H.relative(s, e))
+    full = st.distance(a, b)
+    monkeypatch.setattr(dist, "MISALIGNMENT_LIMIT", 5)
+    short = st.distance(a, b)
+    assert short.delta is None and full.delta is not None
+    assert short.relative == pytest.approx(full.relative, rel=1e-12)
+    assert short.relative == pytest.approx(0.02, rel=1e-8)  # ||E||_2 = 0.02 by construction (helpers.random_error)
+    assert H.strict_json(__import__("json").dumps(short.as_dict()))["delta"] is None
