@@ -144,7 +144,8 @@ def _starts(op: ShiftOperator, params, spec: ModelSpec, eps: float, dense: bool,
 
 
 def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: str = "auto", free_input: bool = False,
-           rho: float | None = None, restarts: int = 5, iters: int = 40, seed: int = 0) -> AttackResult:
+           rho: float | None = None, restarts: int = 5, iters: int = 40, seed: int = 0,
+           progress=None) -> AttackResult:
     """Strongest relative perturbation found for one input ``x`` (``(N, F)``).
 
     Args:
@@ -155,6 +156,8 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
       eps: radius of the ball.
       mode: ``dense``, ``diagonal``, or ``auto`` (dense up to
         ``DENSE_ATTACK_LIMIT`` nodes).
+      progress: called with a count of iterations done (``restarts *
+        iters`` in all), or None.
     """
     n = op.nodes
     dense = mode == "dense" or (mode == "auto" and n <= DENSE_ATTACK_LIMIT)
@@ -173,7 +176,11 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
         hist = []
         top = None  # the best iterate: the ascent is not monotone
         step = 0.5 * eps
+        done = 0
         for it in range(iters):
+            if progress is not None:
+                progress(1)
+                done += 1
             y_ref = _forward(params, sop, xc[None], spec) if free_input else y0
             val, (ge, gx) = _objective_grad(params, sop, e, xc, y_ref, spec)
             hist.append(float(val))
@@ -189,6 +196,8 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
                 if float(gxn) > 0:
                     xc = xc + 0.2 * rho * gx / gxn
                     xc = xc * (rho / jnp.linalg.norm(xc))
+        if progress is not None and done < iters:  # the restart stopped early
+            progress(iters - done)
         cands = [(e, xc)] + ([top[1:]] if top is not None and top[1] is not e else [])
         for ec, xcc in cands:
             e_np = project_ball(np.asarray(ec, dtype=np.float64), eps)

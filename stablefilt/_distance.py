@@ -8,6 +8,16 @@ of ``S_hat - S`` that falls on those entries is reported as a residual, never
 divided. With unknown correspondence the graphs are first aligned by
 ``scipy.optimize.quadratic_assignment``; the distance found is then an upper
 bound on the true distance modulo permutation.
+
+Every path has a bounded cost (docs/theory.md section 2, "At scale"): the
+eigenbasis solve up to :data:`DISTANCE_LIMIT` nodes (two dense
+eigendecompositions, ``O(N^3)``); above it, no dense eigendecomposition: the
+change is first fitted with a diagonal ``E`` (sparse least squares, any
+size), then, up to :data:`ITERATIVE_LIMIT` nodes, solved by MINRES on the
+Kronecker sum with a budget of iterations and time
+(:mod:`stablefilt._sylvester`); beyond, a change that no diagonal ``E``
+explains is refused in one sentence. Alignment (quadratic assignment) is
+refused above :data:`ALIGN_LIMIT` nodes.
 """
 
 from __future__ import annotations
@@ -20,9 +30,27 @@ from scipy.optimize import linear_sum_assignment, quadratic_assignment
 
 from ._errors import GraphError
 from ._graph import ShiftOperator
+from ._memory import dense_bytes, require
+from ._sylvester import diagonal_sylvester, minres_sylvester
 
 #: Largest graph decomposed densely for a distance.
 DISTANCE_LIMIT = 3000
+#: Largest graph whose dense ``E`` is solved for by MINRES (above
+#: :data:`DISTANCE_LIMIT`); beyond it only a diagonal ``E`` is fitted.
+ITERATIVE_LIMIT = 8000
+#: Largest graph whose eigenvector misalignment ``delta`` is computed (an
+#: eigendecomposition of ``E`` and a dense linear assignment); above it
+#: ``delta`` is None.
+MISALIGNMENT_LIMIT = 1500
+#: Largest graph aligned by quadratic assignment (dense ``O(N^3)`` steps).
+ALIGN_LIMIT = 1000
+#: Relative residual ``||S E + E S - D||_F / ||D||_F`` below which an
+#: iterative solution counts as expressing the change (common practice for
+#: a float64 iterative solve stopped at 1e-10).
+ITERATIVE_RTOL = 1e-8
+#: Budget of the iterative solves.
+ITERATIVE_SECONDS = 60.0
+ITERATIVE_MAXITER = 3000
 #: ``|lam_i + lam_j| <= SINGULAR_TOL * R`` counts as zero.
 SINGULAR_TOL = 1e-10
 
@@ -53,6 +81,14 @@ class Distance:
       alignment: the :class:`Alignment` when nodes were aligned.
       pairs: spectrum of ``S``, smallest relative ``|lam_i + lam_j|`` that
         carries the change, additive change over ``||S||_2``.
+      method: ``eigenbasis`` (dense, exact), ``diagonal`` (a diagonal ``E``
+        fitted by sparse least squares; ``relative = max |e_i|`` exactly)
+        or ``minres`` (dense ``E`` by MINRES; ``relative`` is a Lanczos
+        estimate of ``||E||_2`` and ``relative_upper = ||E||_F`` bounds it).
+      residual_norm: ``"2"`` or ``"F"`` (Frobenius, iterative paths).
+      relative_upper: an upper bound on ``||E||_2`` where ``relative`` is
+        an estimate, else None.
+      solve: iterations, convergence and seconds of an iterative solve.
     """
 
     relative: float
@@ -67,6 +103,10 @@ class Distance:
     tolerance: float = 0.0
     alignment: "Alignment | None" = None
     pairs: dict = dataclasses.field(default_factory=dict)
+    method: str = "eigenbasis"
+    residual_norm: str = "2"
+    relative_upper: float | None = None
+    solve: dict = dataclasses.field(default_factory=dict)
 
     @property
     def amplified(self) -> bool:
@@ -83,12 +123,15 @@ class Distance:
             "expressible": self.expressible,
             "delta": self.delta, "delta_of": "eigenvectors of E against eigenvectors of S (graph_a)",
             "additive": self.additive, "aligned": self.aligned,
-            "upper_bound": self.aligned or self.singular_pairs > 0,
+            # A diagonal E is one solution; the distance is the least ||E||_2 over all.
+            "upper_bound": self.aligned or self.singular_pairs > 0 or self.method == "diagonal",
             "singular_pairs": self.singular_pairs,
             "model": "S_hat = S + E S + S E" + (" after aligning nodes (an upper bound)" if self.aligned else ""),
             "spectrum_a": self.pairs.get("eigenvalues"),
             "smallest_pair_sum_over_norm": self.pairs.get("smallest_pair_sum"),
             "driven_by_pairs_near_zero": self.amplified,
+            "method": self.method, "residual_norm": self.residual_norm, "relative_upper": self.relative_upper,
+            "solve": self.solve,
         }
         if self.alignment is not None:
             al = self.alignment
@@ -98,14 +141,15 @@ class Distance:
         return out
 
 
-def misalignment(s: np.ndarray, e: np.ndarray, vs=None) -> float:
+def misalignment(s: np.ndarray, e: np.ndarray, vs=None, eig_e=None) -> float:
     """``delta = (||U - V||_2 + 1)^2 - 1`` with ``V`` eigenvectors of ``S``
     and ``U`` of ``E``, columns of ``U`` matched to ``V`` by a linear
     assignment on ``|V^T U|`` and signs fixed (Gama, Bruna, Ribeiro 2020).
-    Any valid decomposition gives a valid bound."""
+    Any valid decomposition gives a valid bound. ``eig_e = (w, U)`` of
+    ``E`` when already computed."""
     if vs is None:
         _, vs = np.linalg.eigh(s)
-    w, u = np.linalg.eigh(0.5 * (e + e.T))
+    w, u = np.linalg.eigh(0.5 * (e + e.T)) if eig_e is None else (eig_e[0], eig_e[1].copy())
     # Within a repeated eigenvalue of E any orthonormal basis is valid: rotate
     # it onto the eigenvectors of S lying closest to that eigenspace
     # (orthogonal Procrustes), so E = c I gives U = V.
@@ -130,7 +174,10 @@ def misalignment(s: np.ndarray, e: np.ndarray, vs=None) -> float:
     um = um * signs
     # ||U - V||_2 <= 2 for orthogonal U, V; round-off can put the computed
     # norm a few ulps above, which would put delta above its range [0, 8].
-    gap = min(float(np.linalg.norm(um - vs, 2)), 2.0)
+    # ||A||_2 = sqrt(lam_max(A^T A)): one product and eigvalsh, several times
+    # faster than the SVD behind numpy.linalg.norm(A, 2).
+    g = um - vs
+    gap = min(float(np.sqrt(max(np.linalg.eigvalsh(g.T @ g)[-1], 0.0))), 2.0)
     return float((gap + 1) ** 2 - 1)
 
 
@@ -151,11 +198,22 @@ class SylvesterSolution(NamedTuple):
     eigenvectors: np.ndarray
 
 
-def sylvester_relative(s: np.ndarray, s_hat: np.ndarray) -> SylvesterSolution:
+def sym_norm2(m: np.ndarray) -> float:
+    """``||M||_2`` of a symmetric matrix as ``max |eigvalsh(M)|`` (its
+    symmetric part), several times faster than the SVD behind
+    ``numpy.linalg.norm(M, 2)`` and equal to it for symmetric ``M``."""
+    if m.size == 0:
+        return 0.0
+    w = np.linalg.eigvalsh(0.5 * (m + m.T))
+    return float(max(abs(w[0]), abs(w[-1])))
+
+
+def sylvester_relative(s: np.ndarray, s_hat: np.ndarray, eig=None) -> SylvesterSolution:
     """Solve ``S E + E S = S_hat - S`` in the eigenbasis of ``S``:
     ``Et_ij = Dt_ij / (lam_i + lam_j)``; ``E`` is zero on pairs with
-    ``lam_i + lam_j`` near zero. Returns a :class:`SylvesterSolution`."""
-    lam, v = np.linalg.eigh(s)
+    ``lam_i + lam_j`` near zero. ``eig = (lam, V)`` of ``S`` when already
+    computed. Returns a :class:`SylvesterSolution`."""
+    lam, v = np.linalg.eigh(s) if eig is None else eig
     d = s_hat - s
     dt = v.T @ d @ v
     denom = lam[:, None] + lam[None, :]
@@ -164,7 +222,7 @@ def sylvester_relative(s: np.ndarray, s_hat: np.ndarray) -> SylvesterSolution:
     et = np.where(sing, 0.0, dt / np.where(sing, 1.0, denom))
     e = v @ et @ v.T
     e = 0.5 * (e + e.T)
-    resid = float(np.linalg.norm(s @ e + e @ s - d, 2))
+    resid = sym_norm2(s @ e + e @ s - d)
     return SylvesterSolution(e, resid, int(np.count_nonzero(sing)), v)
 
 
@@ -301,7 +359,7 @@ def _swaps(s, s_hat, perm, pairs, rounds: int = 5):
     return perm
 
 
-def align(a: ShiftOperator, b: ShiftOperator, seed: int = 0, restarts: int = 1) -> Alignment:
+def align(a: ShiftOperator, b: ShiftOperator, seed: int = 0, restarts: int = 1, progress=None) -> Alignment:
     """Node order of ``b`` matched to ``a``, minimising ``||S - P S_hat P^T||_F``
     (equivalently maximising ``trace(S P S_hat P^T)``) over permutations by
     keeping the best of several local searches (docs/theory.md section 2,
@@ -311,7 +369,13 @@ def align(a: ShiftOperator, b: ShiftOperator, seed: int = 0, restarts: int = 1) 
     ``scipy.optimize.quadratic_assignment`` (FAQ) from its barycenter and
     from ``restarts`` random starts (seeded). Each is refined by repeated
     linear assignment; the best then by swapping pairs of nodes. Returns an
-    :class:`Alignment`, never worse than the given order."""
+    :class:`Alignment`, never worse than the given order.
+
+    Cost: a fixed number of dense ``O(N^3)`` steps (at most 30 iterations of
+    each quadratic assignment, 50 or 60 rounds of each refinement, 5 rounds
+    of swaps); :func:`distance` refuses it above :data:`ALIGN_LIMIT` nodes.
+    ``progress`` is called with a message before each stage, or None."""
+    say = progress or (lambda m: None)
     s, s_hat = a.dense(), b.dense()
     n = a.nodes
     ident = np.arange(n)
@@ -323,9 +387,12 @@ def align(a: ShiftOperator, b: ShiftOperator, seed: int = 0, restarts: int = 1) 
     _, sig = linear_sum_assignment(np.sum((fa[:, None, :] - fb[None, :, :]) ** 2, axis=2))
     rng = np.random.default_rng(seed)
     cands = [("identity", ident), ("identity", _refine(f, ident)), ("signatures", sig)]
+    say("aligning: refining from node signatures")
     cands += [("signatures", _refine(f, _seeded(f, sig, q))) for q in (0.1, 0.2, 0.3, 0.4)]
     for name, init in [("barycenter", "barycenter")] + [("random", "randomized")] * restarts:
-        res = quadratic_assignment(f.oa, f.ob, method="faq", options={"maximize": True, "P0": init, "rng": rng})
+        say(f"aligning: quadratic assignment from a {name} start")
+        res = quadratic_assignment(f.oa, f.ob, method="faq",
+                                   options={"maximize": True, "P0": init, "rng": rng, "maxiter": 30})
         cands.append((name, _refine(f, np.asarray(res.col_ind))))
     name, perm = min(cands, key=lambda c: f(c[1]))
     # Swap candidates: neighbours in S and nodes with close signatures.
@@ -333,6 +400,7 @@ def align(a: ShiftOperator, b: ShiftOperator, seed: int = 0, restarts: int = 1) 
     ii, jj = np.nonzero(np.triu(f.oa != 0, 1))
     pairs = sorted({(int(i), int(j)) for i, j in zip(ii, jj)}
                    | {(min(i, int(j)), max(i, int(j))) for i in range(n) for j in near[i]})
+    say("aligning: swapping pairs of nodes")
     perm = _refine(f, _swaps(s, s_hat, perm, pairs))
     before = _mismatch(s, s_hat, ident)
     after = _mismatch(s, s_hat, perm)
@@ -354,40 +422,134 @@ def roundoff_tolerance(s: np.ndarray, s_hat: np.ndarray, e: np.ndarray) -> float
     return 8 * s.shape[0] * u * (ns + float(np.linalg.norm(s_hat, 2)) + 2 * ns * float(np.linalg.norm(e, 2)))
 
 
-def distance(a: ShiftOperator, b: ShiftOperator, *, align_nodes: bool = False, seed: int = 0) -> Distance:
+def distance(a: ShiftOperator, b: ShiftOperator, *, align_nodes: bool = False, seed: int = 0,
+             progress=None) -> Distance:
     """Relative and additive distances from ``a`` (``S``) to ``b`` (``S_hat``).
 
+    Up to :data:`DISTANCE_LIMIT` nodes in the eigenbasis of ``S`` (exact);
+    above, by the iterative paths of the module docstring. ``progress`` is
+    called with a short message before each costly step, or None.
+
     Raises:
-      GraphError: the graphs differ in size or are too large to decompose.
+      GraphError: the graphs differ in size, alignment is asked above
+        :data:`ALIGN_LIMIT` nodes, or the change cannot be measured at this
+        size (see the module docstring).
+      MemoryRefused: a dense step does not fit in the available memory.
     """
-    if a.nodes != b.nodes:
+    say = progress or (lambda m: None)
+    n = a.nodes
+    if n != b.nodes:
         raise GraphError(f"the two graphs have {a.nodes} and {b.nodes} nodes; a distance needs the same node count.")
-    if a.nodes > DISTANCE_LIMIT:
-        raise GraphError(f"distances need dense eigendecompositions, at most {DISTANCE_LIMIT} nodes; got {a.nodes}.")
-    al = align(a, b, seed) if align_nodes else None
+    if align_nodes and n > ALIGN_LIMIT:
+        raise GraphError(f"aligning nodes takes dense O(N^3) steps and is done for at most {ALIGN_LIMIT} nodes; "
+                         f"these graphs have {n}, so give them in the same node order and leave out --align.")
+    if n > DISTANCE_LIMIT:
+        return _distance_at_scale(a, b, say)
+    # the dense S, S_hat, their difference, eigenvectors, E and products
+    require(dense_bytes(n, 10), f"a dense distance on {n} nodes")
+    if align_nodes:
+        say(f"aligning {n} nodes")
+    al = align(a, b, seed, progress=say) if align_nodes else None
     perm = None if al is None else al.perm
     s = a.dense()
     s_hat = b.dense() if perm is None else b.dense()[perm][:, perm]
-    sol = sylvester_relative(s, s_hat)
-    e, resid, nsing, v = sol.e, sol.residual, sol.singular_pairs, sol.eigenvectors
-    add = float(np.linalg.norm(s_hat - s, 2))
-    tol = roundoff_tolerance(s, s_hat, e)
+    say("eigenvectors of S")
+    lam, v = np.linalg.eigh(s)
+    say("solving S E + E S = S_hat - S in the eigenbasis")
+    sol = sylvester_relative(s, s_hat, eig=(lam, v))
+    e, resid, nsing = sol.e, sol.residual, sol.singular_pairs
+    if n <= MISALIGNMENT_LIMIT:
+        say("norms and eigenvector misalignment")
+        w_e, u_e = np.linalg.eigh(e)
+        e_norm = float(max(abs(w_e[0]), abs(w_e[-1]))) if n else 0.0
+    else:  # the misalignment's eigenvectors of E and assignment are left out at this size
+        say("norms")
+        e_norm, w_e, u_e = sym_norm2(e), None, None
+    d = s_hat - s
+    add = sym_norm2(d)
+    s_norm = float(max(abs(lam[0]), abs(lam[-1]))) if n else 0.0
+    # ||S_hat||_2 <= ||S||_2 + ||S_hat - S||_2 (triangle inequality): a larger allowance, never a smaller one.
+    tol = _tolerance(n, s_norm, s_norm + add, e_norm)
     ok = resid <= tol or add == 0.0
-    return Distance(float(np.linalg.norm(e, 2)), resid, bool(ok), misalignment(s, e, v), add, align_nodes, perm,
-                    nsing, e, tol, al, _pair_sums(s, s_hat, v, e))
+    delta = misalignment(s, e, v, (w_e, u_e)) if w_e is not None else None
+    return Distance(e_norm, resid, bool(ok), delta, add, align_nodes, perm,
+                    nsing, e, tol, al, _pair_sums(lam, v, d, add))
 
 
-def _pair_sums(s, s_hat, v, e) -> dict:
+def _tolerance(n: int, s_norm: float, s_hat_norm: float, e_norm: float) -> float:
+    """:func:`roundoff_tolerance` from the norms."""
+    u = np.finfo(np.float64).eps / 2
+    return 8 * n * u * (s_norm + s_hat_norm + 2 * s_norm * e_norm)
+
+
+def _norm_estimate(m, budget_products: int = 300) -> float:
+    """``||M||_2`` of a symmetric ``M`` (sparse or dense) estimated by
+    Lanczos (``eigsh(which="LM")``) within a budget of products; a Ritz
+    value, so never above the true norm. Falls back to the Frobenius norm
+    (an upper bound) when Lanczos does not converge."""
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as spla
+
+    n = m.shape[0]
+    fro = float(sp.linalg.norm(m)) if sp.issparse(m) else float(np.linalg.norm(m))
+    if n < 3 or fro == 0.0:
+        return float(np.max(np.abs(m.toarray() if sp.issparse(m) else m))) if n == 1 else fro
+    try:
+        ncv = min(n, 20)
+        w = spla.eigsh(m, k=1, which="LM", maxiter=max(1, budget_products // ncv), ncv=ncv, tol=1e-8,
+                       return_eigenvectors=False)
+        return float(abs(w[0]))
+    except (spla.ArpackNoConvergence, spla.ArpackError):
+        return fro
+
+
+def _distance_at_scale(a: ShiftOperator, b: ShiftOperator, say) -> Distance:
+    """The iterative paths (no dense eigendecomposition): a diagonal ``E``
+    by sparse least squares; if it leaves a residual, MINRES on the dense
+    ``E`` up to :data:`ITERATIVE_LIMIT` nodes."""
+    n = a.nodes
+    s, s_hat = a.matrix, b.matrix
+    d = (s_hat - s).tocsr()
+    d_fro = float(np.sqrt(np.sum(d.data**2))) if d.nnz else 0.0
+    add = _norm_estimate(d) if d.nnz else 0.0
+    say(f"fitting a diagonal E ({n} nodes, sparse least squares)")
+    diag = diagonal_sylvester(s, d, seconds=ITERATIVE_SECONDS, maxiter=ITERATIVE_MAXITER)
+    solve = {"iterations": diag.iterations, "converged": diag.converged, "seconds": round(diag.seconds, 4),
+             "rhs_norm": d_fro, "relative_residual_tolerance": ITERATIVE_RTOL}
+    if diag.residual <= ITERATIVE_RTOL * d_fro or d_fro == 0.0:
+        import scipy.sparse as sp
+
+        return Distance(float(np.max(np.abs(diag.e))) if n else 0.0, diag.residual, True, None, add, False, None,
+                        0, sp.diags_array(diag.e), ITERATIVE_RTOL * d_fro, None, {}, "diagonal", "F", None,
+                        {**solve, "solver": "lsqr"})
+    if n > ITERATIVE_LIMIT:
+        raise GraphError(f"this change is not an entry-wise rescaling S_ij (1 + e_i + e_j) (the diagonal fit leaves "
+                         f"{diag.residual / d_fro:.3g} of it), and a general relative error E is solved for at most "
+                         f"{ITERATIVE_LIMIT} nodes (a dense N x N matrix); these graphs have {n}")
+    say(f"solving S E + E S = S_hat - S by MINRES ({n} nodes)")
+    it = minres_sylvester(s, d, tol=1e-10, maxiter=ITERATIVE_MAXITER, seconds=ITERATIVE_SECONDS)
+    e = it.e
+    est = _norm_estimate(e)
+    upper = float(np.linalg.norm(e))
+    ok = it.residual <= ITERATIVE_RTOL * d_fro
+    solve = {"iterations": it.iterations, "converged": it.converged, "seconds": round(it.seconds, 4),
+             "rhs_norm": d_fro, "relative_residual_tolerance": ITERATIVE_RTOL, "solver": "minres",
+             "budget": {"iterations": ITERATIVE_MAXITER, "seconds": ITERATIVE_SECONDS}}
+    return Distance(est, it.residual, bool(ok), None, add, False, None, 0, e, ITERATIVE_RTOL * d_fro, None, {},
+                    "minres", "F", upper, solve)
+
+
+def _pair_sums(lam, v, d, add: float) -> dict:
     """What drives ``||E||``: the eigenvalue range of ``S`` and the smallest
     ``|lam_i + lam_j|`` (relative to ``||S||_2``) among the pairs that carry
-    the change. On an indefinite ``S`` such pairs divide ``Dt_ij`` by a
-    near-zero number (docs/theory.md section 2)."""
-    lam = np.linalg.eigvalsh(s)
+    the change ``D = S_hat - S``, from the eigenpairs ``(lam, V)`` of ``S``.
+    On an indefinite ``S`` such pairs divide ``Dt_ij`` by a near-zero number
+    (docs/theory.md section 2)."""
     r = max(float(np.max(np.abs(lam))), np.finfo(float).tiny)
-    dt = np.abs(v.T @ (s_hat - s) @ v)
+    dt = np.abs(v.T @ d @ v)
     denom = np.abs(lam[:, None] + lam[None, :])
     live = (dt > 1e-12 * max(float(dt.max()), np.finfo(float).tiny)) & (denom > SINGULAR_TOL * r)
     smallest = float(np.min(denom[live]) / r) if np.any(live) else None
-    add_rel = float(np.linalg.norm(s_hat - s, 2) / r)
+    add_rel = add / r
     return {"eigenvalues": [float(lam[0]), float(lam[-1])], "indefinite": bool(lam[0] < -1e-12 * r < 1e-12 * r < lam[-1]),
             "smallest_pair_sum": smallest, "additive_over_norm": add_rel}

@@ -34,9 +34,10 @@ class RunSpectrum:
     rho: float
 
 
-def run_spectrum(run: Run) -> RunSpectrum:
-    """The :class:`RunSpectrum` of a run."""
-    iv = spectral_interval(run.op)
+def run_spectrum(run: Run, progress=None) -> RunSpectrum:
+    """The :class:`RunSpectrum` of a run (``progress``: a message printer
+    for the costly steps, or None)."""
+    iv = spectral_interval(run.op, progress=progress)
     lam, vecs = None, None
     if iv.eigenvalues is not None:
         lam, vecs = np.linalg.eigh(run.op.dense())
@@ -101,19 +102,19 @@ class RunCertificate:
         iv = self.spectrum.interval
         d = self.model.as_dict()
         d.update({"run": self.run, "nodes": self.nodes, "interval": [iv.lower, iv.upper],
-                  "interval_method": iv.method,
+                  "interval_method": iv.method, "interval_ends": iv.ends(),
                   "input_specific_test_max": {eps_key(b.eps): v for b, v in zip(self.model.bounds, self.input_test_max)}})
         return d
 
 
-def certify_run(run: Run, eps_list, *, same_kind: bool = False) -> RunCertificate:
+def certify_run(run: Run, eps_list, *, same_kind: bool = False, progress=None) -> RunCertificate:
     """Float64 certificate of a run: over the eigenvalues when the graph is
     small enough to decompose, else over its interval; plus the
     input-specific bound on the run's test signals. With ``same_kind`` the
     deployed graph is assumed rebuilt as the same kind of operator as the
     training graph (its spectrum then lies in the kind's interval; recorded
     in the assumptions; docs/theory.md 9.1)."""
-    spectrum = run_spectrum(run)
+    spectrum = run_spectrum(run, progress)
     deployed = deployed_interval(run.op.kind) if same_kind else None
     constants = run_constants(run, spectrum, deployed)
     cert = certify_model(run.params, run.spec, spectrum.interval, run.op.nodes, eps_list, rho=spectrum.rho,

@@ -17,15 +17,41 @@ import dataclasses
 import numpy as np
 
 from ._attack import DENSE_ATTACK_LIMIT, attack
-from ._distance import DISTANCE_LIMIT, sylvester_relative
+from ._distance import sylvester_relative, sym_norm2
 from ._errors import StablefiltError
 from ._model import forward_np
 from ._modelcert import certify_inputs, model_bounds
 from ._perturb import DENSE_LIMIT, diagonal, jitter, relabel, relative, scaling
+from ._progress import bar, say_through
 from ._runcert import run_constants, run_spectrum
 from ._runs import Run
 
 KINDS = ("relative", "diagonal", "scaling", "edges", "relabel")
+
+#: Restarts of each attack (:func:`stablefilt._attack.attack`'s default).
+ATTACK_RESTARTS = 5
+
+
+def inapplicable(run: Run, kind: str, have_vectors: bool) -> str | None:
+    """Why ``kind`` cannot be measured against a certificate on this run's
+    operator, decided before any work (None when it can):
+
+    - ``edges`` on a normalised Laplacian: ``S x0 = 0`` for ``x0 = D^1/2 1``,
+      so every relative change has ``x0^T (E S + S E) x0 = 0``, while edge
+      jitter (off-diagonal entries scaled, diagonal kept at 1) moves
+      ``x0^T S x0`` by ``-sum_ij N_ij u_ij x0_i x0_j``, almost surely not 0:
+      no sample could ever be covered (docs/theory.md section 2).
+    - ``edges`` without the eigenvectors of ``S`` (graphs above the dense
+      limit of the spectral interval): the relative distance of each change
+      needs them, and it is not computed at that size.
+    """
+    if kind == "edges" and run.op.kind == "normalized-laplacian":
+        return ("edge jitter on a normalised Laplacian moves x0^T S x0 for its null vector x0 = D^1/2 1, "
+                "which no relative perturbation S + E S + S E can, so no sample could be covered")
+    if kind == "edges" and not have_vectors:
+        return (f"the relative distance of an edge change needs the eigenvectors of S, computed only for "
+                f"graphs of at most the dense limit of nodes; this one has {run.op.nodes}")
+    return None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -77,9 +103,10 @@ def _metric(out, y, task):
     return float(np.sqrt(np.mean((out[..., 0] - y) ** 2)))
 
 
-def _draw(run: Run, kind: str, eps: float, seed: int, sample: int = 0):
+def _draw(run: Run, kind: str, eps: float, seed: int, sample: int = 0, eig=None):
     """``(S_hat ShiftOperator, relative distance or None, perm or None)``;
-    scaling alternates ``(1 + 2 eps) S`` and ``(1 - 2 eps) S`` with ``sample``."""
+    scaling alternates ``(1 + 2 eps) S`` and ``(1 - 2 eps) S`` with ``sample``.
+    ``eig = (lam, V)`` of ``S``, needed by the ``edges`` kind."""
     op = run.op
     if kind == "relative":
         p = relative(op, eps, seed) if op.nodes <= DENSE_LIMIT else diagonal(op, eps, seed)
@@ -93,13 +120,13 @@ def _draw(run: Run, kind: str, eps: float, seed: int, sample: int = 0):
         return p.op, 0.0, p.perm
     if kind == "edges":
         p = jitter(op, 2 * eps, seed)
-        if op.nodes > DISTANCE_LIMIT:
+        if eig is None:
             return p.op, None, None
-        sol = sylvester_relative(op.dense(), p.op.dense())
-        add = np.linalg.norm(p.op.dense() - op.dense(), 2)
+        sol = sylvester_relative(op.dense(), p.op.dense(), eig=eig)
+        add = sym_norm2(p.op.dense() - op.dense())
         if sol.residual > 1e-8 * max(add, 1e-300):
             return p.op, None, None
-        return p.op, float(np.linalg.norm(sol.e, 2)), None
+        return p.op, sym_norm2(sol.e), None
     raise ValueError(kind)
 
 
@@ -107,11 +134,43 @@ def stress_run(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_
                attack_iters: int = 30, progress=None) -> list[StressRow]:
     """Stress a run; see the module docstring. ``attack_signals > 0`` also
     attacks that many test signals (and one free input) per eps. The model's
-    constants are computed once for every eps and sample."""
+    constants are computed once for every eps and sample. Kinds that cannot
+    apply to the run's operator (:func:`inapplicable`) are left out before
+    any work; :func:`skipped_kinds` says which and why. A progress bar
+    (standard error, terminals only) counts samples and attack iterations;
+    ``progress`` receives one line per row."""
     if run.spec.readout == "flat" and "relabel" in kinds:
         raise StablefiltError(f"run {run.path!r} has a flat readout, whose certificate keeps the node order "
                               "(docs/theory.md s.8.1); leave relabel out of the kinds.")
     spectrum = run_spectrum(run)
+    skip = dict(skipped_kinds(run, kinds, spectrum.eigenvectors is not None))
+    kinds = [k for k in kinds if k not in skip]
+    eig = None if spectrum.eigenvectors is None else (spectrum.eigenvalues, spectrum.eigenvectors)
+    per_attack = ATTACK_RESTARTS * attack_iters
+    total = len(eps_list) * (len(kinds) * samples + (attack_signals + 1) * per_attack * bool(attack_signals))
+    with bar(total, "stress", unit="step") as pb:
+        return _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_iters,
+                            say_through(pb, progress), spectrum, eig, pb)
+
+
+def skipped_kinds(run: Run, kinds, have_vectors: bool | None = None) -> list[tuple[str, str]]:
+    """``[(kind, reason)]`` for the ``kinds`` that cannot apply to the run
+    (:func:`inapplicable`); ``have_vectors``: whether the eigenvectors of
+    ``S`` are computed (default: the graph is within the dense limit of the
+    spectral interval)."""
+    if have_vectors is None:
+        from ._interval import EXACT_LIMIT
+
+        have_vectors = run.op.nodes <= EXACT_LIMIT
+    out = []
+    for k in kinds:
+        why = inapplicable(run, k, have_vectors)
+        if why is not None:
+            out.append((k, why))
+    return out
+
+
+def _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_iters, progress, spectrum, eig, pb):
     constants = run_constants(run, spectrum)
     iv, lam, vecs, rho = spectrum.interval, spectrum.eigenvalues, spectrum.eigenvectors, spectrum.rho
     x = np.asarray(run.test_x, dtype=np.float64)
@@ -138,7 +197,8 @@ def stress_run(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_
         for kind in kinds:
             changes, metrics, viol, covered, dists = [], [], 0, 0, []
             for k in range(samples):
-                op_hat, dist, perm = _draw(run, kind, eps, seed + 1000 * k + 17, k)
+                op_hat, dist, perm = _draw(run, kind, eps, seed + 1000 * k + 17, k, eig)
+                pb.update(1)
                 xin = x if perm is None else x[:, perm, :]
                 out = forward_np(run.params, op_hat.matrix, xin, run.spec)
                 if perm is not None and run.spec.readout in ("node", "none"):
@@ -174,12 +234,13 @@ def stress_run(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_
             c_att = certify_inputs(run.params, run.spec, s, iv, x[order], eps, lam, vecs, constants,
                                    refine=len(order))
             for i, c_i in zip(order, c_att):
-                r = attack(run.params, run.spec, run.op, x[i], eps, mode=mode, iters=attack_iters, seed=seed)
+                r = attack(run.params, run.spec, run.op, x[i], eps, mode=mode, iters=attack_iters, seed=seed,
+                           restarts=ATTACK_RESTARTS, progress=pb.update)
                 # The largest change / certificate, multiplied out: a certificate can be 0.
                 if best is None or r.change * best_c > best.change * float(c_i):
                     best, best_c = r, float(c_i)
             free = attack(run.params, run.spec, run.op, x[order[0]], eps, mode=mode, free_input=True, rho=rho,
-                          iters=attack_iters, seed=seed)
+                          iters=attack_iters, seed=seed, restarts=ATTACK_RESTARTS, progress=pb.update)
             viol = int(best.change > best_c) + int(free.change > c_op)
             worst = max(best.change, free.change)
             row = StressRow(eps=eps, kind="attack", certified=c_op, published=bound.published,

@@ -32,6 +32,15 @@ def progress_printer(every: int):
     return show
 
 
+def interval_ends_text(iv) -> str:
+    """How each end of a spectral interval was proved and how long it took."""
+    parts = []
+    for side, e in iv.ends().items():
+        note = f" ({e['note']})" if e.get("note") else ""
+        parts.append(f"{side} end by {e['method']} in {e['seconds']:.3g} s{note}")
+    return "spectral interval: " + "; ".join(parts)
+
+
 def table(rows, header) -> str:
     """Right-aligned columns under a header and a rule."""
     cells = [header] + [[str(c) for c in r] for r in rows]
@@ -62,6 +71,7 @@ def filter_certificate_text(cert) -> str:
     lines = [
         f"graph: {cert.nodes} nodes; spectral interval [{cert.interval.lower:.6g}, {cert.interval.upper:.6g}] "
         f"({cert.interval.method})",
+        interval_ends_text(cert.interval),
         f"filter basis: {b.kind}" + (f" on [{b.interval[0]:g}, {b.interval[1]:g}]" if b.interval else ""),
         "constants (max over filters): "
         f"integral Lipschitz {fmt(_big(c.integral_lipschitz))}, Lipschitz {fmt(_big(c.lipschitz))}, "
@@ -83,7 +93,8 @@ def run_certificate_text(run, rc, eps_list) -> str:
     iv = rc.spectrum.interval
     cert = rc.model
     lines = [f"run {rc.run}: {rc.nodes} nodes, spectral interval [{iv.lower:.6g}, {iv.upper:.6g}] ({iv.method}), "
-             f"model {list(run.spec.features)} with K = {run.spec.taps} ({run.spec.basis.kind})"]
+             f"model {list(run.spec.features)} with K = {run.spec.taps} ({run.spec.basis.kind})",
+             interval_ends_text(iv)]
     at = [cert.at(e) for e in eps_list]
     rows = [[str(i + 1), fmt(lc.integral_lipschitz), fmt(lc.kernel), fmt(lc.sup)]
             + [fmt(b.layer_changes[i]) for b in at] for i, lc in enumerate(cert.layers)]
@@ -177,9 +188,18 @@ def distance_text(d, name_a: str, name_b: str, nodes: int, aligned: bool) -> str
                      "below are upper bounds on the distance over all node orders (--json lists the permutation)")
     lines += [f"  relative distance ||E||_2 (S_hat = S + E S + S E): {fmt(d.relative)}"
               + (" (an upper bound)" if d.as_dict()["upper_bound"] else ""),
-              f"  residual ||S E + E S - (S_hat - S)||_2: {fmt(d.residual)} (round-off allowance {fmt(d.tolerance)}) -> "
+              f"  residual ||S E + E S - (S_hat - S)||_{d.residual_norm}: {fmt(d.residual)} "
+              f"({'round-off' if d.method == 'eigenbasis' else 'iterative'} allowance {fmt(d.tolerance)}) -> "
               + ("expressible as a relative perturbation" if d.expressible else
                  "NOT expressible as a relative perturbation; the relative distance covers only part of the change")]
+    if d.method == "diagonal":
+        lines.append("  found with a diagonal E (S_ij (1 + e_i + e_j)) by sparse least squares, no dense "
+                     "eigendecomposition; exact when the residual is within the allowance")
+    elif d.method == "minres":
+        sv = d.solve
+        lines.append(f"  found by MINRES on S E + E S ({sv.get('iterations')} iterations, "
+                     f"{'converged' if sv.get('converged') else 'stopped at its budget'}, {sv.get('seconds')} s); "
+                     f"||E||_2 is a Lanczos estimate, at most ||E||_F = {fmt(d.relative_upper)}")
     if d.singular_pairs:
         lines.append(f"  {d.singular_pairs} eigenvalue pairs with lam_i + lam_j = 0: E is not determined there (set to 0)")
     if d.amplified:

@@ -28,6 +28,7 @@ from ._model import ModelSpec, forward, init_params, spec_from
 from ._modelcert import certify_model, model_constants
 from ._penalty import model_penalty, penalty
 from ._predictions import training_predictions
+from ._progress import bar, say_through
 from ._runs import (
     check_out_dir,
     make_out_dir,
@@ -328,57 +329,63 @@ def _train_locked(trainer: Trainer, params, out: str, epochs, resume: bool, prog
     higher_better = trainer.data.task == "classify"
     patience = t["patience"]
     epoch = start_epoch - 1
-    for epoch in range(start_epoch, n_epochs + 1):
-        t0 = time.perf_counter()
-        losses, tls, pens = [], [], []
-        for b in trainer.batches(epoch):
-            params, opt_state, loss, tl, pen = step(params, opt_state, op, x[b], y[b])
-            losses.append(loss)
-            tls.append(tl)
-            pens.append(pen)
-        loss, tl, pen = (float(np.mean(jax.device_get(v))) for v in (losses, tls, pens))
-        why = _diverged(loss, params)
-        if why:
-            append_log(paths["log"], {"epoch": epoch, "stopped": why, "loss": loss if np.isfinite(loss) else None})
-            kept = (f"the last good checkpoint (epoch {epoch - 1}) is kept in {out!r}" if epoch > 1
-                    else f"no epoch completed, so {out!r} holds no checkpoint")
-            raise TrainingDiverged(f"training stopped at epoch {epoch}: {why}; {kept}. "
-                                   "Lower the learning rate or clip harder.")
-        _, tr_m = evaluate(params, op, x[tr], y[tr])
-        va_l, va_m = evaluate(params, op, x[va], y[va])
-        tr_m, va_m, va_l = float(tr_m), float(va_m), float(va_l)
-        cert = trainer.certificate(params)
-        cert_json = cert.as_dict()
-        val_cert = _val_certified(trainer, params, cert)
-        seconds = time.perf_counter() - t0
-        record = {
-            "epoch": epoch, "loss": loss, "task_loss": tl, "penalty": pen,
-            f"train_{mname}": tr_m, f"val_{mname}": va_m, "val_loss": va_l,
-            "certified": cert_json["certified"], "published": cert_json["published"],
-            "layers": [{"integral_lipschitz": lr.integral_lipschitz, "kernel": lr.kernel, "sup": lr.sup}
-                       for lr in cert.layers],
-            "seconds": seconds,
-        }
-        if val_cert is not None:
-            record["val_certified_acc"] = val_cert
-        improved = best_val is None or (va_m > best_val if higher_better else va_m < best_val)
-        if improved:
-            best_val, bad, best, best_epoch = va_m, 0, params, epoch
-        else:
-            bad += 1
-        append_log(paths["log"], record)
-        save_checkpoint(paths["ckpt"], {"params": params, "opt_state": opt_state, "best": best},
-                        {"format": FORMAT, "epoch": epoch, "epochs": n_epochs, "best_val": best_val, "bad": bad,
-                         "best_epoch": best_epoch,
-                         "seed": trainer.seed, "fingerprint": trainer.data.op.fingerprint()})
-        e0 = f"{trainer.eps[0]:g}"
-        c0 = cert.at(trainer.eps[0]).certified
-        progress(f"epoch {epoch:3d}/{n_epochs}  loss {loss:.4f} (task {tl:.4f}, penalty {pen:.4f})  "
-                 f"train {mname} {tr_m:.4f}  val {mname} {va_m:.4f}  certified@{e0} {c0:.4g}  "
-                 f"{seconds:.2f}s")
-        if patience and bad >= patience:
-            progress(f"early stop: validation {mname} did not improve for {patience} epochs")
-            break
+    # A bar over epochs with a time estimate (standard error, terminals only);
+    # the epoch lines print through it.
+    with bar(n_epochs - start_epoch + 1, "training", unit="epoch") as pb:
+        progress = say_through(pb, progress)
+        for epoch in range(start_epoch, n_epochs + 1):
+            t0 = time.perf_counter()
+            losses, tls, pens = [], [], []
+            for b in trainer.batches(epoch):
+                params, opt_state, loss, tl, pen = step(params, opt_state, op, x[b], y[b])
+                losses.append(loss)
+                tls.append(tl)
+                pens.append(pen)
+            loss, tl, pen = (float(np.mean(jax.device_get(v))) for v in (losses, tls, pens))
+            why = _diverged(loss, params)
+            if why:
+                append_log(paths["log"], {"epoch": epoch, "stopped": why, "loss": loss if np.isfinite(loss) else None})
+                kept = (f"the last good checkpoint (epoch {epoch - 1}) is kept in {out!r}" if epoch > 1
+                        else f"no epoch completed, so {out!r} holds no checkpoint")
+                raise TrainingDiverged(f"training stopped at epoch {epoch}: {why}; {kept}. "
+                                       "Lower the learning rate or clip harder.")
+            _, tr_m = evaluate(params, op, x[tr], y[tr])
+            va_l, va_m = evaluate(params, op, x[va], y[va])
+            tr_m, va_m, va_l = float(tr_m), float(va_m), float(va_l)
+            cert = trainer.certificate(params)
+            cert_json = cert.as_dict()
+            val_cert = _val_certified(trainer, params, cert)
+            seconds = time.perf_counter() - t0
+            record = {
+                "epoch": epoch, "loss": loss, "task_loss": tl, "penalty": pen,
+                f"train_{mname}": tr_m, f"val_{mname}": va_m, "val_loss": va_l,
+                "certified": cert_json["certified"], "published": cert_json["published"],
+                "layers": [{"integral_lipschitz": lr.integral_lipschitz, "kernel": lr.kernel, "sup": lr.sup}
+                           for lr in cert.layers],
+                "seconds": seconds,
+            }
+            if val_cert is not None:
+                record["val_certified_acc"] = val_cert
+            improved = best_val is None or (va_m > best_val if higher_better else va_m < best_val)
+            if improved:
+                best_val, bad, best, best_epoch = va_m, 0, params, epoch
+            else:
+                bad += 1
+            append_log(paths["log"], record)
+            save_checkpoint(paths["ckpt"], {"params": params, "opt_state": opt_state, "best": best},
+                            {"format": FORMAT, "epoch": epoch, "epochs": n_epochs, "best_val": best_val, "bad": bad,
+                             "best_epoch": best_epoch,
+                             "seed": trainer.seed, "fingerprint": trainer.data.op.fingerprint()})
+            e0 = f"{trainer.eps[0]:g}"
+            c0 = cert.at(trainer.eps[0]).certified
+            progress(f"epoch {epoch:3d}/{n_epochs}  loss {loss:.4f} (task {tl:.4f}, penalty {pen:.4f})  "
+                     f"train {mname} {tr_m:.4f}  val {mname} {va_m:.4f}  certified@{e0} {c0:.4g}  "
+                     f"{seconds:.2f}s")
+            pb.update(1)
+            pb.set_postfix_str(f"loss {loss:.4g}, val {mname} {va_m:.4g}")
+            if patience and bad >= patience:
+                progress(f"early stop: validation {mname} did not improve for {patience} epochs")
+                break
     return finish(trainer, best, evaluate, out, manifest, paths, epoch, best_epoch)
 
 

@@ -99,7 +99,9 @@ def _add_csv_options(p) -> None:
 
 def cmd_bound(args) -> int:
     from ._certify import certify_filter
+    from ._interval import spectral_interval
     from ._io import load_filter, load_graph
+    from ._progress import steps
 
     eps = _eps_list(args.eps)
     if not eps:
@@ -108,9 +110,10 @@ def cmd_bound(args) -> int:
         raise UsageError(f"--delta must lie in [0, 8]; got {args.delta}")
     op = load_graph(args.graph, args.shift, **_csv_options(args))
     taps, basis = load_filter(args.filter)
-    with _float64("certificate"):
+    with _float64("certificate"), steps("certificate") as (shown, _):
         cert = certify_filter(op, taps, basis, eps, delta=8.0 if args.delta is None else args.delta,
-                              deployed=_deployed(op.kind, args.same_kind))
+                              deployed=_deployed(op.kind, args.same_kind),
+                              interval=spectral_interval(op, progress=shown))
         d = cert.as_dict()
     check_finite(d, "certificate")
     warn = basis_range_warning(cert.interval.lower, cert.interval.upper, basis)
@@ -160,6 +163,7 @@ def _progress(args):
 
 def cmd_certify(args) -> int:
     from ._predictions import run_predictions, signal_bounds_at
+    from ._progress import steps
     from ._runcert import certify_run
     from ._runs import open_run
 
@@ -174,8 +178,8 @@ def cmd_certify(args) -> int:
         new = read_new_graph(run, args.against, args.shift, **_csv_options(args))
     elif args.align or args.shift:
         raise UsageError("--align and --shift go with --against GRAPH")
-    with _float64("certificate"):
-        rc = certify_run(run, eps, same_kind=args.same_kind)
+    with _float64("certificate"), steps("certificate") as (shown, _):
+        rc = certify_run(run, eps, same_kind=args.same_kind, progress=shown)
         d = rc.as_dict()
         pc = run_predictions(run, rc, eps, radius_upper=upper)
         d["predictions"] = pc.as_dict()
@@ -286,6 +290,7 @@ def cmd_distance(args) -> int:
     from ._distance import distance
     from ._graph import shift_operator
     from ._io import read_graph
+    from ._progress import steps
 
     if args.save_perm is not None:
         if not args.align:
@@ -295,8 +300,8 @@ def cmd_distance(args) -> int:
     (ma, ids_a), (mb, ids_b) = read_graph(args.graph_a, **opts), read_graph(args.graph_b, **opts)
     a = shift_operator(ma, args.shift, name=f"graph file {args.graph_a!r}")
     b = shift_operator(mb, args.shift, name=f"graph file {args.graph_b!r}")
-    with _float64("distance"):
-        d = distance(a, b, align_nodes=args.align)
+    with _float64("distance"), steps("distance") as (shown, _):
+        d = distance(a, b, align_nodes=args.align, progress=shown)
         out = d.as_dict()
     check_finite(out, "distance")
     out.update({"nodes": a.nodes, "graph_a": args.graph_a, "graph_b": args.graph_b})
@@ -311,7 +316,7 @@ def cmd_distance(args) -> int:
 
 def cmd_stress(args) -> int:
     from ._runs import open_run
-    from ._stress import KINDS, stress_run
+    from ._stress import KINDS, skipped_kinds, stress_run
 
     kinds = [k.strip() for k in args.kinds.split(",") if k.strip()]
     bad = [k for k in kinds if k not in KINDS]
@@ -330,11 +335,17 @@ def cmd_stress(args) -> int:
                          "(docs/theory.md s.8.1); leave relabel out of --kinds")
     eps = _eps_list(args.eps, positive=True) or [float(e) for e in run.config["certify"]["eps"]]
     show = None if args.json else (lambda m: print(m, flush=True))
+    skipped = skipped_kinds(run, kinds)
+    if len(skipped) == len(kinds) and not args.attack:
+        raise UsageError("no kind in --kinds applies to this run: " + "; ".join(f"{k}: {r}" for k, r in skipped))
+    for k, why in skipped if show else ():
+        show(f"skipped {k}: {why}")
     rows = stress_run(run, eps, kinds=kinds, samples=args.samples, attack_signals=2 if args.attack else 0,
                       progress=show)
     violations = sum(r.violations for r in rows)
     result = {"run": args.run, "nodes": run.op.nodes, "rho": run.manifest.get("rho"),
-              "rows": [r.as_dict() for r in rows], "violations": violations}
+              "rows": [r.as_dict() for r in rows], "violations": violations,
+              "skipped": [{"kind": k, "reason": r} for k, r in skipped]}
     if args.save:
         from ._runs import now, set_aside
         from ._store import write_json
@@ -468,6 +479,7 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--json", action="store_true", help="print one JSON object (with the permutation when aligned)")
     g.add_argument("--save-perm", metavar="FILE", help="with --align: write the permutation to this new CSV file "
                    "(graph_a_index,graph_b_index[,graph_a_id,graph_b_id] per node of graph_a)")
+    g.add_argument("--quiet", action="store_true", help="show no progress bar")
     _add_csv_options(g)
     g.set_defaults(func=cmd_distance)
     st = sub.add_parser("stress", help="hold a run's certificates against perturbed graphs and attacks")
@@ -479,6 +491,7 @@ def build_parser() -> argparse.ArgumentParser:
                     help="comma-separated kinds of random perturbation (default relative,diagonal,scaling,edges)")
     st.add_argument("--json", action="store_true", help="print one JSON object")
     st.add_argument("--save", action="store_true", help="also write the results to stress.json in the run folder")
+    st.add_argument("--quiet", action="store_true", help="show no progress bar")
     st.set_defaults(func=cmd_stress)
     r = sub.add_parser("report", help="draw runs' figures and write one self-contained HTML page")
     r.add_argument("runs", nargs="+", help="run directories written by train")
@@ -512,6 +525,9 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    from ._progress import set_quiet
+
+    set_quiet(getattr(args, "quiet", False))  # --quiet: no progress bars either (set on every call)
     try:
         status = int(args.func(args) or 0)
         sys.stdout.flush()  # a closed pipe shows here, not at exit

@@ -254,10 +254,49 @@ def test_different_sizes_is_an_error():
         st.distance(sf.shift_operator(KARATE), sf.shift_operator(KARATE[:10, :10]))
 
 
-def test_too_large_is_an_error(monkeypatch):
-    monkeypatch.setattr(dist, "DISTANCE_LIMIT", 20)
-    with pytest.raises(sf.GraphError, match="at most 20"):
-        st.distance(sf.shift_operator(KARATE), sf.shift_operator(KARATE))
+def test_above_the_dense_limit_the_iterative_paths_agree_with_the_eigenbasis(monkeypatch):
+    """Above DISTANCE_LIMIT no dense eigendecomposition is made: a diagonal
+    change is fitted exactly (E = diag(e), ||E||_2 = max |e_i|), a general
+    one by MINRES; both agree with the eigenbasis solve and with
+    scipy.linalg.solve_sylvester (Bartels-Stewart)."""
+    s = PD["random-L+I"]
+    n = len(s)
+    rng = np.random.default_rng(8)
+    e_diag = rng.uniform(-0.02, 0.02, n)
+    s_diag = s * (1 + e_diag[:, None] + e_diag[None, :])  # S + E S + S E with E = diag(e)
+    e_full = H.random_error(rng, n, 0.02)
+    s_full = H.relative(s, e_full)
+    dense = {k: st.distance(sf.shift_operator(s), sf.shift_operator(m)) for k, m in (("d", s_diag), ("f", s_full))}
+    monkeypatch.setattr(dist, "DISTANCE_LIMIT", 5)
+    monkeypatch.setattr(np.linalg, "eigh", None)  # no dense eigendecomposition on these paths
+    d = st.distance(sf.shift_operator(s), sf.shift_operator(s_diag))
+    assert d.method == "diagonal" and d.expressible and d.residual_norm == "F"
+    assert d.relative == pytest.approx(np.abs(e_diag).max(), rel=1e-9)
+    assert d.relative == pytest.approx(dense["d"].relative, rel=1e-9)
+    f = st.distance(sf.shift_operator(s), sf.shift_operator(s_full))
+    assert f.method == "minres" and f.expressible and f.solve["converged"]
+    ref = sla.solve_sylvester(s, s, s_full - s)  # reference: Bartels-Stewart
+    np.testing.assert_allclose(f.e, ref, atol=1e-9 * np.abs(ref).max())
+    assert f.relative == pytest.approx(dense["f"].relative, rel=1e-6)
+    assert f.relative <= f.relative_upper * (1 + 1e-12)
+
+
+def test_above_the_iterative_limit_a_general_change_is_refused(monkeypatch):
+    monkeypatch.setattr(dist, "DISTANCE_LIMIT", 5)
+    monkeypatch.setattr(dist, "ITERATIVE_LIMIT", 10)
+    s = PD["random-L+I"]
+    e = H.random_error(np.random.default_rng(3), len(s), 0.02)
+    with pytest.raises(sf.GraphError, match="at most 10 nodes"):
+        st.distance(sf.shift_operator(s), sf.shift_operator(H.relative(s, e)))
+    # An entry-wise rescaling is still measured there.
+    ok = st.distance(sf.shift_operator(s), sf.shift_operator(1.04 * s))
+    assert ok.method == "diagonal" and ok.relative == pytest.approx(0.02, rel=1e-9)  # (1 + t) S: E = t/2 I
+
+
+def test_alignment_above_its_limit_is_refused(monkeypatch):
+    monkeypatch.setattr(dist, "ALIGN_LIMIT", 20)
+    with pytest.raises(sf.GraphError, match="at most 20 nodes"):
+        st.distance(sf.shift_operator(KARATE), sf.shift_operator(KARATE), align_nodes=True)
 
 
 # ---------------------------------------------------------------------------
@@ -387,3 +426,16 @@ def test_cli_distance_save_perm_with_node_ids(tmp_path, capsys):
     assert main(["distance", a, b, "--align", "--save-perm", str(path)]) == 0
     rows = list(csv.DictReader(open(path, newline="")))
     assert len(rows) == 4 and all(r["graph_a_id"] == r["graph_b_id"] for r in rows)
+
+
+def test_misalignment_left_out_above_its_limit_with_the_same_distance(monkeypatch):
+    s = PD["random-L+I"]
+    e = H.random_error(np.random.default_rng(6), len(s), 0.02)
+    a, b = sf.shift_operator(s), sf.shift_operator(H.relative(s, e))
+    full = st.distance(a, b)
+    monkeypatch.setattr(dist, "MISALIGNMENT_LIMIT", 5)
+    short = st.distance(a, b)
+    assert short.delta is None and full.delta is not None
+    assert short.relative == pytest.approx(full.relative, rel=1e-12)
+    assert short.relative == pytest.approx(0.02, rel=1e-8)  # ||E||_2 = 0.02 by construction (helpers.random_error)
+    assert H.strict_json(__import__("json").dumps(short.as_dict()))["delta"] is None

@@ -83,7 +83,10 @@ def test_stress_json_rows_and_no_violations(run_dir, run, capsys):
     d = H.strict_json(out)
     assert d["violations"] == 0 and d["nodes"] == run.op.nodes
     rows = d["rows"]
-    assert [r["kind"] for r in rows] == list(KINDS) + ["attack"]
+    # Edge jitter never applies to a normalised Laplacian (its null vector;
+    # docs/theory.md s.2): skipped before any work, with the reason.
+    assert [r["kind"] for r in rows] == [k for k in KINDS if k != "edges"] + ["attack"]
+    assert [s["kind"] for s in d["skipped"]] == ["edges"] and "normalised Laplacian" in d["skipped"][0]["reason"]
     for r in rows:
         assert r["eps"] == 0.01 and r["violations"] == 0
         assert r["certified"] > 0 and r["published"] > 0
@@ -223,3 +226,30 @@ def test_graph_independent_model_reports_no_ratio(run, run_dir, monkeypatch, cap
     for r in rows:
         assert r["max_change"] == 0.0 and r["ratio"] is None and r["violations"] == 0
     assert rows[1]["attack_ratio"] is None and rows[1]["attack_free_ratio"] is None
+
+
+def test_inapplicable_kinds_are_skipped_before_any_work(run, monkeypatch):
+    """Edge jitter on a normalised Laplacian is never a relative change (its
+    null vector D^1/2 1; docs/theory.md s.2): no sample is drawn for it, and
+    the reason is given. Without the eigenvectors of S (large graphs) the
+    edges kind is skipped too."""
+    assert run.op.kind == "normalized-laplacian"
+    drawn = []
+    real = _stress._draw
+    monkeypatch.setattr(_stress, "_draw", lambda r, kind, *a, **k: drawn.append(kind) or real(r, kind, *a, **k))
+    rows = stress_run(run, [0.01], kinds=("edges", "scaling"), samples=1)
+    assert [r.kind for r in rows] == ["scaling"] and drawn == ["scaling"]
+    (skip,) = _stress.skipped_kinds(run, ("edges", "scaling"))
+    assert skip[0] == "edges" and "null vector" in skip[1]
+    s = run.op.dense()
+    adj = ((s != 0) & ~np.eye(len(s), dtype=bool)).astype(float)
+    lap = dataclasses.replace(run, op=sf.shift_operator(adj, "laplacian"))
+    assert _stress.skipped_kinds(lap, ("edges",), have_vectors=True) == []
+    (big,) = _stress.skipped_kinds(lap, ("edges",), have_vectors=False)
+    assert "eigenvectors" in big[1]
+
+
+def test_stress_refuses_when_no_kind_applies(run_dir, capsys):
+    assert main(["stress", run_dir, "--kinds", "edges", "--json"]) == 2
+    out, err = capsys.readouterr()
+    assert out == "" and "no kind in --kinds applies" in _one_line(err)
