@@ -207,7 +207,8 @@ def main(argv=None) -> int:
         row = bench_size(n, args.rounds, args.signals, args.seed, args.product_rounds)
         rows.append(row)
         print(f"N = {n}: {row['edges']} edges, built in {row['build_s']:.1f} s, compiled in {row['compile_s']:.1f} s; "
-              f"load {row['load'][0]:.2f}", flush=True)
+              f"load {row['load'][0]:.2f}; epoch {row['epoch_s']:.3f} s, peak RSS {row['peak_rss_mb']:.0f} MB",
+              flush=True)
     head = ["N", "epoch s", "epoch/scipy", "scipy fwd ms", "JAX fwd/scipy", "peak RSS MB", "interval s",
             "cert filter s", "cert model s", "product ms", "GB/s (copy GB/s)"]
     print("\n| " + " | ".join(head) + " |")

@@ -191,6 +191,12 @@ def run_filter_backward(matvec: Callable, taps, x, basis: Basis):
     and no ``p_k(S) x`` to keep for the gradient, which in ``S`` linear
     needs only ``x``."""
     k = taps.shape[0]
+    if x.ndim > 2:
+        # Batches folded into rows for the tap products: a dense product with
+        # one contracted axis (its gradient a plain matrix product too).
+        y = run_filter_backward(lambda z: matvec(z.reshape(x.shape[:-1] + z.shape[-1:])).reshape(z.shape),
+                                taps, x.reshape(-1, x.shape[-1]), basis)
+        return y.reshape(x.shape[:-1] + y.shape[-1:])
     if basis.kind == "chebyshev":
         al, be = basis.mapping()
 
