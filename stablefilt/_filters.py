@@ -154,6 +154,12 @@ def run_filter(matvec: Callable, taps, x, basis: Basis, xp=np):
     bank = taps.ndim == 3
     if bank and k > 1 and taps.shape[2] <= taps.shape[1]:
         return run_filter_backward(matvec, taps, x, basis)
+    if bank and x.ndim > 2:
+        # Batch axes folded into rows for the tap products (see
+        # run_filter_backward): the sparse products see the original shape.
+        y = run_filter(lambda z: matvec(z.reshape(x.shape[:-1] + z.shape[-1:])).reshape(z.shape), taps,
+                       x.reshape(-1, x.shape[-1]), basis, xp=xp)
+        return y.reshape(x.shape[:-1] + y.shape[-1:])
 
     def term(z, c):
         return z @ c if bank else z * c
