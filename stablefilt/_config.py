@@ -95,7 +95,13 @@ _columns.expected = "a list of two or three column names: source, target and opt
 SCHEMA = {
     "name": (_string, None),
     "data": {
-        "source": (_choice(("orchard", "files", "karate", "digits", "minnesota")), "orchard"),
+        "source": (_choice(("orchard", "files", "karate", "digits", "minnesota", "geometric", "blocks")), "orchard"),
+        "size": (_pos_int, 1000),
+        "degree": (_finite_pos, 10.0),
+        "communities": (_pos_int, 4),
+        "inside": (_fraction, 0.9),
+        "sources": (_pos_int, 3),
+        "diffusion": (_nonneg_int, 10),
         "sensors": (_pos_int, 120),
         "block_rows": (_pos_int, 2),
         "block_cols": (_pos_int, 3),

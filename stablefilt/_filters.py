@@ -152,6 +152,14 @@ def run_filter(matvec: Callable, taps, x, basis: Basis, xp=np):
     taps = xp.asarray(taps)
     k = taps.shape[0]
     bank = taps.ndim == 3
+    if bank and k > 1 and taps.shape[2] <= taps.shape[1]:
+        return run_filter_backward(matvec, taps, x, basis)
+    if bank and x.ndim > 2:
+        # Batch axes folded into rows for the tap products (see
+        # run_filter_backward): the sparse products see the original shape.
+        y = run_filter(lambda z: matvec(z.reshape(x.shape[:-1] + z.shape[-1:])).reshape(z.shape), taps,
+                       x.reshape(-1, x.shape[-1]), basis, xp=xp)
+        return y.reshape(x.shape[:-1] + y.shape[-1:])
 
     def term(z, c):
         return z @ c if bank else z * c
@@ -176,3 +184,41 @@ def run_filter(matvec: Callable, taps, x, basis: Basis, xp=np):
             prev, cur = cur, step(cur)
         y = y + term(cur, taps[j])
     return y
+
+
+def run_filter_backward(matvec: Callable, taps, x, basis: Basis):
+    """A bank ``sum_k p_k(S) x c_k`` summed from the last tap down:
+    Horner's rule for monomials, ``b = x c_k + S b``, and Clenshaw's
+    recurrence for Chebyshev polynomials, ``b_k = x c_k + 2 t(S) b_{k+1} -
+    b_{k+2}``, ``y = x c_0 + t(S) b_1 - b_2`` (Clenshaw, "A note on the
+    summation of Chebyshev series", 1955; handbook fact). ``K - 1`` products
+    of width ``F_out`` (the forward recurrence's are ``F_in`` wide, so this
+    is used when ``F_out <= F_in``); only two ``N x F_out`` running terms
+    and no ``p_k(S) x`` to keep for the gradient, which in ``S`` linear
+    needs only ``x``."""
+    k = taps.shape[0]
+    if x.ndim > 2:
+        # Batches folded into rows for the tap products: a dense product with
+        # one contracted axis (its gradient a plain matrix product too).
+        y = run_filter_backward(lambda z: matvec(z.reshape(x.shape[:-1] + z.shape[-1:])).reshape(z.shape),
+                                taps, x.reshape(-1, x.shape[-1]), basis)
+        return y.reshape(x.shape[:-1] + y.shape[-1:])
+    if basis.kind == "chebyshev":
+        al, be = basis.mapping()
+
+        def step(z):
+            return al * matvec(z) + be * z
+
+        b1 = x @ taps[k - 1]
+        b2 = None
+        for j in range(k - 2, 0, -1):
+            b = x @ taps[j] + 2 * step(b1)
+            if b2 is not None:
+                b = b - b2
+            b2, b1 = b1, b
+        y = x @ taps[0] + step(b1)
+        return y if b2 is None else y - b2
+    b = x @ taps[k - 1]
+    for j in range(k - 2, -1, -1):
+        b = x @ taps[j] + matvec(b)
+    return b

@@ -13,6 +13,7 @@ expressible at all.
 from __future__ import annotations
 
 import dataclasses
+import time
 
 import numpy as np
 
@@ -60,7 +61,8 @@ class StressRow:
     and how many measured changes exceeded their certificate (``violations``,
     0 for a sound certificate). Attack rows add the ``attack_*`` fields: the
     strongest fixed-input change and its input-specific certificate, and the
-    strongest change with a free input of norm ``rho``."""
+    strongest change with a free input of norm ``rho``, the attack's kind
+    (``dense``, ``diagonal`` or ``lowrank``) and its wall time in seconds."""
 
     eps: float
     kind: str
@@ -82,6 +84,7 @@ class StressRow:
     attack_free_change: float | None = None
     attack_free_ratio: float | None = None
     attack_mode: str | None = None
+    attack_seconds: float | None = None
 
     def as_dict(self) -> dict:
         return dataclasses.asdict(self)
@@ -131,14 +134,16 @@ def _draw(run: Run, kind: str, eps: float, seed: int, sample: int = 0, eig=None)
 
 
 def stress_run(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_signals: int = 0, seed: int = 0,
-               attack_iters: int = 30, progress=None) -> list[StressRow]:
+               attack_iters: int = 30, attack_kind: str = "auto", progress=None) -> list[StressRow]:
     """Stress a run; see the module docstring. ``attack_signals > 0`` also
-    attacks that many test signals (and one free input) per eps. The model's
-    constants are computed once for every eps and sample. Kinds that cannot
-    apply to the run's operator (:func:`inapplicable`) are left out before
-    any work; :func:`skipped_kinds` says which and why. A progress bar
-    (standard error, terminals only) counts samples and attack iterations;
-    ``progress`` receives one line per row."""
+    attacks that many test signals (and one free input) per eps, with
+    ``attack_kind`` one of ``stablefilt._attack.MODES`` (``auto``: dense up
+    to ``DENSE_ATTACK_LIMIT`` nodes, low-rank beyond). The model's constants
+    are computed once for every eps and sample. Kinds that cannot apply to
+    the run's operator (:func:`inapplicable`) are left out before any work;
+    :func:`skipped_kinds` says which and why. A progress bar (standard error,
+    terminals only) counts samples and attack iterations; ``progress``
+    receives one line per row."""
     if run.spec.readout == "flat" and "relabel" in kinds:
         raise StablefiltError(f"run {run.path!r} has a flat readout, whose certificate keeps the node order "
                               "(docs/theory.md s.8.1); leave relabel out of the kinds.")
@@ -150,7 +155,7 @@ def stress_run(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_
     total = len(eps_list) * (len(kinds) * samples + (attack_signals + 1) * per_attack * bool(attack_signals))
     with bar(total, "stress", unit="step") as pb:
         return _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_iters,
-                            say_through(pb, progress), spectrum, eig, pb)
+                            say_through(pb, progress), spectrum, eig, pb, attack_kind)
 
 
 def skipped_kinds(run: Run, kinds, have_vectors: bool | None = None) -> list[tuple[str, str]]:
@@ -170,7 +175,8 @@ def skipped_kinds(run: Run, kinds, have_vectors: bool | None = None) -> list[tup
     return out
 
 
-def _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_iters, progress, spectrum, eig, pb):
+def _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_iters, progress, spectrum, eig, pb,
+                 attack_kind="auto"):
     constants = run_constants(run, spectrum)
     iv, lam, vecs, rho = spectrum.interval, spectrum.eigenvalues, spectrum.eigenvectors, spectrum.rho
     x = np.asarray(run.test_x, dtype=np.float64)
@@ -227,7 +233,8 @@ def _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_ite
                          f"violations {viol}")
         if attack_signals:
             n = run.op.nodes
-            mode = "dense" if n <= DENSE_ATTACK_LIMIT else "diagonal"
+            mode = attack_kind if attack_kind != "auto" else ("dense" if n <= DENSE_ATTACK_LIMIT else "lowrank")
+            t_att = time.perf_counter()
             best, best_c = None, None
             order = np.argsort(-c_in)[:attack_signals]
             # The attacked signals' bounds, refined for their own inputs (theory s.9.5).
@@ -241,6 +248,7 @@ def _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_ite
                     best, best_c = r, float(c_i)
             free = attack(run.params, run.spec, run.op, x[order[0]], eps, mode=mode, free_input=True, rho=rho,
                           iters=attack_iters, seed=seed, restarts=ATTACK_RESTARTS, progress=pb.update)
+            t_att = time.perf_counter() - t_att
             viol = int(best.change > best_c) + int(free.change > c_op)
             worst = max(best.change, free.change)
             row = StressRow(eps=eps, kind="attack", certified=c_op, published=bound.published,
@@ -249,10 +257,11 @@ def _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_ite
                             metric_perturbed=None, metric_clean=clean, violations=viol, distance_max=eps,
                             attack_change=best.change, attack_certified=best_c,
                             attack_ratio=_ratio(best_c, best.change), attack_free_change=free.change,
-                            attack_free_ratio=_ratio(c_op, free.change), attack_mode=mode)
+                            attack_free_ratio=_ratio(c_op, free.change), attack_mode=mode,
+                            attack_seconds=t_att)
             rows.append(row)
             if progress:
                 progress(f"eps {eps:g} attack ({mode}): {best.change:.4g} <= true worst case <= {best_c:.4g} "
                          f"(input-specific, ratio {_g(row.attack_ratio)}); free input {free.change:.4g} <= "
-                         f"{c_op:.4g} (ratio {_g(row.attack_free_ratio)})")
+                         f"{c_op:.4g} (ratio {_g(row.attack_free_ratio)}); {t_att:.1f} s")
     return rows

@@ -315,6 +315,7 @@ def cmd_distance(args) -> int:
 
 
 def cmd_stress(args) -> int:
+    from ._attack import DENSE_ATTACK_LIMIT
     from ._runs import open_run
     from ._stress import KINDS, skipped_kinds, stress_run
 
@@ -335,13 +336,16 @@ def cmd_stress(args) -> int:
                          "(docs/theory.md s.8.1); leave relabel out of --kinds")
     eps = _eps_list(args.eps, positive=True) or [float(e) for e in run.config["certify"]["eps"]]
     show = None if args.json else (lambda m: print(m, flush=True))
+    if args.attack_kind == "dense" and run.op.nodes > DENSE_ATTACK_LIMIT:
+        raise UsageError(f"--attack-kind dense needs at most {DENSE_ATTACK_LIMIT} nodes; this run's graph has "
+                         f"{run.op.nodes} (use lowrank)")
     skipped = skipped_kinds(run, kinds)
     if len(skipped) == len(kinds) and not args.attack:
         raise UsageError("no kind in --kinds applies to this run: " + "; ".join(f"{k}: {r}" for k, r in skipped))
     for k, why in skipped if show else ():
         show(f"skipped {k}: {why}")
     rows = stress_run(run, eps, kinds=kinds, samples=args.samples, attack_signals=2 if args.attack else 0,
-                      progress=show)
+                      attack_kind=args.attack_kind, progress=show)
     violations = sum(r.violations for r in rows)
     result = {"run": args.run, "nodes": run.op.nodes, "rho": run.manifest.get("rho"),
               "rows": [r.as_dict() for r in rows], "violations": violations,
@@ -487,6 +491,9 @@ def build_parser() -> argparse.ArgumentParser:
     st.add_argument("--eps", action="append", help="relative perturbation size; repeat for several (default: the config's)")
     st.add_argument("--samples", type=int, default=5, help="random perturbations per eps and kind (default 5)")
     st.add_argument("--attack", action="store_true", help="also search for the worst perturbation")
+    st.add_argument("--attack-kind", choices=("auto", "dense", "diagonal", "lowrank"), default="auto",
+                    help="perturbations the attack searches: dense E, diagonal E, or diagonal plus rank 8 "
+                    "(default auto: dense up to 2000 nodes, lowrank beyond)")
     st.add_argument("--kinds", default="relative,diagonal,scaling,edges",
                     help="comma-separated kinds of random perturbation (default relative,diagonal,scaling,edges)")
     st.add_argument("--json", action="store_true", help="print one JSON object")

@@ -196,11 +196,18 @@ def test_attack_beats_random_perturbations(small_case):
     assert r.change >= rnd
 
 
-def test_auto_mode_picks_diagonal_above_the_limit(small_case, monkeypatch):
+def test_auto_mode_picks_lowrank_above_the_limit(small_case, monkeypatch):
+    """Above the dense limit the low-rank attack runs (it returns the
+    diagonal attack's winner when nothing beat it), never a dense E."""
     op, spec, params, x = small_case
     monkeypatch.setattr(atk, "DENSE_ATTACK_LIMIT", 10)
     r = st.attack(params, spec, op, x, 0.01, restarts=2, iters=3, seed=0)
-    assert r.mode == "diagonal" and r.e.shape == (op.nodes,)
+    d = st.attack(params, spec, op, x, 0.01, mode="diagonal", restarts=2, iters=3, seed=0)
+    assert r.mode in ("lowrank", "diagonal") and r.change >= d.change
+    if r.mode == "diagonal":
+        assert r.e.shape == (op.nodes,)
+    else:
+        assert r.e.u.shape == (op.nodes, atk.LOWRANK_RANK) and r.e.bound <= 0.01
 
 
 # ---------------------------------------------------------------------------

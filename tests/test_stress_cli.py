@@ -106,6 +106,19 @@ def test_stress_json_rows_and_no_violations(run_dir, run, capsys):
     assert att["attack_free_ratio"] == pytest.approx(att["certified"] / att["attack_free_change"])
 
 
+def test_stress_lowrank_attack_kind(run_dir, capsys):
+    """``--attack-kind lowrank`` on a small run: the attack row states its
+    kind and wall time, and stays below its certificates."""
+    rc = main(["stress", run_dir, "--eps", "0.01", "--samples", "1", "--kinds", "scaling", "--attack",
+               "--attack-kind", "lowrank", "--json"])
+    out, err = capsys.readouterr()
+    assert rc == 0, err
+    att = H.strict_json(out)["rows"][-1]
+    assert att["kind"] == "attack" and att["attack_mode"] == "lowrank" and att["violations"] == 0
+    assert att["attack_seconds"] > 0
+    assert 0 < att["attack_change"] <= att["attack_certified"]
+
+
 def test_stress_readable_table(run_dir, capsys):
     rc = main(["stress", run_dir, "--eps", "0.01", "--samples", "1", "--kinds", "scaling", "--attack"])
     out, _ = capsys.readouterr()
