@@ -281,25 +281,30 @@ class BankRemainder:
       tails: ``t_j``, ``(K,)``.
       coefficients: ``g_j`` in float64, ``(K, F_in, F_out)``.
       errors: entrywise bounds on their float64 error, same shape.
+      powers: ``(r + d)^j``, the size of the terms summed, for the absolute
+        round-off allowance (as in :func:`remainder`).
     """
 
     tails: np.ndarray
     coefficients: np.ndarray
     errors: np.ndarray
+    powers: np.ndarray
 
     def operator(self) -> float:
         """``sum_j t_j (||g_j||_2 + ||err_j||_F)``: for every ``||X||_F <= 1``."""
-        norms = [np.linalg.norm(g, 2) + np.linalg.norm(e) for g, e in zip(self.coefficients, self.errors)]
-        return float(with_allowance(float(np.dot(self.tails, norms)), 0.0))
+        norms = np.array([np.linalg.norm(g, 2) + np.linalg.norm(e) for g, e in zip(self.coefficients, self.errors)])
+        return float(with_allowance(float(np.dot(self.tails, norms)), float(np.dot(self.powers, norms))))
 
     def inputs(self, x) -> np.ndarray:
         """Per signal of ``x`` ``(B, N, F_in)``: ``sum_j t_j (||X g_j||_F + ||X||_F ||err_j||_F)``."""
         x = np.asarray(x, dtype=np.float64)
         xn = np.sqrt(np.sum(x**2, axis=(1, 2)))
-        out = np.zeros(x.shape[0])
-        for t, g, e in zip(self.tails, self.coefficients, self.errors):
-            out += t * (np.sqrt(np.sum(np.einsum("bnf,fg->bng", x, g) ** 2, axis=(1, 2))) + xn * np.linalg.norm(e))
-        return with_allowance(out, 0.0)
+        out, scale = np.zeros(x.shape[0]), np.zeros(x.shape[0])
+        for t, p, g, e in zip(self.tails, self.powers, self.coefficients, self.errors):
+            term = np.sqrt(np.sum(np.einsum("bnf,fg->bng", x, g) ** 2, axis=(1, 2))) + xn * np.linalg.norm(e)
+            out += t * term
+            scale += p * term
+        return with_allowance(out, scale)
 
 
 def bank_remainder(taps, basis: Basis, interval, eps: float) -> BankRemainder:
@@ -319,7 +324,7 @@ def bank_remainder(taps, basis: Basis, interval, eps: float) -> BankRemainder:
     cols = t.reshape(k, -1)
     g = (cmap @ cols).reshape(t.shape)
     err = product_error(cmap, cols).reshape(t.shape)
-    return BankRemainder(_tails(half, d, k), g, err)
+    return BankRemainder(_tails(half, d, k), g, err, (half + d) ** np.arange(k))
 
 
 def combine(per_filter) -> float:

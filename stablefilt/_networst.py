@@ -20,7 +20,7 @@ from ._exact import UNIT
 from ._filters import Basis, basis_values, frequency_response
 from ._inputworst import _sqrt_psd, value_and_gradient
 from ._joint import block_kernels
-from ._series import REL_ALLOW
+from ._series import ABS_ALLOW, REL_ALLOW
 
 #: Frank-Wolfe iterations per target.
 ITERS = 12
@@ -79,6 +79,7 @@ class _Setup:
             self.responses.append(frequency_response(taps, self.lam, spec.basis))  # (N, F_in, F_out)
             pre, z = forward_layer(i, z)
             self.pre.append(pre[0])
+            self.outputs = z[0]
             active = (i < spec.depth - 1) or spec.final_nonlinearity
             if not active or spec.nonlinearity == "none":
                 self.slopes.append(None)
@@ -258,7 +259,12 @@ def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain
         masked = float(np.linalg.norm(rd[live_last], 2)) * (1 + REL_ALLOW) if live_last.size else 0.0
         residual = min(residual, readout_norm * nu_last + masked * switch_last)
     linear = eps * lin
-    return NetworkWorst(float((linear + residual) * (1 + REL_ALLOW)), float(linear), float(residual))
+    # An absolute allowance on the scale of the outputs: a float64 evaluation
+    # of the model errs by about that much even where the exact change is 0
+    # (as for the bank bounds, docs/theory.md 9.3; common practice).
+    scale = readout_norm * (float(np.linalg.norm(setup.outputs)) + float(np.prod(gains)) * float(np.linalg.norm(x)))
+    return NetworkWorst(float((linear + residual) * (1 + REL_ALLOW) + ABS_ALLOW * scale), float(linear),
+                        float(residual))
 
 
 def _switching(setup: _Setup, i: int, eps: float, reach: float, gains, iters: int):

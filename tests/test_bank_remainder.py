@@ -71,7 +71,7 @@ def test_bank_remainder_bounds_the_dense_remainder(case):
             bound = float(br.inputs(x[None])[0])
             assert bound <= br.operator() * np.linalg.norm(x) * (1 + 1e-12)
             half = BankRemainder(_tails(0.5 * (iv.upper - iv.lower), eps * max(abs(iv.lower), abs(iv.upper)), 4),
-                                 br.coefficients, br.errors)
+                                 br.coefficients, br.errors, br.powers)
             wrong = float(half.inputs(x[None])[0])
             es = [H.random_error(rng, n, eps) for _ in range(3)] + [H.pair_error(v, n - 1, n - 2, eps),
                                                                     eps * np.eye(n)]
