@@ -131,9 +131,16 @@ def rc(run_dir):
 
     from stablefilt._runcert import certify_run
 
+    # Float64 as the certify command runs it; restored afterwards, so that
+    # later modules train in the default float32 (a run resumed there must
+    # equal one trained straight through: tests/test_train.py).
+    previous = bool(jax.config.jax_enable_x64)
     jax.config.update("jax_enable_x64", True)
-    run = open_run(run_dir)
-    return run, certify_run(run, [1e-3, 1e-2])
+    try:
+        run = open_run(run_dir)
+        yield run, certify_run(run, [1e-3, 1e-2])
+    finally:
+        jax.config.update("jax_enable_x64", previous)
 
 
 def _ref_rows(run, s):
