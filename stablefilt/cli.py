@@ -464,6 +464,7 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--align", action="store_true", help="with --against: match the new graph's nodes to the training graph's first")
     c.add_argument("--shift", choices=KINDS, help="with --against: build the new graph as this kind of operator (default: the run's)")
     _add_csv_options(c)
+    c.add_argument("--quiet", action="store_true", help="show no progress display")
     c.set_defaults(func=cmd_certify)
     m = sub.add_parser("compare", help="compare runs on accuracy and certified bound")
     m.add_argument("runs", nargs="+", help="run directories written by train")
