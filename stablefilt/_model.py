@@ -157,7 +157,12 @@ def forward(params: dict, op, x, spec: ModelSpec, xp=jnp):
             z = z + layer["bias"]
         if i < last or spec.final_nonlinearity:
             z = spec.activation(z, xp)
-    h = xp.swapaxes(z, 0, 1)
+    return apply_readout(params, xp.swapaxes(z, 0, 1), spec, xp)
+
+
+def apply_readout(params: dict, h, spec: ModelSpec, xp=jnp):
+    """The readout of features ``h`` ``(B, N, F_L)``: per node, pooled or flat
+    (node-major), then ``W`` and the bias; ``h`` itself without a readout."""
     if spec.readout == "none":
         return h
     r = params["readout"]

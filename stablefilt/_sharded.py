@@ -38,7 +38,7 @@ from jax.sharding import PartitionSpec as P
 
 from ._errors import ConfigError
 from ._filters import Basis, run_filter
-from ._model import ModelSpec, forward
+from ._model import ModelSpec, apply_readout, forward
 from ._partition import HaloPlan
 
 AXIS = "nodes"
@@ -240,14 +240,4 @@ def sharded_forward(params: dict, op: ShardedShift, x, spec: ModelSpec, mesh: Me
     nodes = P(None, AXIS)
     h = jax.shard_map(body, mesh=mesh, in_specs=(P(AXIS), P(), nodes), out_specs=nodes)(
         op.local, params["layers"], xs)
-    h = _from_slots(op, h, 1)
-    if spec.readout == "none":
-        return h
-    r = params["readout"]
-    if spec.readout == "mean":
-        h = jnp.mean(h, axis=1)
-    elif spec.readout == "sum":
-        h = jnp.sum(h, axis=1)
-    elif spec.readout == "flat":
-        h = h.reshape(h.shape[0], -1)
-    return h @ r["weight"] + r["bias"]
+    return apply_readout(params, _from_slots(op, h, 1), spec, jnp)
