@@ -25,12 +25,6 @@ import optax
 #: Optimiser steps and the p of the p-norm standing in for the maximum.
 STEPS = 150
 POWER = 24.0
-#: For small factorisations (``r F <= SMALL``, one filter or a tiny bank) a
-#: sharper p-norm and more steps cost little: on the one-filter demo they took
-#: the joint constant from 0.826 to 0.802 (a search found 0.789).
-SMALL = 16
-SMALL_STEPS = 1600
-SMALL_POWER = 96.0
 #: Points used by the optimiser (the bound is checked on all of them).
 MAX_POINTS = 512
 
@@ -43,7 +37,7 @@ def _lmax(x):
     return jnp.linalg.eigvalsh(g)[..., -1]
 
 
-def _objective(t, alpha, beta, power=POWER):
+def _objective(t, alpha, beta):
     ta = jnp.einsum("rs,tsg->trg", t, alpha)
     tb = jnp.linalg.solve(t.T, jnp.moveaxis(beta, 0, 1).reshape(beta.shape[1], -1)).reshape(
         beta.shape[1], beta.shape[0], beta.shape[2])
@@ -53,13 +47,13 @@ def _objective(t, alpha, beta, power=POWER):
     def pmax(v):
         v = jnp.maximum(v, 1e-300)
         lv = jnp.log(v)
-        return jax.scipy.special.logsumexp(power * lv) / power
+        return jax.scipy.special.logsumexp(POWER * lv) / POWER
 
     return pmax(a) + pmax(b), (jnp.log(jnp.max(a)) + jnp.log(jnp.max(b)))
 
 
-@functools.partial(jax.jit, static_argnames=("steps", "power"))
-def _run(alpha, beta, steps: int, power: float = POWER):
+@functools.partial(jax.jit, static_argnames=("steps",))
+def _run(alpha, beta, steps: int):
     tx = optax.adam(0.02)
     t0 = jnp.eye(alpha.shape[-2], dtype=alpha.dtype)
 
@@ -68,7 +62,7 @@ def _run(alpha, beta, steps: int, power: float = POWER):
 
         def body(carry, _):
             t, state, best_t, best_v = carry
-            (val, exact), g = jax.value_and_grad(_objective, has_aux=True)(t, alpha, beta, power)
+            (val, exact), g = jax.value_and_grad(_objective, has_aux=True)(t, alpha, beta)
             better = exact < best_v
             best_t = jnp.where(better, t, best_t)
             best_v = jnp.where(better, exact, best_v)
@@ -93,11 +87,8 @@ def balance(alpha: np.ndarray, beta: np.ndarray, steps: int = STEPS) -> np.ndarr
     if alpha.shape[1] > MAX_POINTS:
         idx = np.unique(np.linspace(0, alpha.shape[1] - 1, MAX_POINTS).astype(int))
         alpha, beta = alpha[:, idx], beta[:, idx]
-    power = POWER
-    if alpha.shape[-2] * max(alpha.shape[-1], beta.shape[-1]) <= SMALL:
-        steps, power = max(steps, SMALL_STEPS), SMALL_POWER
     with jax.enable_x64(True):
-        t = np.array(_run(jnp.asarray(alpha), jnp.asarray(beta), steps, power))
+        t = np.array(_run(jnp.asarray(alpha), jnp.asarray(beta), steps))
     bad = ~np.all(np.isfinite(t), axis=(1, 2)) | (np.abs(np.linalg.det(t)) < 1e-12)
     t[bad] = np.eye(t.shape[-1])
     return t
