@@ -87,6 +87,7 @@ class _Setup:
                 alpha = SLOPES[spec.nonlinearity]
                 self.slopes.append(np.where(pre[0] > 0, 1.0, alpha))
         self.xt = [self.vecs.T @ v for v in self.inputs]  # (N, F_{l-1}) each
+        self.stacked = {}  # top layer -> C of _stacked_c
 
     def to_eigen(self, y):
         """``V^T y`` for a batch ``(d, N, F)``."""
@@ -114,7 +115,15 @@ class _Setup:
 
 def _stacked_c(setup: _Setup, top: int) -> np.ndarray:
     """``C = blockdiag(M_1 .. M_m) (Q^T Q)^(1/2)``, ``Q = [Q_1 .. Q_m]`` with
-    rows ``(X~_{l-1, jf} phi_j^T)_f`` (docs/theory.md 9.5, 9.6)."""
+    rows ``(X~_{l-1, jf} phi_j^T)_f`` (docs/theory.md 9.5, 9.6); computed
+    once per layer ``top`` and kept on ``setup`` (the per-unit and the joint
+    switching bounds, and the output bound, share it)."""
+    if top not in setup.stacked:
+        setup.stacked[top] = _build_c(setup, top)
+    return setup.stacked[top]
+
+
+def _build_c(setup: _Setup, top: int) -> np.ndarray:
     n, phi = setup.n, setup.phi
     q = np.concatenate([np.einsum("jf,jb->jfb", xt, phi).reshape(n, -1) for xt in setup.xt[:top + 1]], axis=1)
     r = _sqrt_psd(q.T @ q)
