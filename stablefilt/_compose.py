@@ -245,7 +245,7 @@ def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChan
         changes.append(bank_change(layer["taps"], spec.basis, eps, first_order=lb.beta - lb.remainder,
                                    remainder=lb.remainder, joint=extra.joint.constant, radius=cc.radius,
                                    path_cover=pcover, gains=(lb.gain, b_hat),
-                                   bank_remainder=None if lb.bank is None else lb.bank.operator()))
+                                   bank_remainder=lb.bank_remainder()))
     rc, rg, rr = None, None, None
     if cc.readout is not None:
         ro = cc.readout
@@ -391,7 +391,7 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
     for i, (lb, ch, extra) in enumerate(zip(bounds, lc.changes, cc.layers)):
         d = ch.certified * np.sqrt(np.sum(z**2, axis=(1, 2)))
         if use_spec:
-            rem = lb.input_remainder(z)
+            rem = lb.spectral_remainder(z, lam, eigenvectors, cc.slack) if worst else lb.input_remainder(z)
             d = np.minimum(d, input_first_order(extra.joint, lam, eigenvectors, z, eps) + rem)
             if worst:
                 first = eps * input_worst(mc.params["layers"][i]["taps"], spec.basis, lam, eigenvectors, z, cc.slack)
@@ -441,5 +441,10 @@ def network_bounds(mc, cc: CompositionConstants, bounds, lc: LayerChanges, x, ep
             h = forward_layer(i, h)[1]
     return [network_worst(mc.params, mc.spec, mc.eigenvalues, eigenvectors, z[b], eps, slack=cc.slack,
                           chain=[float(c[b]) for c in chain], changes=[ch.certified for ch in lc.changes],
-                          remainders=[lb.input_remainder for lb in bounds], gains=[lb.gain for lb in bounds],
+                          remainders=[_spectral(lb, mc.eigenvalues, eigenvectors, cc.slack) for lb in bounds], gains=[lb.gain for lb in bounds],
                           readout_norm=mc.readout, forward_layer=forward_layer) for b in range(z.shape[0])]
+
+
+def _spectral(lb, lam, vecs, slack: float):
+    """``x -> lb.spectral_remainder(x, lam, vecs, slack)`` (docs/theory.md 9.8)."""
+    return lambda x: lb.spectral_remainder(x, lam, vecs, slack)

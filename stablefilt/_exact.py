@@ -229,3 +229,60 @@ def product_error(mat: np.ndarray, cols: np.ndarray) -> np.ndarray:
     safety."""
     k = np.shape(mat)[-1]
     return 2.0 * (k + 2) * UNIT * (np.abs(mat) @ np.abs(cols))
+
+
+@functools.lru_cache(maxsize=128)
+def second_transform(k: int, basis: Basis, split: Basis) -> np.ndarray:
+    """``T`` of shape ``(k, k, k, k)``: the three-variable Chebyshev
+    coefficients (on ``split``) of ``K(lam, mu, nu) = (lam + mu)(mu + nu)
+    h^[2](lam, mu, nu)`` for each basis function of ``basis``:
+    ``K_j = sum_{s,b,t} T[s, b, t, j] phi_s(lam) phi_b(mu) phi_t(nu)``
+    (docs/theory.md 9.8).
+
+    With ``lam = m + r t`` and ``h = sum_n d_n t^n``: ``h^[2] = r^-2 sum_n d_n
+    sum_{a+b+c=n-2} t^a s^b u^c`` and ``lam + mu = 2 m + r (t + s)``; the
+    product has degree at most ``k - 1`` in each variable, and each variable
+    is taken to Chebyshev form with ``t^a = sum_j C_aj T_j(t)``.
+    """
+    if split.kind != "chebyshev":
+        raise ValueError("the second-order kernel is built on a Chebyshev split")
+    mid, half = _ends(*split.interval)
+    conv = _power_to_chebyshev(k)
+    out = np.zeros((k, k, k, k))
+    for j, d in enumerate(_basis_in(basis, k, mid, half)):
+        d = d + [Fraction(0)] * (k - len(d))
+        poly = {}
+        for n in range(2, k):
+            if not d[n]:
+                continue
+            c = d[n] / (half * half)
+            for a in range(n - 1):
+                for b in range(n - 1 - a):
+                    key = (a, b, n - 2 - a - b)
+                    poly[key] = poly.get(key, Fraction(0)) + c
+        # times (2m + r t + r s), then (2m + r s + r u)
+        for factor in ((((0, 0, 0), 2 * mid), ((1, 0, 0), half), ((0, 1, 0), half)),
+                       (((0, 0, 0), 2 * mid), ((0, 1, 0), half), ((0, 0, 1), half))):
+            nxt = {}
+            for (a, b, c), v in poly.items():
+                for (da, db, dc), f in factor:
+                    if f:
+                        key = (a + da, b + db, c + dc)
+                        nxt[key] = nxt.get(key, Fraction(0)) + v * f
+            poly = nxt
+        cheb = {}
+        for (a, b, c), v in poly.items():
+            for s_, ca in enumerate(conv[a]):
+                if not ca:
+                    continue
+                for b_, cb in enumerate(conv[b]):
+                    if not cb:
+                        continue
+                    for t_, cc in enumerate(conv[c]):
+                        if cc:
+                            key = (s_, b_, t_)
+                            cheb[key] = cheb.get(key, Fraction(0)) + v * ca * cb * cc
+        for (s_, b_, t_), v in cheb.items():
+            out[s_, b_, t_, j] = float(v)
+    out.setflags(write=False)
+    return out

@@ -31,8 +31,10 @@ from ._filterbounds import (
 )
 from ._filters import frequency_response
 from ._interval import SpectralInterval
-from ._kernel import spectral_first_order
+from ._joint import eigen_cover
+from ._kernel import eigenvalue_slack, spectral_first_order
 from ._model import ModelSpec, forward_np
+from ._second import SecondOrder, second_kernel, second_order
 from ._series import REL_ALLOW, with_allowance
 
 
@@ -89,6 +91,8 @@ class ModelConstants:
       layers: per layer, the reported :class:`LayerConstants`.
       composition: the eps-free constants of the tighter composition
         (docs/theory.md section 9), or None.
+      second: per layer, the :class:`~stablefilt._second.SecondKernel` of
+        the bank over the eigenvalues (docs/theory.md 9.8), or None.
     """
 
     params: dict
@@ -101,6 +105,7 @@ class ModelConstants:
     readout: float
     layers: tuple[LayerConstants, ...]
     composition: CompositionConstants | None = None
+    second: tuple | None = None
 
 
 def _bank_sup_eig(taps, basis, lam):
@@ -133,8 +138,12 @@ def model_constants(params, spec: ModelSpec, interval: SpectralInterval, nodes: 
         layers.append(LayerConstants(float(np.max(c.integral_lipschitz)), float(np.max(kap)), float(c.bank_sup)))
     comp = composition_constants(p, spec, interval, int(nodes), filters, eigenvalues, matrix, deployed=deployed,
                                  rebalance=rebalance)
+    second = None
+    if eigenvalues is not None:
+        cover = eigen_cover(eigenvalues, eigenvalue_slack(eigenvalues))
+        second = tuple(second_kernel(layer["taps"], spec.basis, cover) for layer in p["layers"])
     return ModelConstants(p, spec, interval, int(nodes), eigenvalues, tuple(filters), tuple(gains),
-                          readout_factor(p, spec, nodes), tuple(layers), comp)
+                          readout_factor(p, spec, nodes), tuple(layers), comp, second)
 
 
 class LayerBound(NamedTuple):
@@ -146,6 +155,7 @@ class LayerBound(NamedTuple):
       gain: a bound ``B_l`` on ``||H_l(S)||_2``.
       gain_perturbed: a bound ``B_hat_l`` on ``||H_l(S_hat)||_2``.
       bank: the whole bank's remainder (docs/theory.md 9.7), or None.
+      second: the remainder through the second-order kernel (9.8), or None.
     """
 
     beta: np.ndarray
@@ -153,19 +163,39 @@ class LayerBound(NamedTuple):
     gain: float
     gain_perturbed: float
     bank: BankRemainder | None = None
+    second: SecondOrder | None = None
 
     def bank_remainder(self) -> float:
-        """The bank's remainder for every unit-norm input: the smaller of
-        ``||remainder||_2`` (per filter) and the whole-bank form."""
-        per = combine(self.remainder)
-        return per if self.bank is None else min(per, self.bank.operator())
+        """The bank's remainder for every unit-norm input: the smallest of
+        ``||remainder||_2`` (per filter), the whole-bank form and the
+        second-order kernel form."""
+        out = combine(self.remainder)
+        if self.bank is not None:
+            out = min(out, self.bank.operator())
+        if self.second is not None:
+            out = min(out, self.second.operator())
+        return out
 
     def input_remainder(self, x) -> np.ndarray:
-        """Per signal of ``x`` ``(B, N, F_in)``, the smaller of the per-filter
-        remainders weighted by feature norms and the whole-bank form."""
+        """Per signal of ``x`` ``(B, N, F_in)``, the smallest of the per-filter
+        remainders weighted by feature norms, the whole-bank form and the
+        second-order kernel form."""
         feat = np.sqrt(np.sum(np.asarray(x, dtype=np.float64) ** 2, axis=1))
-        per = np.linalg.norm(feat @ np.atleast_2d(self.remainder), axis=1) * (1 + REL_ALLOW)
-        return per if self.bank is None else np.minimum(per, self.bank.inputs(x))
+        out = np.linalg.norm(feat @ np.atleast_2d(self.remainder), axis=1) * (1 + REL_ALLOW)
+        if self.bank is not None:
+            out = np.minimum(out, self.bank.inputs(x))
+        if self.second is not None:
+            out = np.minimum(out, self.second.inputs(x))
+        return out
+
+    def spectral_remainder(self, x, lam, vecs, slack: float) -> np.ndarray:
+        """:meth:`input_remainder`, or the weighted second-order form of
+        docs/theory.md 9.8 for these inputs with the eigenpairs of ``S``
+        when smaller (about a second per bank and signal at N = 120, F = 16)."""
+        out = self.input_remainder(x)
+        if self.second is None:
+            return out
+        return np.minimum(out, self.second.spectral(x, lam, vecs, slack))
 
 
 def layer_bounds(constants: ModelConstants, eps: float) -> tuple[LayerBound, ...]:
@@ -184,8 +214,10 @@ def layer_bounds(constants: ModelConstants, eps: float) -> tuple[LayerBound, ...
         if lam is not None:
             # ||H(mu) - H(lam_i)||_2 <= |mu - lam_i| ||C0||_F over the widened interval.
             b_hat = min(b_hat, b_now + float(with_allowance(w * float(np.linalg.norm(np.asarray(c0_wide))), 0.0)))
+        second = None if constants.second is None else second_order(taps, spec.basis, (a, b), eps,
+                                                                     constants.second[len(out)])
         out.append(LayerBound(np.asarray(fb.first_order + fb.remainder), np.asarray(fb.remainder), b_now, b_hat,
-                              bank_remainder(taps, spec.basis, (a, b), eps)))
+                              bank_remainder(taps, spec.basis, (a, b), eps), second))
     return tuple(out)
 
 

@@ -1,0 +1,196 @@
+"""The second-order term of a filter bank through its own kernel
+(docs/theory.md 9.8).
+
+For ``S_hat = S + D``, ``D = E S + S E``, the words of ``H(S + D)`` with
+exactly two factors ``D`` are, in the eigenbasis of ``S``,
+``sum_k E~_ik E~_kj K(lam_i, lam_k, lam_j)`` with the kernel
+``K(lam, mu, nu) = (lam + mu)(mu + nu) h^[2](lam, mu, nu)``. Writing
+``K_fg = sum T_fg[s, b, t] phi_s(lam) phi_b(mu) phi_t(nu)`` (Chebyshev basis
+``phi`` of a split interval holding the spectrum) gives
+
+    ||Q(X)||_F <= eps^2 K b ||X||_F,   b = sup_mu ||beta(mu)||_2,
+
+``beta(mu)_(g,s),(f,t) = sum_b T_fg[s, b, t] phi_b(mu)``, and the words with
+three or more factors ``D`` are bounded by ``t3_j = (r + d)^j - sum_{i<=2}
+C(j, i) d^i r^(j-i)`` on the coefficients in powers of ``(lam - m)``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from math import comb
+
+import numpy as np
+
+from ._exact import UNIT, second_transform
+from ._filterbounds import bank_remainder
+from ._filters import Basis, basis_values
+from ._joint import Cover, _sup_lambda_max
+from ._series import with_allowance
+
+
+@dataclasses.dataclass(frozen=True)
+class SecondKernel:
+    """The eps-free part of 9.8 for one bank: the coefficients
+    ``T_fg[s, b, t]`` on a Chebyshev split, and ``b = sup ||beta(mu)||_2``
+    over a cover of the spectrum of ``S``.
+
+    Attributes:
+      coefficients: ``T`` ``(F_in, F_out, K, K, K)`` in float64.
+      errors: entrywise bounds on their float64 error.
+      split: the Chebyshev basis ``phi``.
+      sup: ``b``, rigorous.
+      cover: where ``b`` was taken (recorded with the certificate).
+    """
+
+    coefficients: np.ndarray
+    errors: np.ndarray
+    split: Basis
+    sup: float
+    cover: str
+
+
+def second_kernel(taps, basis: Basis, cover: Cover) -> SecondKernel:
+    """The :class:`SecondKernel` of a bank ``(K, F_in, F_out)`` (or one filter
+    ``(K,)``): ``b`` a rigorous upper bound on ``sup ||beta(mu)||_2`` over the
+    points ``cover`` covers (docs/theory.md 9.8)."""
+    taps = np.asarray(taps, dtype=np.float64)
+    if taps.ndim == 1:
+        taps = taps[:, None, None]
+    k, fin, fout = taps.shape
+    if k < 3:  # degree <= 1: no second-order term
+        z = np.zeros((fin, fout, k, k, k))
+        return SecondKernel(z, z, cover.split, 0.0, cover.description)
+    tr = second_transform(k, basis, cover.split)  # (s, b, t, j)
+    t = np.einsum("sbtj,jfg->fgsbt", tr, taps, optimize=True)
+    t_err = 2.0 * (k + 2) * UNIT * np.einsum("sbtj,jfg->fgsbt", np.abs(tr), np.abs(taps), optimize=True)
+    # P[(f,t), b, (f',u), c] = sum_{g,s} T_fg[s,b,t] T_f'g[s,c,u]
+    p = np.einsum("fgsbt,hgscu->ftbhuc", t, t, optimize=True).reshape(1, fin * k * k, fin * k * k)
+    terms = fout * k
+    at = np.abs(t)
+    p_err = (np.einsum("fgsbt,hgscu->ftbhuc", at, t_err, optimize=True)
+             + np.einsum("fgsbt,hgscu->ftbhuc", t_err, at + t_err, optimize=True)
+             + 2.0 * (terms + 2) * UNIT * np.einsum("fgsbt,hgscu->ftbhuc", at, at, optimize=True))
+    top = float(_sup_lambda_max(p, p_err.reshape(p.shape), fin * k, k, cover)[0])
+    t.setflags(write=False)
+    t_err.setflags(write=False)
+    return SecondKernel(t, t_err, cover.split, float(with_allowance(np.sqrt(max(top, 0.0)), 0.0)),
+                        cover.description)
+
+
+#: Weights ``W = (G / ||G|| + tau I)^-1`` tried for a given input (``inf``: ``W = I``).
+TAUS = (np.inf, 0.3, 0.1, 0.03, 0.01)
+
+
+@dataclasses.dataclass(frozen=True)
+class SecondOrder:
+    """The bank's remainder at one eps through its second-order kernel
+    (docs/theory.md 9.8): ``eps^2 K b ||X||_F + sum_j t3_j ||X g_j||_F``,
+    or, for a given input with the eigenpairs of ``S``, the weighted form.
+
+    Attributes:
+      kernel: the eps-free :class:`SecondKernel`.
+      eps: the perturbation size.
+      quadratic: ``eps^2 K b``, the bound on the two-factor words per unit ``||X||_F``.
+      tails: ``t3_j``, ``(K,)``.
+      coefficients, errors, powers: as in
+        :class:`stablefilt._filterbounds.BankRemainder`.
+    """
+
+    kernel: SecondKernel
+    eps: float
+    quadratic: float
+    tails: np.ndarray
+    coefficients: np.ndarray
+    errors: np.ndarray
+    powers: np.ndarray
+
+    def operator(self) -> float:
+        """For every ``||X||_F <= 1``."""
+        norms = np.array([np.linalg.norm(g, 2) + np.linalg.norm(e) for g, e in zip(self.coefficients, self.errors)])
+        total = self.quadratic + float(np.dot(self.tails, norms))
+        return float(with_allowance(total, float(np.dot(self.powers, norms)) + self.quadratic))
+
+    def _third(self, x):
+        xn = np.sqrt(np.sum(x**2, axis=(1, 2)))
+        out, scale = np.zeros(x.shape[0]), np.zeros(x.shape[0])
+        for t, p, g, e in zip(self.tails, self.powers, self.coefficients, self.errors):
+            term = np.sqrt(np.sum(np.einsum("bnf,fg->bng", x, g) ** 2, axis=(1, 2))) + xn * np.linalg.norm(e)
+            out = out + t * term
+            scale = scale + p * term
+        return out, scale, xn
+
+    def inputs(self, x) -> np.ndarray:
+        """Per signal of ``x`` ``(B, N, F_in)``: ``eps^2 K b ||X||_F + sum_j t3_j ||X g_j||_F``."""
+        x = np.asarray(x, dtype=np.float64)
+        out, scale, xn = self._third(x)
+        return with_allowance(out + self.quadratic * xn, scale + self.quadratic * xn)
+
+    def spectral(self, x, lam, vecs, slack: float) -> np.ndarray:
+        """Per signal of ``x`` ``(B, N, F_in)``, the weighted form of
+        docs/theory.md 9.8 with the computed eigenpairs ``lam``, ``vecs`` of
+        ``S`` (eigenvalues within ``slack``): ``eps^2 sqrt(K) min_W
+        sqrt(c_W tr(W G))`` plus the third-order tail, never above :meth:`inputs`."""
+        x = np.asarray(x, dtype=np.float64)
+        plain = self.inputs(x)
+        kern = self.kernel
+        t = kern.coefficients
+        fin, fout, k = t.shape[0], t.shape[1], t.shape[2]
+        if kern.sup == 0.0:
+            return plain
+        lam = np.asarray(lam, dtype=np.float64)
+        n = lam.size
+        lo, hi = kern.split.interval
+        phi = basis_values(lam, k, kern.split)  # (N, K)
+        beta = np.einsum("fgsbt,mb->mgsft", t, phi, optimize=True).reshape(n, fout * k, fin * k)
+        gram = np.einsum("mab,mac->mbc", beta, beta, optimize=True)
+        # ||beta(mu) - beta(lam_m)||_2 for mu within slack (Markov, |T_b'| <= b^2 in the
+        # split's variable), the coefficients' errors, and the evaluation (|phi| <= 1).
+        kb = np.arange(k, dtype=np.float64)
+        per_b = np.linalg.norm(np.moveaxis(t, 3, 0).reshape(k, -1), axis=1)
+        move = slack * float(np.sum(2.0 * kb**2 / (hi - lo) * per_b)) + float(np.linalg.norm(kern.errors)) * k \
+            + 4.0 * k * UNIT * float(np.linalg.norm(np.abs(t)))
+        dz = slack * float(np.max(2.0 * kb**2 / (hi - lo)))  # |phi_t| moves by at most this
+        third, scale, xn = self._third(x)
+        out = np.empty(x.shape[0])
+        for i in range(x.shape[0]):
+            xt = vecs.T @ x[i]  # (N, F_in)
+            z = np.einsum("jf,jt->jft", xt, phi).reshape(n, fin * k)
+            dzn = dz * float(np.linalg.norm(xt)) * np.sqrt(k)
+            g = z.T @ z
+            gv, gq = np.linalg.eigh(0.5 * (g + g.T))
+            top = max(float(gv[-1]), 1e-300)
+            best = np.inf
+            for tau in TAUS:
+                if np.isinf(tau):
+                    a = np.eye(fin * k)
+                else:
+                    a = (gq * np.sqrt(np.maximum(gv, 0.0) / top + tau)) @ gq.T  # W^(-1/2)
+                c = np.linalg.eigvalsh(a @ gram @ a)[:, -1].max()
+                a_norm = float(np.linalg.norm(a, 2))
+                root_c = np.sqrt(max(c, 0.0)) * (1 + 64 * fin * k * UNIT) + move * a_norm
+                zw = np.linalg.solve(a, z.T)  # (W^(1/2) Z^T): ||Z W^(1/2)||_F^2 = tr(W G)
+                root_tr = float(np.linalg.norm(zw)) * (1 + 64 * n * UNIT) + dzn * float(np.linalg.norm(
+                    np.linalg.inv(a), 2))
+                best = min(best, root_c * root_tr)
+            quad = self.eps * self.eps * np.sqrt(k) * best
+            out[i] = quad
+        return np.minimum(plain, with_allowance(third + out, scale + out))
+
+
+def _tails3(x: float, y: float, k: int) -> np.ndarray:
+    """``sum_{i>=3} C(j, i) y^i x^(j-i)`` for ``j < k``, term by term."""
+    return np.array([sum(comb(j, i) * y**i * x ** (j - i) for i in range(3, j + 1)) for j in range(k)])
+
+
+def second_order(taps, basis: Basis, interval, eps: float, kernel: SecondKernel) -> SecondOrder:
+    """The :class:`SecondOrder` remainder of a bank at ``eps`` on a graph with
+    spectrum in ``interval``, from its :class:`SecondKernel`."""
+    br = bank_remainder(taps, basis, interval, eps)
+    k = br.coefficients.shape[0]
+    a, b = float(interval[0]), float(interval[1])
+    mid = 0.5 * (a + b)
+    half = max(b - mid, mid - a) * (1 + 4 * UNIT)
+    d = 2.0 * eps * max(abs(a), abs(b))
+    quad = float(with_allowance(eps * eps * k * kernel.sup, 0.0))
+    return SecondOrder(kernel, float(eps), quad, _tails3(half, d, k), br.coefficients, br.errors, br.powers)

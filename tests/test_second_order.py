@@ -1,0 +1,132 @@
+"""The second-order term of a bank through its own kernel (docs/theory.md 9.8).
+
+- The kernel ``K = (lam + mu)(mu + nu) h^[2]`` built exactly
+  (``_exact.second_transform``) reproduces the second-order term of
+  ``H(S + t D) X`` computed by numpy: the coefficient of ``t^2`` of that
+  polynomial in ``t``, recovered from ``K`` values of ``t`` by a Vandermonde
+  solve (``numpy.linalg.solve``), in the eigenbasis from ``numpy.linalg.eigh``.
+  A kernel without the factor ``(lam + mu)(mu + nu)`` does not.
+- The bound never falls below the dense remainder ``H(S_hat) X - H(S) X -
+  DH(S)[D] X`` (numpy products and the Daleckii-Krein first-order term,
+  Bhatia, "Matrix Analysis", 1997, Thm V.3.3) on networkx graphs, for
+  random, eigenvector-pair and scaling ``E`` at eps from 1e-3 to 0.3; a
+  tenth of it is exceeded, so the check can fail.
+"""
+
+from __future__ import annotations
+
+import helpers as H
+import networkx as nx
+import numpy as np
+import pytest
+
+from stablefilt import Basis, shift_operator, spectral_interval
+from stablefilt._exact import second_transform
+from stablefilt._filters import basis_values, frequency_response, response_derivative
+from stablefilt._joint import eigen_cover
+from stablefilt._kernel import eigenvalue_slack
+from stablefilt._second import second_kernel, second_order
+
+
+def _bank_apply(s, taps, basis, x):
+    """``sum_k p_k(S) X c_k`` by dense eigendecomposition (numpy)."""
+    lam, v = np.linalg.eigh(s)
+    h = frequency_response(taps, lam, basis)  # (N, F_in, F_out)
+    return v @ np.einsum("if,ifg->ig", v.T @ x, h)
+
+
+def _first_order(s, taps, basis, d, x):
+    """Daleckii-Krein: ``V (D~ o h^[1]) V^T`` per filter, summed over inputs."""
+    lam, v = np.linalg.eigh(s)
+    h = frequency_response(taps, lam, basis)
+    dh = response_derivative(taps, lam, basis)
+    diff = lam[:, None] - lam[None, :]
+    close = np.abs(diff) < 1e-9
+    safe = np.where(close, 1.0, diff)
+    l1 = np.where(close[:, :, None, None], 0.5 * (dh[:, None] + dh[None, :]),
+                  (h[:, None] - h[None, :]) / safe[:, :, None, None])
+    return v @ np.einsum("ij,ijfg,jf->ig", v.T @ d @ v, l1, v.T @ x)
+
+
+def _setting(name, kind, bkind):
+    g = {"karate": nx.karate_club_graph(), "path": nx.path_graph(12), "grid": nx.grid_2d_graph(4, 4)}[name]
+    op = shift_operator(nx.to_numpy_array(g), kind)
+    iv = spectral_interval(op)
+    basis = Basis(bkind, (iv.lower, iv.upper)) if bkind == "chebyshev" else Basis("monomial")
+    return op.dense(), iv, basis
+
+
+@pytest.mark.parametrize("bkind", ["chebyshev", "monomial"])
+def test_kernel_gives_the_second_order_term(bkind):
+    s, iv, basis = _setting("karate", "normalized-laplacian", bkind)
+    n, k = s.shape[0], 5
+    rng = np.random.default_rng(3)
+    taps = rng.standard_normal((k, 2, 3)) * 0.5
+    x = rng.standard_normal((n, 2))
+    e = H.random_error(rng, n, 1.0)
+    d = e @ s + s @ e
+    # The t^2 coefficient of the degree-(K-1) polynomial t -> H(S + t D) X (numpy).
+    ts = np.linspace(-1.0, 1.0, k)
+    vals = np.stack([_bank_apply(s + t * d, taps, basis, x) for t in ts])  # (K, N, F_out)
+    coef = np.linalg.solve(np.vander(ts, k, increasing=True), vals.reshape(k, -1))
+    want = coef[2].reshape(n, -1)
+    lam, v = np.linalg.eigh(s)
+    cover = eigen_cover(lam, eigenvalue_slack(lam))
+    phi = basis_values(lam, k, cover.split)
+    tr = second_transform(k, basis, cover.split)
+    kern = np.einsum("sbtj,jfg,is,kb,lt->fgikl", tr, taps, phi, phi, phi, optimize=True)
+    et, xt = v.T @ e @ v, v.T @ x
+    got = v @ np.einsum("ik,kl,fgikl,lf->ig", et, et, kern, xt, optimize=True)
+    np.testing.assert_allclose(got, want, rtol=1e-7, atol=1e-8 * np.abs(want).max())
+    # Without (lam + mu)(mu + nu) (that is, with E in place of D) it is wrong.
+    lsum = lam[:, None] + lam[None, :]
+    plain = kern / (lsum[:, :, None] * lsum[None, :, :] + 1e-300)
+    wrong = v @ np.einsum("ik,kl,fgikl,lf->ig", et, et, plain, xt, optimize=True)
+    assert np.abs(wrong - want).max() > 1e-3 * np.abs(want).max()
+
+
+CASES = [("karate", "normalized-laplacian", "chebyshev"), ("karate", "laplacian", "monomial"),
+         ("path", "as-is", "chebyshev"), ("grid", "normalized-laplacian", "monomial"),
+         ("grid", "scaled-adjacency", "chebyshev")]
+
+
+@pytest.mark.parametrize("case", CASES, ids=lambda c: "-".join(c))
+def test_second_order_bounds_the_dense_remainder(case):
+    s, iv, basis = _setting(*case)
+    n = s.shape[0]
+    lam, v = np.linalg.eigh(s)
+    slack = eigenvalue_slack(lam)
+    cover = eigen_cover(lam, slack)
+    rng = np.random.default_rng(11)
+    worst_ratio, exceeded_tenth = 0.0, 0
+    for trial in range(3):
+        taps = rng.standard_normal((5, 3, 2)) * 0.7
+        x = rng.standard_normal((n, 3))
+        if trial == 2:  # low frequencies only, where the weighted form gains
+            x = v[:, :3] @ rng.standard_normal((3, 3))
+        kern = second_kernel(taps, basis, cover)
+        for eps in (1e-3, 0.03, 0.3):
+            so = second_order(taps, basis, (iv.lower, iv.upper), eps, kern)
+            plain = float(so.inputs(x[None])[0])
+            spectral = float(so.spectral(x[None], lam, v, slack)[0])
+            assert spectral <= plain * (1 + 1e-12)
+            assert plain <= so.operator() * np.linalg.norm(x) * (1 + 1e-9)
+            es = [H.random_error(rng, n, eps) for _ in range(3)] + [H.pair_error(v, n - 1, n - 2, eps),
+                                                                    H.pair_error(v, 0, n - 1, eps),
+                                                                    eps * np.eye(n), -eps * np.eye(n)]
+            for e in es:
+                d = e @ s + s @ e
+                rem = (_bank_apply(s + d, taps, basis, x) - _bank_apply(s, taps, basis, x)
+                       - _first_order(s, taps, basis, d, x))
+                got = float(np.linalg.norm(rem))
+                assert got <= spectral, (case, eps, got, spectral)
+                worst_ratio = max(worst_ratio, got / spectral)
+                exceeded_tenth += got > 0.1 * spectral
+    assert exceeded_tenth > 0, worst_ratio
+
+
+def test_degree_one_has_no_second_order_term():
+    s, iv, basis = _setting("path", "as-is", "chebyshev")
+    lam = np.linalg.eigvalsh(s)
+    kern = second_kernel(np.array([0.3, -1.2]), basis, eigen_cover(lam, eigenvalue_slack(lam)))
+    assert kern.sup == 0.0
