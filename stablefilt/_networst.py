@@ -25,7 +25,7 @@ from ._series import ABS_ALLOW, REL_ALLOW
 #: Frank-Wolfe iterations per target.
 ITERS = 12
 #: Units that may switch, above which their joint bound is not tried.
-SWITCH_UNITS = 200
+SWITCH_UNITS = 1000
 #: Candidate units (margin below the change bound), above which the
 #: switching term falls back to its norm bound.
 UNIT_LIMIT = 4000
@@ -241,17 +241,27 @@ def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain
     depth = len(setup.layers)
     e_prev, eps_prev = 0.0, 0.0
     last = depth - 1
-    nu_last, switch_last, live_last = 0.0, 0.0, None
+    nu_last, switch_last, live_last, weights_last = 0.0, 0.0, None, None
+    nu_prev, switch_prev, live_prev = 0.0, 0.0, None
     for i in range(depth):
         rho_bar = float(remainders[i](setup.inputs[i][None])[0])
-        nu = rho_bar + changes[i] * e_prev + gains[i] * eps_prev
+        carried = gains[i] * eps_prev
+        if live_prev is not None and switch_prev > 0:
+            # epsilon_{i-1} = (g(nu) - g(0)) + g(0), the second part on the
+            # units that may switch (docs/theory.md 9.6).
+            carried = min(carried, gains[i] * nu_prev + _restricted_gain(setup, i, live_prev, forward_layer,
+                                                                         gains[i]) * switch_prev)
+        nu = rho_bar + changes[i] * e_prev + carried
         eps_now = nu
+        switch_now, live_now = 0.0, None
         if setup.slopes[i] is not None:
-            sw, live = _switching(setup, i, eps, float(chain[i]) + nu, gains, iters)
+            sw, live, weights = _switching(setup, i, eps, float(chain[i]) + nu, gains, iters)
             eps_now = nu + (1.0 - alpha) * sw
+            switch_now, live_now = (1.0 - alpha) * sw, live
             if i == last:
-                switch_last, live_last = (1.0 - alpha) * sw, live
+                switch_last, live_last, weights_last = switch_now, live, weights
         nu_last = nu
+        nu_prev, switch_prev, live_prev = nu, switch_now, live_now
         e_prev, eps_prev = float(chain[i]), eps_now
     f_l = setup.pre[last].shape[1]
     rd = _readout_matrix(params, spec, n, f_l)  # (N F_L, d)
@@ -266,7 +276,18 @@ def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain
     residual = readout_norm * eps_prev
     if live_last is not None:
         masked = float(np.linalg.norm(rd[live_last], 2)) * (1 + REL_ALLOW) if live_last.size else 0.0
-        residual = min(residual, readout_norm * nu_last + masked * switch_last)
+        switched = masked * switch_last
+        if live_last.size and switch_last > 0:
+            # g(0) = diag(theta) mu with theta_u between 0 and (1 - alpha) w_u s_u
+            # (s_u = +1 on units that are off, -1 on those on): averaging gives
+            # ((1 - alpha) / 2) (sup ||Rd (w s o mu)|| + ||Rd P_U|| s_L) (docs/theory.md 9.6).
+            ws = np.zeros(n * f_l)
+            ws[live_last] = weights_last * np.where(setup.pre[last].ravel()[live_last] > 0, -1.0, 1.0)
+            y2 = rd.T.reshape(-1, n, f_l) * ws.reshape(n, f_l)[None]
+            stacked2 = np.concatenate(setup.adjoint_chain(last, y2), axis=2)
+            signed = eps * (_worst_linear(setup, last, stacked2, iters) + _carried_error(setup, last, gains, masked))
+            switched = min(switched, 0.5 * (signed * (1.0 - alpha) + switched))
+        residual = min(residual, readout_norm * nu_last + switched)
     linear = eps * lin
     # An absolute allowance on the scale of the outputs: a float64 evaluation
     # of the model errs by about that much even where the exact change is 0
@@ -276,9 +297,28 @@ def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain
                         float(residual))
 
 
+def _restricted_gain(setup: _Setup, i: int, units, forward_layer, gain: float) -> float:
+    """``||H_i P_U||_2``: the bank of layer ``i`` on the inputs ``units``
+    (flat, node-major) only, from its columns ``H_i e_u = p(e_u) - p(0)``
+    in float64, with an allowance on the scale of ``B_i`` (common
+    practice); never above ``gain``."""
+    if units.size == 0:
+        return 0.0
+    n, f = setup.inputs[i].shape
+    if units.size > UNIT_LIMIT:
+        return gain
+    z = np.zeros((units.size + 1, n * f))
+    z[np.arange(1, units.size + 1), units] = 1.0
+    pre = forward_layer(i, z.reshape(-1, n, f))[0]
+    cols = (pre[1:] - pre[:1]).reshape(units.size, -1)
+    val = float(np.linalg.norm(cols, 2)) * (1 + REL_ALLOW) + 1e-9 * gain
+    return min(val, gain)
+
+
 def _switching(setup: _Setup, i: int, eps: float, reach: float, gains, iters: int):
-    """``(bound, units)``: a bound on ``||(|mu_i| - |p_i|)_+||`` and the
-    (flat, node-major) units it lives on, or None for all (docs/theory.md 9.6): units
+    """``(bound, units, weights)``: a bound on ``||(|mu_i| - |p_i|)_+||``
+    (and on ``||w o mu_i||``), the (flat, node-major) units it lives on, or
+    None for all, and their ``w_u`` (docs/theory.md 9.6): units
     whose margin ``|p_u|`` is at least ``reach >= ||mu_i||`` are skipped; for
     the others, per-unit suprema ``M_u``, and the smaller of
     ``||(M_u - |p_u|)_+||`` and the joint ``sup ||w o mu_i||``,
@@ -288,9 +328,9 @@ def _switching(setup: _Setup, i: int, eps: float, reach: float, gains, iters: in
     margin = np.abs(pre).ravel()
     units = np.flatnonzero(margin < reach)
     if units.size == 0:
-        return 0.0, units
+        return 0.0, units, np.zeros(0)
     if units.size > UNIT_LIMIT:
-        return reach, None  # ||(|mu| - |p|)_+|| <= ||mu||
+        return reach, None, None  # ||(|mu| - |p|)_+|| <= ||mu||
     y = np.zeros((units.size, n * f))
     y[np.arange(units.size), units] = 1.0
     stacked = np.concatenate(setup.adjoint_chain(i, y.reshape(units.size, n, f)), axis=2)
@@ -303,4 +343,4 @@ def _switching(setup: _Setup, i: int, eps: float, reach: float, gains, iters: in
         wts = (excess[live] / sups[live])[:, None, None]
         joint = eps * (_worst_linear(setup, i, stacked[live] * wts, iters) + _carried_error(setup, i, gains, 1.0))
         best = min(best, joint)
-    return best * (1 + REL_ALLOW), units[live]
+    return best * (1 + REL_ALLOW), units[live], excess[live] / sups[live]

@@ -47,6 +47,29 @@ def _slope_pair(alpha):
 
 
 @pytest.mark.parametrize("alpha", [0.0, 0.1, 0.5])
+def test_switching_error_has_a_known_sign(alpha):
+    """g(0) = sigma(p + mu) - sigma(p) - d mu equals theta mu with theta
+    between 0 and (1 - alpha) (1 - |p| / M) s, s = +1 where p <= 0 (slope
+    alpha) and -1 where p > 0, whenever |mu| <= M (docs/theory.md 9.6); with
+    the signs swapped it fails."""
+    sigma = _slope_pair(alpha)
+    rng = np.random.default_rng(8)
+    p = np.concatenate([rng.normal(size=20000), np.zeros(500)])
+    mu = rng.normal(size=p.size) * rng.choice([1e-2, 1.0, 5.0], size=p.size)
+    big = np.abs(mu) * rng.uniform(1.0, 3.0, size=p.size)  # any M >= |mu|
+    d = np.where(p > 0, 1.0, alpha)
+    g0 = sigma(p + mu) - sigma(p) - d * mu
+    w = np.maximum(1.0 - np.abs(p) / big, 0.0)
+    s = np.where(p > 0, -1.0, 1.0)
+    # theta s in [0, cap]  <=>  g0 s sign(mu) in [0, cap |mu|] (round-off: 1e-12 of the sizes).
+    signed = g0 * s * np.sign(mu)
+    cap = (1 - alpha) * w * np.abs(mu)
+    tol = 1e-12 * (1 + np.abs(p) + np.abs(mu))
+    assert np.all(signed >= -tol) and np.all(signed <= cap + tol)
+    assert np.any(-signed < -tol - 1e-9)  # the swapped signs are wrong somewhere
+
+
+@pytest.mark.parametrize("alpha", [0.0, 0.1, 0.5])
 def test_switching_lemma(alpha):
     """|sigma(p + q) - sigma(p) - d q| <= (1 - alpha) (|q| - |p|)_+ for d a slope at p
     (docs/theory.md 9.6), including p = 0 with either one-sided slope."""
