@@ -207,8 +207,10 @@ class NetworkWorst:
         method does not apply).
       linear: the bound on ``sup_E ||Rd(lambda_L(E))||``, the fixed-pattern
         first-order change.
-      residual: ``||Rd|| eps_bar_L``: second-order terms, the previous
-        layers' change through ``H_hat - H``, and units that may switch.
+      residual: ``certified - linear`` before allowances: second-order
+        terms, the previous layers' change through ``H_hat - H``, and units
+        that may switch (negative parts where the switching units' sign,
+        taken under the same ``E`` as the linear part, lowers it).
     """
 
     certified: float
@@ -274,6 +276,7 @@ def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain
     # the second lives on the units that may switch, where the readout's
     # restriction is used (docs/theory.md 9.6).
     residual = readout_norm * eps_prev
+    shift = 0.0  # what the merged form changes in the linear part (may be negative)
     if live_last is not None:
         masked = float(np.linalg.norm(rd[live_last], 2)) * (1 + REL_ALLOW) if live_last.size else 0.0
         switched = masked * switch_last
@@ -287,7 +290,14 @@ def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain
             stacked2 = np.concatenate(setup.adjoint_chain(last, y2), axis=2)
             signed = eps * (_worst_linear(setup, last, stacked2, iters) + _carried_error(setup, last, gains, masked))
             switched = min(switched, 0.5 * (signed * (1.0 - alpha) + switched))
-        residual = min(residual, readout_norm * nu_last + switched)
+            # Or with the linear part under the same E: Rd((D_L + (1 - alpha) w o s / 2) o mu_L).
+            y3 = rd.T.reshape(-1, n, f_l) * (setup.slopes[last] + 0.5 * (1.0 - alpha) * ws.reshape(n, f_l))[None]
+            stacked3 = np.concatenate(setup.adjoint_chain(last, y3), axis=2)
+            merged = _worst_linear(setup, last, stacked3, iters) + _carried_error(setup, last, gains, readout_norm)
+            half = 0.5 * masked * switch_last
+            if eps * merged + half < eps * lin + switched:
+                shift, switched = eps * (merged - lin), half
+        residual = min(residual, readout_norm * nu_last + switched + shift)
     linear = eps * lin
     # An absolute allowance on the scale of the outputs: a float64 evaluation
     # of the model errs by about that much even where the exact change is 0
