@@ -38,6 +38,7 @@ from jax.sharding import PartitionSpec as P
 
 from ._errors import ConfigError
 from ._model import ModelSpec, forward
+from ._optstep import optimiser_step
 
 AXIS = "signals"
 
@@ -125,12 +126,7 @@ def parallel_functions(spec: ModelSpec, task: str, tx, pen_fn, active: bool, dev
         pen = pen_fn(params) if active else jnp.float32(0.0)
         return tl + pen, (tl, pen)
 
-    @jax.jit
-    def _step(params, opt_state, op, xb, yb, mb):
-        (loss, (tl, pen)), grads = jax.value_and_grad(loss_fn, has_aux=True)(params, op, xb, yb, mb)
-        updates, opt_state = tx.update(grads, opt_state, params)
-        params = optax.apply_updates(params, updates)
-        return params, opt_state, loss, tl, pen
+    _step = optimiser_step(loss_fn, tx)
 
     @jax.jit
     def _evaluate(params, op, xb, yb, mb):
@@ -190,12 +186,7 @@ def node_split_functions(spec: ModelSpec, task: str, tx, pen_fn, active: bool, d
         pen = pen_fn(params) if active else jnp.float32(0.0)
         return tl + pen, (tl, pen)
 
-    @jax.jit
-    def _step(params, opt_state, sop, xb, yb):
-        (loss, (tl, pen)), grads = jax.value_and_grad(loss_fn, has_aux=True)(params, sop, xb, yb)
-        updates, opt_state = tx.update(grads, opt_state, params)
-        params = optax.apply_updates(params, updates)
-        return params, opt_state, loss, tl, pen
+    _step = optimiser_step(loss_fn, tx)
 
     @jax.jit
     def _evaluate(params, sop, xb, yb):

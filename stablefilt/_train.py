@@ -26,6 +26,7 @@ from ._interval import SpectralInterval, spectral_interval
 from ._lock import check_unlocked, run_lock
 from ._model import ModelSpec, forward, init_params, spec_from
 from ._modelcert import certify_model, model_constants
+from ._optstep import optimiser_step
 from ._penalty import model_penalty, penalty
 from ._predictions import training_predictions
 from ._progress import bar, say_through
@@ -226,12 +227,7 @@ def _build_step_cached(key):
             return (tx,) + node_split_functions(spec, task, tx, pen_fn, active, devices, cfg["train"]["partition"])
         return (tx,) + parallel_functions(spec, task, tx, pen_fn, active, devices)
 
-    @jax.jit
-    def step(params, opt_state, op, xb, yb):
-        (loss, (tl, pen)), grads = jax.value_and_grad(loss_fn, has_aux=True)(params, op, xb, yb)
-        updates, opt_state = tx.update(grads, opt_state, params)
-        params = optax.apply_updates(params, updates)
-        return params, opt_state, loss, tl, pen
+    step = optimiser_step(loss_fn, tx)
 
     @jax.jit
     def evaluate(params, op, xb, yb):
