@@ -26,12 +26,15 @@ import dataclasses
 from typing import NamedTuple
 
 import numpy as np
+import scipy.linalg as sla
+import scipy.sparse as sp
 from scipy.optimize import linear_sum_assignment, quadratic_assignment
 
 from ._errors import GraphError
 from ._graph import ShiftOperator
 from ._memory import dense_bytes, require
 from ._sylvester import diagonal_sylvester, minres_sylvester
+from ._symnorm import norm2_upper
 
 #: Largest graph decomposed densely for a distance.
 DISTANCE_LIMIT = 3000
@@ -44,6 +47,11 @@ ITERATIVE_LIMIT = 8000
 MISALIGNMENT_LIMIT = 1500
 #: Largest graph aligned by quadratic assignment (dense ``O(N^3)`` steps).
 ALIGN_LIMIT = 1000
+#: Largest graph whose residual and additive change are measured as exact
+#: 2-norms (a dense ``eigvalsh`` each, ``O(N^3)``). Above it the residual is
+#: its Frobenius norm (an upper bound on the 2-norm, ``O(N^2)``) and the
+#: additive change a Lanczos value of the sparse ``S_hat - S``.
+EXACT_NORM_LIMIT = 1500
 #: Relative residual ``||S E + E S - D||_F / ||D||_F`` below which an
 #: iterative solution counts as expressing the change (common practice for
 #: a float64 iterative solve stopped at 1e-10).
@@ -64,8 +72,10 @@ class Distance:
         non-expressible entries). Equals the relative distance when the
         change is expressible and ``lam_i + lam_j`` never vanishes;
         otherwise an upper bound on the part that is expressible.
-      residual: ``||S E + E S - (S_hat - S)||_2``: zero (to round-off) when
-        the change is a relative perturbation.
+      residual: ``||S E + E S - (S_hat - S)||``: zero (to round-off) when
+        the change is a relative perturbation; the 2-norm, or above
+        :data:`EXACT_NORM_LIMIT` nodes and on the iterative paths the
+        Frobenius norm (``residual_norm``), an upper bound on it.
       expressible: ``residual <= tolerance`` (:func:`roundoff_tolerance`).
       delta: eigenvector misalignment ``(||U - V||_2 + 1)^2 - 1`` of the
         eigenvectors ``U`` of ``E`` against those ``V`` of ``S`` (columns
@@ -88,7 +98,11 @@ class Distance:
       residual_norm: ``"2"`` or ``"F"`` (Frobenius, iterative paths).
       relative_upper: an upper bound on ``||E||_2`` where ``relative`` is
         an estimate, else None.
-      solve: iterations, convergence and seconds of an iterative solve.
+      solve: iterations, convergence and seconds of an iterative solve; on
+        the eigenbasis path, how ``||E||_2`` (``norm_of_e``: ``eigh``, or
+        above :data:`MISALIGNMENT_LIMIT` nodes ``lanczos+cholesky``, a proved
+        upper bound within about 1e-9 of it, or ``eigvalsh``) and the
+        additive change (``eigvalsh`` or ``lanczos``) were measured.
     """
 
     relative: float
@@ -215,15 +229,23 @@ def sylvester_relative(s: np.ndarray, s_hat: np.ndarray, eig=None) -> SylvesterS
     computed. Returns a :class:`SylvesterSolution`."""
     lam, v = np.linalg.eigh(s) if eig is None else eig
     d = s_hat - s
-    dt = v.T @ d @ v
+    e, nsing = eigenbasis_solve(lam, v, v.T @ d @ v)
+    resid = sym_norm2(s @ e + e @ s - d)
+    return SylvesterSolution(e, resid, nsing, v)
+
+
+def eigenbasis_solve(lam: np.ndarray, v: np.ndarray, dt: np.ndarray) -> tuple[np.ndarray, int]:
+    """``(E, singular pairs)``: ``E = V Et V^T`` with ``Et_ij = Dt_ij /
+    (lam_i + lam_j)`` for ``Dt = V^T D V`` (docs/theory.md section 2), and
+    ``Et_ij = 0`` where ``|lam_i + lam_j| <= SINGULAR_TOL max |lam|``; two
+    dense products."""
     denom = lam[:, None] + lam[None, :]
-    r = max(np.max(np.abs(lam)), np.finfo(float).tiny)
+    r = max(np.max(np.abs(lam)), np.finfo(float).tiny) if lam.size else 1.0
     sing = np.abs(denom) <= SINGULAR_TOL * r
     et = np.where(sing, 0.0, dt / np.where(sing, 1.0, denom))
     e = v @ et @ v.T
     e = 0.5 * (e + e.T)
-    resid = sym_norm2(s @ e + e @ s - d)
-    return SylvesterSolution(e, resid, int(np.count_nonzero(sing)), v)
+    return e, int(np.count_nonzero(sing))
 
 
 class Alignment(NamedTuple):
@@ -445,35 +467,48 @@ def distance(a: ShiftOperator, b: ShiftOperator, *, align_nodes: bool = False, s
                          f"these graphs have {n}, so give them in the same node order and leave out --align.")
     if n > DISTANCE_LIMIT:
         return _distance_at_scale(a, b, say)
-    # the dense S, S_hat, their difference, eigenvectors, E and products
+    # the dense S, eigenvectors, Dt, E, the residual and the products
     require(dense_bytes(n, 10), f"a dense distance on {n} nodes")
     if align_nodes:
         say(f"aligning {n} nodes")
     al = align(a, b, seed, progress=say) if align_nodes else None
     perm = None if al is None else al.perm
-    s = a.dense()
-    s_hat = b.dense() if perm is None else b.dense()[perm][:, perm]
+    s_sp = a.matrix
+    d_sp = sp.csr_array((b.matrix if perm is None else b.matrix[perm][:, perm]) - s_sp)
+    d_sp.sum_duplicates()
     say("eigenvectors of S")
-    lam, v = np.linalg.eigh(s)
+    # One symmetric eigendecomposition (divide and conquer), reused below.
+    lam, v = sla.eigh(a.dense(), driver="evd", overwrite_a=True, check_finite=False)
     say("solving S E + E S = S_hat - S in the eigenbasis")
-    sol = sylvester_relative(s, s_hat, eig=(lam, v))
-    e, resid, nsing = sol.e, sol.residual, sol.singular_pairs
+    dt = v.T @ np.asarray(d_sp @ v)  # D is sparse: D V costs O(nnz(D) N), one dense product remains
+    dt = 0.5 * (dt + dt.T)
+    e, nsing = eigenbasis_solve(lam, v, dt)
+    r = np.asarray(s_sp @ e)  # S sparse: S E + E S = S E + (S E)^T for symmetric E, O(nnz(S) N)
+    r = r + r.T
+    coo = d_sp.tocoo()
+    r[coo.row, coo.col] -= coo.data  # canonical format: each (i, j) once
+    exact = n <= EXACT_NORM_LIMIT
+    say("norms and eigenvector misalignment" if n <= MISALIGNMENT_LIMIT else "norms")
     if n <= MISALIGNMENT_LIMIT:
-        say("norms and eigenvector misalignment")
         w_e, u_e = np.linalg.eigh(e)
         e_norm = float(max(abs(w_e[0]), abs(w_e[-1]))) if n else 0.0
+        how = "eigh"
     else:  # the misalignment's eigenvectors of E and assignment are left out at this size
-        say("norms")
-        e_norm, w_e, u_e = sym_norm2(e), None, None
-    d = s_hat - s
-    add = sym_norm2(d)
+        w_e = u_e = None
+        e_norm, how = norm2_upper(e)  # never below ||E||_2
+    if exact:
+        resid, add = sym_norm2(r), (sym_norm2(d_sp.toarray()) if d_sp.nnz else 0.0)
+    else:
+        resid = float(np.linalg.norm(r))  # ||R||_2 <= ||R||_F
+        add = _norm_estimate(d_sp) if d_sp.nnz else 0.0
     s_norm = float(max(abs(lam[0]), abs(lam[-1]))) if n else 0.0
     # ||S_hat||_2 <= ||S||_2 + ||S_hat - S||_2 (triangle inequality): a larger allowance, never a smaller one.
     tol = _tolerance(n, s_norm, s_norm + add, e_norm)
     ok = resid <= tol or add == 0.0
-    delta = misalignment(s, e, v, (w_e, u_e)) if w_e is not None else None
+    delta = misalignment(None, e, v, (w_e, u_e)) if w_e is not None else None
     return Distance(e_norm, resid, bool(ok), delta, add, align_nodes, perm,
-                    nsing, e, tol, al, _pair_sums(lam, v, d, add))
+                    nsing, e, tol, al, _pair_sums(lam, dt, add), residual_norm="2" if exact else "F",
+                    solve={"norm_of_e": how, "additive": "eigvalsh" if exact else "lanczos"})
 
 
 def _tolerance(n: int, s_norm: float, s_hat_norm: float, e_norm: float) -> float:
@@ -487,7 +522,6 @@ def _norm_estimate(m, budget_products: int = 300) -> float:
     Lanczos (``eigsh(which="LM")``) within a budget of products; a Ritz
     value, so never above the true norm. Falls back to the Frobenius norm
     (an upper bound) when Lanczos does not converge."""
-    import scipy.sparse as sp
     import scipy.sparse.linalg as spla
 
     n = m.shape[0]
@@ -517,8 +551,6 @@ def _distance_at_scale(a: ShiftOperator, b: ShiftOperator, say) -> Distance:
     solve = {"iterations": diag.iterations, "converged": diag.converged, "seconds": round(diag.seconds, 4),
              "rhs_norm": d_fro, "relative_residual_tolerance": ITERATIVE_RTOL}
     if diag.residual <= ITERATIVE_RTOL * d_fro or d_fro == 0.0:
-        import scipy.sparse as sp
-
         return Distance(float(np.max(np.abs(diag.e))) if n else 0.0, diag.residual, True, None, add, False, None,
                         0, sp.diags_array(diag.e), ITERATIVE_RTOL * d_fro, None, {}, "diagonal", "F", None,
                         {**solve, "solver": "lsqr"})
@@ -539,14 +571,14 @@ def _distance_at_scale(a: ShiftOperator, b: ShiftOperator, say) -> Distance:
                     "minres", "F", upper, solve)
 
 
-def _pair_sums(lam, v, d, add: float) -> dict:
+def _pair_sums(lam, dt, add: float) -> dict:
     """What drives ``||E||``: the eigenvalue range of ``S`` and the smallest
     ``|lam_i + lam_j|`` (relative to ``||S||_2``) among the pairs that carry
-    the change ``D = S_hat - S``, from the eigenpairs ``(lam, V)`` of ``S``.
-    On an indefinite ``S`` such pairs divide ``Dt_ij`` by a near-zero number
-    (docs/theory.md section 2)."""
+    the change ``D = S_hat - S``, from the eigenvalues ``lam`` of ``S`` and
+    ``Dt = V^T D V`` in its eigenbasis. On an indefinite ``S`` such pairs
+    divide ``Dt_ij`` by a near-zero number (docs/theory.md section 2)."""
     r = max(float(np.max(np.abs(lam))), np.finfo(float).tiny)
-    dt = np.abs(v.T @ d @ v)
+    dt = np.abs(dt)
     denom = np.abs(lam[:, None] + lam[None, :])
     live = (dt > 1e-12 * max(float(dt.max()), np.finfo(float).tiny)) & (denom > SINGULAR_TOL * r)
     smallest = float(np.min(denom[live]) / r) if np.any(live) else None

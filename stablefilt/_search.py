@@ -273,7 +273,9 @@ def lower_change(op: ShiftOperator, taps, basis: Basis, eps: float, *, eig=None,
     best, how = 0.0, "none"
     for sign in (1.0, -1.0):
         e = sign * eps
-        v = realised_change(functools.partial(relative_product, s, lambda x, e=e: e * x), s_mv, taps, basis, n, iters=iters,
+        # E = e I gives S + E S + S E = (1 + 2 e) S exactly: one product with S
+        # per step in place of the three of relative_product.
+        v = realised_change(lambda x, c=1.0 + 2.0 * e: c * (s @ x), s_mv, taps, basis, n, iters=iters,
                             deadline=deadline)
         if v > best:
             best, how = v, f"scaling E = {sign * eps:+g} I"

@@ -436,6 +436,51 @@ def test_misalignment_left_out_above_its_limit_with_the_same_distance(monkeypatc
     monkeypatch.setattr(dist, "MISALIGNMENT_LIMIT", 5)
     short = st.distance(a, b)
     assert short.delta is None and full.delta is not None
-    assert short.relative == pytest.approx(full.relative, rel=1e-12)
+    # Above the limit ||E||_2 is a proved upper bound (Lanczos + Cholesky,
+    # docs/theory.md s. 2), never below the eigh figure and within 1e-8 of it.
+    assert short.solve["norm_of_e"] in ("lanczos+cholesky", "eigvalsh")
+    assert full.relative * (1 - 1e-13) <= short.relative <= full.relative * (1 + 1e-8)
     assert short.relative == pytest.approx(0.02, rel=1e-8)  # ||E||_2 = 0.02 by construction (helpers.random_error)
     assert H.strict_json(__import__("json").dumps(short.as_dict()))["delta"] is None
+
+
+@pytest.mark.parametrize("name", sorted(PD))
+def test_large_graph_norms_against_scipy(name, monkeypatch):
+    """Above ``EXACT_NORM_LIMIT`` (lowered here) the residual is a Frobenius
+    norm and ``||E||_2`` a proved upper bound: checked against
+    ``scipy.linalg.solve_sylvester`` (Bartels-Stewart) and numpy's 2-norms,
+    for a relative change (expressible) and an additive one on ``L + I``
+    (every ``lam_i + lam_j > 0``, so expressible too, with a larger E)."""
+    s = PD[name]
+    op = sf.shift_operator(s)
+    monkeypatch.setattr(dist, "EXACT_NORM_LIMIT", 5)
+    monkeypatch.setattr(dist, "MISALIGNMENT_LIMIT", 5)
+    for change in ("relative", "additive"):
+        p = getattr(st, change)(op, 0.03, 7)
+        d_mat = p.op.dense() - s
+        ref = sla.solve_sylvester(s, s, d_mat)
+        out = st.distance(op, p.op)
+        true = np.linalg.norm(ref, 2)
+        assert out.residual_norm == "F" and out.solve["additive"] == "lanczos"
+        assert true * (1 - 1e-12) <= out.relative <= true * (1 + 1e-8)
+        assert np.max(np.abs(out.e - ref)) <= 1e-10 * true
+        assert 0.0 <= out.residual <= 1e-12  # round-off only: the change is expressible here
+        assert out.expressible
+        assert out.additive == pytest.approx(np.linalg.norm(d_mat, 2), rel=1e-7)
+
+
+def test_large_graph_residual_of_a_change_that_is_not_relative(monkeypatch):
+    """The bipartite case above ``EXACT_NORM_LIMIT`` (lowered): the Frobenius
+    residual is at least the 2-norm of the part on the dropped pairs (derived
+    as in test_bipartite_additive_change_is_not_expressible; numpy norms)."""
+    a = nx.to_numpy_array(nx.complete_bipartite_graph(5, 9))
+    lam, v = np.linalg.eigh(a)
+    op = sf.shift_operator(a)
+    p = st.additive(op, 0.05, 3)
+    monkeypatch.setattr(dist, "EXACT_NORM_LIMIT", 5)
+    d = st.distance(op, p.op)
+    kept = np.abs(lam[:, None] + lam[None, :]) > 1e-8 * np.max(np.abs(lam))
+    lost = v @ np.where(kept, 0.0, v.T @ (p.op.dense() - a) @ v) @ v.T
+    assert not d.expressible and d.residual_norm == "F"
+    assert d.residual == pytest.approx(np.linalg.norm(lost, "fro"), rel=1e-8)
+    assert d.residual >= np.linalg.norm(lost, 2) * (1 - 1e-9)
