@@ -48,9 +48,13 @@ def change_operator(s, s_hat, taps, basis: Basis) -> np.ndarray:
     out = []
     for m in (s_hat, s):
         w, v, hw = _dense_bank(m, taps, basis)
-        # V diag(h_f) V^T for every filter f as one batched product (an
-        # unoptimised three-operand einsum cost 60 ms here at N = 120, F = 16).
-        out.append(np.matmul(v[None] * hw.T[:, None, :], v.T))  # (F, N, N)
+        if hw.shape[1] == 1:
+            out.append(np.einsum("ia,af,ja->fij", v, hw, v))  # (1, N, N)
+        else:
+            # V diag(h_f) V^T for every filter f as one batched product (the
+            # three-operand einsum above cost 60 ms at N = 120, F = 16; kept
+            # for one filter, whose searches then round as they always did).
+            out.append(np.matmul(v[None] * hw.T[:, None, :], v.T))  # (F, N, N)
     d = out[0] - out[1]
     if taps.ndim == 1:
         return d[0]
