@@ -218,7 +218,10 @@ LOWRANK_RANK = 8
 def _ascent(params, spec, op, sop, x, x0, y0, eps, dense, free_input, rho, starts, iters, projection,
             progress=None):
     """Projected gradient ascent over dense or diagonal ``E`` from each start;
-    the best re-measured (float64) :class:`AttackResult`."""
+    the best re-measured (float64) :class:`AttackResult`. Its free-input
+    branch (the clean output held at the starting input) is the previous
+    free-input search, which :func:`attack` no longer uses (it runs
+    stablefilt._freeattack); tests/test_attack.py compares the two."""
     n = op.nodes
     best = None
     for name, e0, xs in starts:
