@@ -21,13 +21,14 @@ import numpy as np
 
 from ._checks import check_eps
 from ._compose import bank_change, change_cover, widened
-from ._filterbounds import FilterConstants, combine, filter_bounds, filter_constants, gain_constants
+from ._filterbounds import FilterConstants, bank_remainder, combine, filter_bounds, filter_constants, gain_constants
 from ._filters import Basis, check_taps
 from ._graph import ShiftOperator
 from ._interval import SpectralInterval, construction_interval, spectral_interval
-from ._joint import joint_factor
+from ._joint import eigen_cover, interval_cover, joint_factor
 from ._kernel import eigenvalue_slack
 from ._search import LOWER_EIG_LIMIT, lower_change
+from ._second import second_kernel, second_order
 
 
 def deployed_interval(kind: str):
@@ -138,14 +139,21 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
     slack = 0.0 if lam is None else eigenvalue_slack(lam)
     radius = interval.radius if lam is None else min(interval.radius, float(np.max(np.abs(lam))) + slack)
     joint = joint_factor(taps, basis, change_cover(lam, iv, slack), optimise=rebalance).constant
+    kern = _second_kernel(taps, basis, lam, slack, iv)
     bounds = []
     for eps in eps_list:
         eps = float(eps)
         fb = filter_bounds(taps, basis, iv, eps, consts, lam)
         wide = widened(iv, eps, interval.radius, deployed)
+        rem, form = bank_remainder(taps, basis, iv, eps).operator(), "whole bank, s.9.7"
+        if kern is not None:
+            so = second_order(taps, basis, iv, eps, kern).operator()
+            if so < rem:
+                rem, form = so, "second-order kernel, s.9.8"
         ch = bank_change(taps, basis, eps, first_order=fb.first_order, remainder=fb.remainder, joint=joint,
                          radius=radius, path_cover=change_cover(lam, iv, 2 * eps * radius + slack, deployed),
-                         gains=(float(consts.bank_sup), gain_constants(taps, basis, wide)[0]))
+                         gains=(float(consts.bank_sup), gain_constants(taps, basis, wide)[0]),
+                         bank_remainder=rem, remainder_form=form)
         published = combine(2 * np.asarray(consts.integral_lipschitz) * (1 + delta * np.sqrt(n)) * eps)
         al = consts.aligned_spectrum if consts.aligned_spectrum is not None else 2 * np.asarray(consts.integral_lipschitz)
         aligned = combine(np.asarray(al) * eps)
@@ -158,7 +166,8 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
         "interval_method": {"lower": interval.lower_method, "upper": interval.upper_method},
         "first_order": "kernel (Schur) bound: PSD split of the Gamma kernel in Chebyshev and monomial bases, "
                        + ("min over the interval and the graph's eigenvalues" if lam is not None else "over the interval"),
-        "remainder": "non-asymptotic second-order remainder, min of origin and centred forms (theory s.5 item 5)",
+        "remainder": "non-asymptotic second-order remainder, min of origin and centred forms (theory s.5 item 5), "
+                     "of the whole-bank form (s.9.7) and of the second-order kernel form (s.9.8)",
         "certified": "the smallest of: per-filter kernel bounds + remainders (bank: spectral norm of the per-filter "
                      "bounds); joint kernel bound + remainders (theory s.9.2); the whole-path bound (s.9.1); the "
                      "trivial sup ||H|| over spec S plus over spec S_hat; each with a round-off allowance; "
@@ -173,3 +182,21 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
         "suprema": consts.method,
     }
     return Certificate(n, interval, basis, float(delta), consts, tuple(bounds), assumptions)
+
+
+#: Largest ``F_in K`` for which the second-order kernel's supremum is taken
+#: over the interval (a grid of matrices of that size); with the eigenvalues
+#: it is always taken.
+SECOND_INTERVAL_LIMIT = 64
+
+
+def _second_kernel(taps, basis, lam, slack: float, iv):
+    """The bank's :class:`~stablefilt._second.SecondKernel` over the
+    eigenvalues, or over the interval for small banks, or None."""
+    t = np.asarray(taps)
+    fin_k = t.shape[0] * (t.shape[1] if t.ndim == 3 else 1)
+    if lam is not None:
+        return second_kernel(taps, basis, eigen_cover(lam, slack))
+    if fin_k <= SECOND_INTERVAL_LIMIT:
+        return second_kernel(taps, basis, interval_cover(*iv))
+    return None

@@ -81,7 +81,8 @@ def _widen(interval, by: float, deployed=None) -> tuple[float, float]:
 
 
 def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float, radius: float,
-                path_cover, gains, bank_remainder: float | None = None) -> BankChange:
+                path_cover, gains, bank_remainder: float | None = None,
+                remainder_form: str = "whole bank, s.9.7") -> BankChange:
     """``Delta`` of one filter or bank at ``eps``.
 
     Args:
@@ -90,16 +91,19 @@ def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float
       radius: ``R >= ||S||_2``.
       path_cover: a cover of the spectra along the path (:func:`change_cover`).
       gains: ``(B, B_hat)``, bounds on ``||H(S)||`` and ``||H(S_hat)||``.
-      bank_remainder: the whole bank's remainder (docs/theory.md 9.7), when known.
+      bank_remainder: the whole bank's remainder (docs/theory.md 9.7, 9.8), when known.
+      remainder_form: how ``bank_remainder`` was obtained (named in ``method``).
     """
     fo, rem = np.asarray(first_order), np.asarray(remainder)
     per = combine(fo + rem)
-    rem_c = combine(rem) if bank_remainder is None else min(combine(rem), bank_remainder)
+    rem_c, form = combine(rem), "per filter, s.5"
+    if bank_remainder is not None and bank_remainder < rem_c:
+        rem_c, form = bank_remainder, remainder_form
     joint_b = float(eps * joint * (1 + REL_ALLOW) + rem_c)
     path = path_bound(taps, basis, eps, radius, path_cover)
     trivial = float(gains[0] + gains[1])
     options = [(per, combine(fo), "per-filter kernel + remainder"),
-               (joint_b, float(eps * joint), "joint kernel + remainder"),
+               (joint_b, float(eps * joint), f"joint kernel + remainder ({form})"),
                (path.certified, path.first, f"whole path ({path.form})"),
                (trivial, trivial, "trivial: B + B_hat")]
     best = min(options, key=lambda o: o[0])
@@ -245,7 +249,7 @@ def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChan
         changes.append(bank_change(layer["taps"], spec.basis, eps, first_order=lb.beta - lb.remainder,
                                    remainder=lb.remainder, joint=extra.joint.constant, radius=cc.radius,
                                    path_cover=pcover, gains=(lb.gain, b_hat),
-                                   bank_remainder=lb.bank_remainder()))
+                                   bank_remainder=lb.bank_remainder(), remainder_form=lb.remainder_form()))
     rc, rg, rr = None, None, None
     if cc.readout is not None:
         ro = cc.readout

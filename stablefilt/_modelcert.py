@@ -176,6 +176,15 @@ class LayerBound(NamedTuple):
             out = min(out, self.second.operator())
         return out
 
+    def remainder_form(self) -> str:
+        """Which form gives :meth:`bank_remainder` (named in the certificate's method)."""
+        forms = [(combine(self.remainder), "per filter, s.5")]
+        if self.bank is not None:
+            forms.append((self.bank.operator(), "whole bank, s.9.7"))
+        if self.second is not None:
+            forms.append((self.second.operator(), "second-order kernel, s.9.8"))
+        return min(forms, key=lambda f: f[0])[1]
+
     def input_remainder(self, x) -> np.ndarray:
         """Per signal of ``x`` ``(B, N, F_in)``, the smallest of the per-filter
         remainders weighted by feature norms, the whole-bank form and the
