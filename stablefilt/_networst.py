@@ -149,13 +149,16 @@ def _worst_linear(setup: _Setup, top: int, stacked, iters: int) -> float:
     scale = float(np.linalg.norm(c, 2)) ** 2 * k + 1e-300
     delta = 1e-12 * scale
     dim = c.shape[1]
-    w = np.einsum("kis,kit->ist", t, t, optimize=True) / d  # Omega = I / d
+    # Layouts for plain matrix products: tt (N, d, F), t2 (d, N F).
+    tt = np.ascontiguousarray(np.swapaxes(t, 0, 1))
+    t2 = t.reshape(d, n * f)
+    w = np.matmul(np.swapaxes(tt, 1, 2), tt) / d  # Omega = I / d: (N, F, F)
     phi2 = np.einsum("ia,ib->iab", phi, phi).reshape(n, k * k)
     best = np.inf
     for it in range(iters):
         val, g = value_and_gradient(c, w, phi2, k, delta)
-        gt = np.einsum("ist,kit->kis", g, t, optimize=True)
-        h = np.einsum("kis,lis->kl", t, gt, optimize=True)
+        gt = np.matmul(tt, np.swapaxes(g, 1, 2))  # (N, d, F): sum_t g[i, s, t] t[k, i, t]
+        h = t2 @ np.swapaxes(gt, 0, 1).reshape(d, n * f).T  # T^T G T, (d, d)
         hv, hw = np.linalg.eigh(0.5 * (h + h.T))
         top_val = float(hv[-1])
         inner = float(np.sum(g * w))
@@ -164,10 +167,10 @@ def _worst_linear(setup: _Setup, top: int, stacked, iters: int) -> float:
         bound = val * (1 + 64 * dim * UNIT) + top_val + 1e-9 * abs(top_val) + 1e-9 * abs(inner) \
             + 64 * d * UNIT * float(np.abs(hv).max()) - inner
         best = min(best, bound)
-        tu = np.einsum("k,kis->is", hw[:, -1], t, optimize=True)
+        tu = (hw[:, -1] @ t2).reshape(n, f)
         step = 2.0 / (it + 3.0)
         w *= 1 - step
-        w += step * np.einsum("is,it->ist", tu, tu)
+        w += step * (tu[:, :, None] * tu[:, None, :])
     return max(best, 0.0) * (1 + REL_ALLOW)
 
 
