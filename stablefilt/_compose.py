@@ -115,6 +115,33 @@ def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float
 
 
 @dataclasses.dataclass(frozen=True)
+class BiasBank:
+    """The previous layer's bias ``c = 1_N b^T`` through a bank: ``H(S) c =
+    G(S) 1_N`` for the one-input bank ``G`` of taps ``beta_k = c_k^T b``
+    (docs/theory.md 9.3), so ``||(H - H_hat) c|| <= sqrt(N) Delta(G)``.
+
+    Attributes:
+      taps: ``beta`` ``(K, 1, F_out)``.
+      filters: its :class:`FilterConstants`.
+      joint: its joint factorisation.
+      rows: ``sqrt(N) = ||1_N||``.
+    """
+
+    taps: np.ndarray
+    filters: FilterConstants
+    joint: JointFactor
+    rows: float
+
+
+def _bias_bank(taps, bias, basis, interval, lam, cover, nodes: int, rebalance: bool) -> BiasBank | None:
+    if bias is None:
+        return None
+    beta = np.einsum("kfg,f->kg", np.asarray(taps, dtype=np.float64), np.asarray(bias, dtype=np.float64))[:, None, :]
+    return BiasBank(beta, filter_constants(beta, basis, interval, lam, pairwise=False),
+                    joint_factor(beta, basis, cover, optimise=rebalance), float(np.sqrt(nodes)))
+
+
+@dataclasses.dataclass(frozen=True)
 class LayerExtra:
     """Eps-free constants of one layer for the composition.
 
@@ -123,12 +150,14 @@ class LayerExtra:
       right: ``J`` of the bank after the previous one (per unit eps), or None.
       cross: a bound on ``||H^T c||_F`` for the bias ``c = 1_N b^T``, or None.
       bias_norm: ``||c||_F = sqrt(N) ||b||``.
+      bias_bank: the previous layer's bias through this bank, or None.
     """
 
     joint: JointFactor
     right: float | None
     cross: float | None
     bias_norm: float
+    bias_bank: BiasBank | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -139,6 +168,7 @@ class ReadoutExtra:
     filters: FilterConstants
     joint: JointFactor
     right: float | None
+    bias_bank: BiasBank | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -196,7 +226,9 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         bias_norm = float(np.sqrt(nodes) * np.linalg.norm(bias)) * (1 + REL_ALLOW) if bias is not None else 0.0
         cross = bias_cross(taps, spec.basis, matrix, bias) + 1e-9 * float(filters[i].bank_sup) * bias_norm \
             if (bias is not None and matrix is not None) else None
-        extras.append(LayerExtra(jf, right, cross, bias_norm))
+        bb = None if i == 0 else _bias_bank(taps, layers[i - 1].get("bias"), spec.basis, (a, b), lam, cover0, nodes,
+                                            rebalance)
+        extras.append(LayerExtra(jf, right, cross, bias_norm, bb))
     readout = None
     w = params.get("readout", {}).get("weight") if spec.readout != "none" else None
     wn = float(np.linalg.norm(np.asarray(w, dtype=np.float64), 2)) * (1 + REL_ALLOW) if w is not None else 1.0
@@ -205,7 +237,9 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         cw = filter_constants(comp, spec.basis, (a, b), lam, pairwise=False)
         jw = joint_factor(comp, spec.basis, cover0, optimise=rebalance)
         rw = None if len(layers) < 2 else schur_constant(comp, spec.basis, cover0, "gamma", True, right=layers[-2]["taps"])
-        readout = ReadoutExtra(comp, cw, jw, rw)
+        rb = None if len(layers) < 2 else _bias_bank(comp, layers[-2].get("bias"), spec.basis, (a, b), lam, cover0,
+                                                     nodes, rebalance)
+        readout = ReadoutExtra(comp, cw, jw, rw, rb)
     alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
     return CompositionConstants(tuple(extras), readout, wn, alpha, None if deployed is None else tuple(deployed),
                                 float(radius), float(slack), bool(rebalance))
@@ -231,6 +265,20 @@ class LayerChanges:
     readout_change: BankChange | None
     readout_gain_hat: float | None
     readout_remainder: np.ndarray | None = None
+    bias_changes: tuple = ()
+    readout_bias_change: float | None = None
+
+
+def _bias_change(bb: BiasBank | None, spec, eps: float, interval, lam, pcover, wide, radius: float):
+    """``sqrt(N) Delta(G)`` for a :class:`BiasBank` at ``eps`` (docs/theory.md 9.3), or None."""
+    if bb is None:
+        return None
+    fb = filter_bounds(bb.taps, spec.basis, interval, eps, bb.filters, lam)
+    g_hat, _ = gain_constants(bb.taps, spec.basis, wide)
+    ch = bank_change(bb.taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
+                     joint=bb.joint.constant, radius=radius, path_cover=pcover,
+                     gains=(float(bb.filters.bank_sup), float(g_hat)))
+    return float(bb.rows * ch.certified * (1 + REL_ALLOW))
 
 
 def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChanges:
@@ -259,7 +307,11 @@ def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChan
                          joint=ro.joint.constant, radius=cc.radius, path_cover=pcover,
                          gains=(float(ro.filters.bank_sup), rg))
         rg, rr = float(rg), np.asarray(fb.remainder)
-    return LayerChanges(tuple(changes), tuple(gains_hat), rc, rg, rr)
+    biases = tuple(_bias_change(extra.bias_bank, spec, eps, (a, b), lam, pcover, wide, cc.radius)
+                   for extra in cc.layers)
+    rbias = None if cc.readout is None else _bias_change(cc.readout.bias_bank, spec, eps, (a, b), lam, pcover, wide,
+                                                         cc.radius)
+    return LayerChanges(tuple(changes), tuple(gains_hat), rc, rg, rr, biases, rbias)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -283,15 +335,19 @@ class ComposedBound:
     clean_norms: tuple[float, ...]
 
 
-def _through(i, delta, rem, right, cc, norms, gains, ca, cb):
+def _through(i, delta, rem, right, cc, norms, gains, ca, cb, bias_change=None):
     """Bound on ``||(H_i - H_hat_i) x_{i-1}||`` over the inputs: ``Delta
-    n_{i-1}``, or through the previous bank (docs/theory.md 9.3)."""
+    n_{i-1}``, or through the previous bank, with the previous bias apart
+    when ``bias_change`` bounds ``||(H_i - H_hat_i) c||`` (docs/theory.md 9.3)."""
     plain = delta * norms[i]
-    if i == 0 or right is None:
+    if i == 0 or (right is None and bias_change is None):
         return plain
     prev = cc.layers[i - 1]
-    d_right = min(right + rem * gains[i - 1], delta * gains[i - 1])
+    d_right = delta * gains[i - 1] if right is None else min(right + rem * gains[i - 1], delta * gains[i - 1])
     nested = ca * d_right * norms[i - 1] + cb * delta * gains[i - 1] * norms[i - 1] + delta * prev.bias_norm
+    if bias_change is not None:
+        nested = min(nested, ca * d_right * norms[i - 1] + ca * min(bias_change, delta * prev.bias_norm)
+                     + cb * delta * norms[i])
     return min(plain, nested)
 
 
@@ -312,7 +368,8 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
     for i, (ch, lb) in enumerate(zip(lc.changes, bounds)):
         rem = lb.bank_remainder()
         right = None if cc.layers[i].right is None else eps * cc.layers[i].right
-        d = _through(i, ch.certified, rem, right, cc, norms, gains, ca, cb)
+        bias_ch = lc.bias_changes[i] if lc.bias_changes else None
+        d = _through(i, ch.certified, rem, right, cc, norms, gains, ca, cb, bias_ch)
         deltas.append(d)
         if i < spec.depth - 1:
             e = d + lc.gains_hat[i] * e
@@ -323,7 +380,7 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
         alpha_l = cc.slope_low if spec.final_nonlinearity else 1.0
         right = None if cc.readout.right is None else eps * cc.readout.right
         dw = _through(spec.depth - 1, lc.readout_change.certified, combine(lc.readout_remainder), right, cc, norms,
-                      gains, ca, cb)
+                      gains, ca, cb, lc.readout_bias_change)
         through = dw + lc.readout_gain_hat * e
         out = min(out, 0.5 * (1 + alpha_l) * through + 0.5 * (1 - alpha_l) * cc.weight_norm * e_last)
     trivial = rf * (norms[-1] + norms_hat[-1])

@@ -77,3 +77,33 @@ def test_same_kind_deployment_is_recorded_and_tighter(graph_ops):  # noqa: F811
     assert same.at(0.3).certified <= any_kind.at(0.3).certified
     assert "[0, 2]" in same.assumptions["deployed_graph"]
     assert "Weyl" in any_kind.assumptions["deployed_graph"]
+
+
+def test_bias_through_a_bank_is_a_one_input_bank():
+    """H(S) (1_N b^T) = G(S) 1_N for the one-input bank of taps beta_k = c_k^T b
+    (docs/theory.md 9.3), on S and on a perturbed S_hat alike, so the change of
+    the bias through a bank is that bank's change on 1_N; checked with numpy's
+    eigh on the karate club (networkx). Taps c_k b (the transpose) are wrong."""
+    import networkx as nx
+
+    from stablefilt import Basis, shift_operator
+    from stablefilt._filters import frequency_response
+
+    op = shift_operator(nx.to_numpy_array(nx.karate_club_graph()), "normalized-laplacian")
+    s, n = op.dense(), op.nodes
+    basis = Basis("chebyshev", (0.0, 2.0))
+    rng = np.random.default_rng(4)
+    taps = rng.standard_normal((4, 3, 3))
+    b = rng.standard_normal(3)
+    beta = np.einsum("kfg,f->kg", taps, b)[:, None, :]
+    wrong = np.einsum("kfg,g->kf", taps, b)[:, None, :]
+    e = H.random_error(rng, n, 0.05)
+    for mat in (s, s + e @ s + s @ e):
+        lam, v = np.linalg.eigh(mat)
+
+        def apply(t, x, lam=lam, v=v):
+            return v @ np.einsum("if,ifg->ig", v.T @ x, frequency_response(t, lam, basis))
+
+        want = apply(taps, np.ones((n, 1)) * b[None, :])
+        np.testing.assert_allclose(apply(beta, np.ones((n, 1))), want, rtol=1e-10, atol=1e-10)
+        assert np.abs(apply(wrong, np.ones((n, 1))) - want).max() > 1e-3
