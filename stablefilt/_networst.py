@@ -285,15 +285,12 @@ def network_worst(params, spec, lam, vecs, x, eps: float, *, slack: float, chain
         switched = masked * switch_last
         if live_last.size and switch_last > 0:
             # g(0) = diag(theta) mu with theta_u between 0 and (1 - alpha) w_u s_u
-            # (s_u = +1 on units that are off, -1 on those on): averaging gives
-            # ((1 - alpha) / 2) (sup ||Rd (w s o mu)|| + ||Rd P_U|| s_L) (docs/theory.md 9.6).
+            # (s_u = +1 on units that are off, -1 on those on): averaging, with the
+            # signed half under the same E as the linear part,
+            # ||Rd(lambda_L + g(0))|| <= sup ||Rd((D_L + (1 - alpha) w o s / 2) o mu_L)||
+            # + ((1 - alpha) / 2) ||Rd P_U|| s_L (docs/theory.md 9.6).
             ws = np.zeros(n * f_l)
             ws[live_last] = weights_last * np.where(setup.pre[last].ravel()[live_last] > 0, -1.0, 1.0)
-            y2 = rd.T.reshape(-1, n, f_l) * ws.reshape(n, f_l)[None]
-            stacked2 = np.concatenate(setup.adjoint_chain(last, y2), axis=2)
-            signed = eps * (_worst_linear(setup, last, stacked2, iters) + _carried_error(setup, last, gains, masked))
-            switched = min(switched, 0.5 * (signed * (1.0 - alpha) + switched))
-            # Or with the linear part under the same E: Rd((D_L + (1 - alpha) w o s / 2) o mu_L).
             y3 = rd.T.reshape(-1, n, f_l) * (setup.slopes[last] + 0.5 * (1.0 - alpha) * ws.reshape(n, f_l))[None]
             stacked3 = np.concatenate(setup.adjoint_chain(last, y3), axis=2)
             merged = _worst_linear(setup, last, stacked3, iters) + _carried_error(setup, last, gains, readout_norm)
