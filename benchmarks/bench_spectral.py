@@ -70,6 +70,23 @@ def _laplacian(n: int, seed: int) -> sp.csr_array:
 def _load() -> str:
     return "load average " + ", ".join(f"{x:.2f}" for x in os.getloadavg())
 
+def _versus_import(cmd, rounds: int):
+    """Median wall time of the command ``cmd`` (a new process, JSON on
+    stdout) and of ``python -c 'import stablefilt'`` alone, interleaved in
+    each round; and the command's last JSON output."""
+    ref_cmd = [sys.executable, "-c", "import stablefilt"]
+    rows, out = [], None
+    for _ in range(rounds):
+        t0 = time.perf_counter()
+        subprocess.run(ref_cmd, check=True, capture_output=True)
+        t1 = time.perf_counter()
+        got = subprocess.run(cmd, check=True, capture_output=True, text=True)
+        t2 = time.perf_counter()
+        out = json.loads(got.stdout)
+        rows.append((t2 - t1, t1 - t0))
+    return float(np.median([r[0] for r in rows])), float(np.median([r[1] for r in rows])), out
+
+
 
 def bench_bound(n: int, rounds: int) -> dict:
     op = sf.shift_operator(_laplacian(n, 1))
@@ -107,17 +124,7 @@ def bench_cli(n: int, rounds: int) -> dict:
         sp.save_npz(graph, sp.csr_matrix(_laplacian(n, 1)))
         save_filter(filt, np.array([1.0, -0.1, 0.01]), sf.make_basis())
         cmd = [sys.executable, "-m", "stablefilt.cli", "bound", graph, filt, "--eps", "0.01", "--json"]
-        ref_cmd = [sys.executable, "-c", "import stablefilt"]
-        rows, out = [], None
-        for _ in range(rounds):
-            t0 = time.perf_counter()
-            subprocess.run(ref_cmd, check=True, capture_output=True)
-            t1 = time.perf_counter()
-            got = subprocess.run(cmd, check=True, capture_output=True, text=True)
-            t2 = time.perf_counter()
-            out = json.loads(got.stdout)
-            rows.append((t2 - t1, t1 - t0))
-    bound_s, ref_s = (float(np.median([r[i] for r in rows])) for i in (0, 1))
+        bound_s, ref_s, out = _versus_import(cmd, rounds)
     ends = out["interval_ends"]
     print(f"stablefilt bound N = {n} (new process): {bound_s:.2f} s; reference 'import stablefilt' alone "
           f"{ref_s:.2f} s, ratio {bound_s / ref_s:.2f}, difference {bound_s - ref_s:.2f} s; last run: lower end by "
@@ -169,17 +176,7 @@ def bench_certify(n: int, rounds: int) -> dict:
         with open(os.path.join(run, "log.jsonl")) as fh:
             epoch_s = float(json.loads(fh.readline())["seconds"])
         cmd = [sys.executable, "-m", "stablefilt.cli", "certify", run, "--quiet", "--json"]
-        ref_cmd = [sys.executable, "-c", "import stablefilt"]
-        rows, out = [], None
-        for _ in range(rounds):
-            t0 = time.perf_counter()
-            subprocess.run(ref_cmd, check=True, capture_output=True)
-            t1 = time.perf_counter()
-            got = subprocess.run(cmd, check=True, capture_output=True, text=True)
-            t2 = time.perf_counter()
-            out = json.loads(got.stdout)
-            rows.append((t2 - t1, t1 - t0))
-    cert_s, ref_s = (float(np.median([r[i] for r in rows])) for i in (0, 1))
+        cert_s, ref_s, out = _versus_import(cmd, rounds)
     ends = out["interval_ends"]
     print(f"stablefilt certify N = {n} (new process, one-filter run): {cert_s:.2f} s; reference 'import stablefilt' "
           f"alone {ref_s:.2f} s, ratio {cert_s / ref_s:.2f}; upper end by {ends['upper']['method']} "

@@ -23,7 +23,7 @@ from math import comb
 import numpy as np
 
 from ._exact import UNIT, second_transform
-from ._filterbounds import bank_remainder
+from ._filterbounds import BankRemainder, bank_remainder
 from ._filters import Basis, basis_values
 from ._joint import Cover, _sup_lambda_max
 from ._series import with_allowance
@@ -71,7 +71,11 @@ def second_kernel(taps, basis: Basis, cover: Cover) -> SecondKernel:
     p_err = (np.einsum("fgsbt,hgscu->ftbhuc", at, t_err, optimize=True)
              + np.einsum("fgsbt,hgscu->ftbhuc", t_err, at + t_err, optimize=True)
              + 2.0 * (terms + 2) * UNIT * np.einsum("fgsbt,hgscu->ftbhuc", at, at, optimize=True))
-    top = float(_sup_lambda_max(p, p_err.reshape(p.shape), fin * k, k, cover)[0])
+    # Points in chunks, so that the matrices evaluated at once stay near 4M entries.
+    step = max(1, 4_000_000 // (fin * k) ** 2)
+    top = max(float(_sup_lambda_max(p, p_err.reshape(p.shape), fin * k, k,
+                                    dataclasses.replace(cover, t=cover.t[i:i + step]))[0])
+              for i in range(0, len(cover.t), step))
     t.setflags(write=False)
     t_err.setflags(write=False)
     return SecondKernel(t, t_err, cover.split, float(with_allowance(np.sqrt(max(top, 0.0)), 0.0)),
@@ -92,39 +96,24 @@ class SecondOrder:
       kernel: the eps-free :class:`SecondKernel`.
       eps: the perturbation size.
       quadratic: ``eps^2 K b``, the bound on the two-factor words per unit ``||X||_F``.
-      tails: ``t3_j``, ``(K,)``.
-      coefficients, errors, powers: as in
-        :class:`stablefilt._filterbounds.BankRemainder`.
+      third: the words with three or more factors ``D``: a
+        :class:`~stablefilt._filterbounds.BankRemainder` with tails ``t3_j``.
     """
 
     kernel: SecondKernel
     eps: float
     quadratic: float
-    tails: np.ndarray
-    coefficients: np.ndarray
-    errors: np.ndarray
-    powers: np.ndarray
+    third: BankRemainder
 
     def operator(self) -> float:
         """For every ``||X||_F <= 1``."""
-        norms = np.array([np.linalg.norm(g, 2) + np.linalg.norm(e) for g, e in zip(self.coefficients, self.errors)])
-        total = self.quadratic + float(np.dot(self.tails, norms))
-        return float(with_allowance(total, float(np.dot(self.powers, norms)) + self.quadratic))
-
-    def _third(self, x):
-        xn = np.sqrt(np.sum(x**2, axis=(1, 2)))
-        out, scale = np.zeros(x.shape[0]), np.zeros(x.shape[0])
-        for t, p, g, e in zip(self.tails, self.powers, self.coefficients, self.errors):
-            term = np.sqrt(np.sum(np.einsum("bnf,fg->bng", x, g) ** 2, axis=(1, 2))) + xn * np.linalg.norm(e)
-            out = out + t * term
-            scale = scale + p * term
-        return out, scale, xn
+        return float(with_allowance(self.quadratic + self.third.operator(), self.quadratic))
 
     def inputs(self, x) -> np.ndarray:
         """Per signal of ``x`` ``(B, N, F_in)``: ``eps^2 K b ||X||_F + sum_j t3_j ||X g_j||_F``."""
         x = np.asarray(x, dtype=np.float64)
-        out, scale, xn = self._third(x)
-        return with_allowance(out + self.quadratic * xn, scale + self.quadratic * xn)
+        quad = self.quadratic * np.sqrt(np.sum(x**2, axis=(1, 2)))
+        return with_allowance(quad + self.third.inputs(x), quad)
 
     def spectral(self, x, lam, vecs, slack: float) -> np.ndarray:
         """Per signal of ``x`` ``(B, N, F_in)``, the weighted form of
@@ -151,7 +140,7 @@ class SecondOrder:
         move = slack * float(np.sum(2.0 * kb**2 / (hi - lo) * per_b)) + float(np.linalg.norm(kern.errors)) * k \
             + 4.0 * k * UNIT * float(np.linalg.norm(np.abs(t)))
         dz = slack * float(np.max(2.0 * kb**2 / (hi - lo)))  # |phi_t| moves by at most this
-        third, scale, xn = self._third(x)
+        third = self.third.inputs(x)
         out = np.empty(x.shape[0])
         for i in range(x.shape[0]):
             xt = vecs.T @ x[i]  # (N, F_in)
@@ -175,7 +164,7 @@ class SecondOrder:
                 best = min(best, root_c * root_tr)
             quad = self.eps * self.eps * np.sqrt(k) * best
             out[i] = quad
-        return np.minimum(plain, with_allowance(third + out, scale + out))
+        return np.minimum(plain, with_allowance(third + out, out))
 
 
 def _tails3(x: float, y: float, k: int) -> np.ndarray:
@@ -193,4 +182,5 @@ def second_order(taps, basis: Basis, interval, eps: float, kernel: SecondKernel)
     half = max(b - mid, mid - a) * (1 + 4 * UNIT)
     d = 2.0 * eps * max(abs(a), abs(b))
     quad = float(with_allowance(eps * eps * k * kernel.sup, 0.0))
-    return SecondOrder(kernel, float(eps), quad, _tails3(half, d, k), br.coefficients, br.errors, br.powers)
+    third = BankRemainder(_tails3(half, d, k), br.coefficients, br.errors, br.powers)
+    return SecondOrder(kernel, float(eps), quad, third)

@@ -296,3 +296,28 @@ def one_line_exit_2(capsys, argv):
     assert len(lines) == 1 and "Traceback" not in err, err
     assert lines[0].startswith("stablefilt ") and lines[0].endswith(".")
     return lines[0]
+
+def bank_apply(s, taps, basis, x):
+    """``sum_k p_k(S) X c_k`` by dense eigendecomposition (numpy ``eigh``)."""
+    from stablefilt._filters import frequency_response
+
+    lam, v = np.linalg.eigh(s)
+    h = frequency_response(taps, lam, basis)  # (N, F_in, F_out)
+    return v @ np.einsum("if,ifg->ig", v.T @ x, h)
+
+
+def bank_first_order(s, taps, basis, d, x):
+    """The first-order change of a bank by the Daleckii-Krein formula (Bhatia,
+    "Matrix Analysis", 1997, Thm V.3.3): ``V (D~ o h^[1]) V^T`` per filter,
+    summed over inputs, with numpy ``eigh``."""
+    from stablefilt._filters import frequency_response, response_derivative
+
+    lam, v = np.linalg.eigh(s)
+    h = frequency_response(taps, lam, basis)
+    dh = response_derivative(taps, lam, basis)
+    diff = lam[:, None] - lam[None, :]
+    close = np.abs(diff) < 1e-9
+    safe = np.where(close, 1.0, diff)
+    l1 = np.where(close[:, :, None, None], 0.5 * (dh[:, None] + dh[None, :]),
+                  (h[:, None] - h[None, :]) / safe[:, :, None, None])  # (N, N, F_in, F_out)
+    return v @ np.einsum("ij,ijfg,jf->ig", v.T @ d @ v, l1, v.T @ x)

@@ -22,30 +22,10 @@ import pytest
 
 from stablefilt import Basis, shift_operator, spectral_interval
 from stablefilt._exact import second_transform
-from stablefilt._filters import basis_values, frequency_response, response_derivative
+from stablefilt._filters import basis_values
 from stablefilt._joint import eigen_cover
 from stablefilt._kernel import eigenvalue_slack
 from stablefilt._second import second_kernel, second_order
-
-
-def _bank_apply(s, taps, basis, x):
-    """``sum_k p_k(S) X c_k`` by dense eigendecomposition (numpy)."""
-    lam, v = np.linalg.eigh(s)
-    h = frequency_response(taps, lam, basis)  # (N, F_in, F_out)
-    return v @ np.einsum("if,ifg->ig", v.T @ x, h)
-
-
-def _first_order(s, taps, basis, d, x):
-    """Daleckii-Krein: ``V (D~ o h^[1]) V^T`` per filter, summed over inputs."""
-    lam, v = np.linalg.eigh(s)
-    h = frequency_response(taps, lam, basis)
-    dh = response_derivative(taps, lam, basis)
-    diff = lam[:, None] - lam[None, :]
-    close = np.abs(diff) < 1e-9
-    safe = np.where(close, 1.0, diff)
-    l1 = np.where(close[:, :, None, None], 0.5 * (dh[:, None] + dh[None, :]),
-                  (h[:, None] - h[None, :]) / safe[:, :, None, None])
-    return v @ np.einsum("ij,ijfg,jf->ig", v.T @ d @ v, l1, v.T @ x)
 
 
 def _setting(name, kind, bkind):
@@ -67,7 +47,7 @@ def test_kernel_gives_the_second_order_term(bkind):
     d = e @ s + s @ e
     # The t^2 coefficient of the degree-(K-1) polynomial t -> H(S + t D) X (numpy).
     ts = np.linspace(-1.0, 1.0, k)
-    vals = np.stack([_bank_apply(s + t * d, taps, basis, x) for t in ts])  # (K, N, F_out)
+    vals = np.stack([H.bank_apply(s + t * d, taps, basis, x) for t in ts])  # (K, N, F_out)
     coef = np.linalg.solve(np.vander(ts, k, increasing=True), vals.reshape(k, -1))
     want = coef[2].reshape(n, -1)
     lam, v = np.linalg.eigh(s)
@@ -116,8 +96,8 @@ def test_second_order_bounds_the_dense_remainder(case):
                                                                     eps * np.eye(n), -eps * np.eye(n)]
             for e in es:
                 d = e @ s + s @ e
-                rem = (_bank_apply(s + d, taps, basis, x) - _bank_apply(s, taps, basis, x)
-                       - _first_order(s, taps, basis, d, x))
+                rem = (H.bank_apply(s + d, taps, basis, x) - H.bank_apply(s, taps, basis, x)
+                       - H.bank_first_order(s, taps, basis, d, x))
                 got = float(np.linalg.norm(rem))
                 assert got <= spectral, (case, eps, got, spectral)
                 worst_ratio = max(worst_ratio, got / spectral)
