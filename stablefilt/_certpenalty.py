@@ -202,15 +202,28 @@ def _clean_norm(n, b, cross, beta):
     return jnp.minimum(plain, _sqrt(b * b * n * n + 2.0 * n * cross + beta * beta))
 
 
-def _through(i, d, right, norms, gains, betas, ca, cb):
+def _through(i, d, right, norms, gains, betas, ca, cb, bias_d=None):
     """Per unit eps, the change of layer ``i``'s output before the
-    nonlinearity (docs/theory.md s.11; 9.3 at first order)."""
+    nonlinearity (docs/theory.md s.11; 9.3 at first order); ``bias_d`` the
+    change of the previous bias through the bank (the one-input bank of taps
+    ``c_k^T b`` on ``1_N``), or None."""
     plain = d * norms[i]
     if i == 0 or right is None:
         return plain
-    nested = (ca * jnp.minimum(right, d * gains[i - 1]) * norms[i - 1] + cb * d * gains[i - 1] * norms[i - 1]
-              + d * betas[i - 1])
+    through_prev = ca * jnp.minimum(right, d * gains[i - 1]) * norms[i - 1]
+    nested = through_prev + cb * d * gains[i - 1] * norms[i - 1] + d * betas[i - 1]
+    if bias_d is not None:
+        nested = jnp.minimum(nested, through_prev + ca * jnp.minimum(bias_d, d * betas[i - 1]) + cb * d * norms[i])
     return jnp.minimum(plain, nested)
+
+
+def _bias_d(taps, bias, basis, split, pts, phi, nodes: int):
+    """``sqrt(N) J`` of the one-input bank of taps ``c_k^T b`` (docs/theory.md
+    9.3), or None without a bias."""
+    if bias is None:
+        return None
+    beta = jnp.einsum("kfg,f->kg", taps, jnp.asarray(bias))[:, None, :]
+    return np.sqrt(nodes) * _bank(beta, basis, split, pts, phi)[0]
 
 
 def certified_penalty(params, setup: CertifiedSetup):
@@ -258,7 +271,9 @@ def certified_penalty(params, setup: CertifiedSetup):
     e = 0.0
     e_prev = 0.0
     for i in range(depth):
-        d = _through(i, ds[i], rights[i], norms, gains, betas, ca, cb)
+        bias_d = None if i == 0 else _bias_d(jnp.asarray(layers[i]["taps"]), layers[i - 1].get("bias"), basis, split,
+                                             pts, phi, setup.nodes)
+        d = _through(i, ds[i], rights[i], norms, gains, betas, ca, cb, bias_d)
         e_prev, e = e, d + gains[i] * e
     out = e * _readout_factor(params, spec, setup.nodes)
     if spec.readout == "node":
@@ -266,7 +281,8 @@ def certified_penalty(params, setup: CertifiedSetup):
         comp = jnp.einsum("kfg,gc->kfc", jnp.asarray(layers[-1]["taps"]), w)
         prev = None if (depth < 2 or rmap is None) else jnp.asarray(layers[-2]["taps"])
         dw, rw = _bank(comp, basis, split, pts, phi, prev, rmap)
-        through = _through(depth - 1, dw, rw, norms, gains, betas, ca, cb) + gain(comp, basis, pts) * e_prev
+        bias_w = None if depth < 2 else _bias_d(comp, layers[-2].get("bias"), basis, split, pts, phi, setup.nodes)
+        through = _through(depth - 1, dw, rw, norms, gains, betas, ca, cb, bias_w) + gain(comp, basis, pts) * e_prev
         al = alpha if spec.final_nonlinearity else 1.0
         wn = _sqrt(_top(w.T @ w if w.shape[1] <= w.shape[0] else w @ w.T))
         out = jnp.minimum(out, 0.5 * (1 + al) * through + 0.5 * (1 - al) * wn * e)

@@ -11,7 +11,8 @@ max_i |M_ii|)`` (Higham, "Accuracy and Stability of Numerical Algorithms",
 R`` with ``|dA| <= gamma_(N+1) |R^T| |R|``). Two factorisations cost ``2/3
 N^3`` flops in level-3 BLAS, against ``4/3 N^3``, half of them level-2, for
 the tridiagonal reduction behind ``eigvalsh``. When no factorisation
-completes for ``t`` in :data:`MARGINS`, the norm is ``max |eigvalsh(M)|``.
+completes for ``t`` in :data:`MARGINS`, the norm is ``max |eigvalsh(M)|``
+with an eigensolver allowance.
 """
 
 from __future__ import annotations
@@ -52,7 +53,8 @@ def _side_bound(m: np.ndarray, sigma: float, sign: float) -> float | None:
 def norm2_upper(m: np.ndarray) -> tuple[float, str]:
     """``(b, method)`` with ``b >= ||M||_2`` for a symmetric dense ``M``:
     ``method`` is ``"lanczos+cholesky"`` (``b`` above the norm by about
-    ``1e-9`` relative) or ``"eigvalsh"`` (``b`` the computed norm)."""
+    ``1e-9`` relative) or ``"eigvalsh"`` (``b`` the computed norm with an
+    eigensolver allowance of ``8 (N + 1) u``, common practice)."""
     m = np.asarray(m, dtype=np.float64)
     n = m.shape[0]
     if n == 0 or not np.any(m):
@@ -73,4 +75,6 @@ def norm2_upper(m: np.ndarray) -> tuple[float, str]:
                 if hi is not None and lo is not None:
                     return max(hi, lo), "lanczos+cholesky"
     w = sla.eigh(m, eigvals_only=True, driver="evd", check_finite=False)
-    return float(max(abs(w[0]), abs(w[-1]))), "eigvalsh"
+    # A backward-stable eigensolver errs by a modest multiple of N u ||M||
+    # (Weyl's inequality); the allowance 8 (N + 1) u is common practice.
+    return float(max(abs(w[0]), abs(w[-1]))) * (1 + 8 * (n + 1) * _U), "eigvalsh"

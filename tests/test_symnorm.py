@@ -26,6 +26,10 @@ def _cases():
 def test_upper_bound_against_numpy(name):
     m = _cases()[name]
     true = np.linalg.norm(m, 2)  # numpy's SVD-based 2-norm
+    if name == "tiny":
+        # ||c M|| = c ||M|| (a norm is homogeneous): numpy's SVD of the tiny
+        # matrix itself was seen 7e-8 off in one numpy build.
+        true = 1e-30 * np.linalg.norm(_cases()["gaussian"], 2)
     got, how = norm2_upper(m)
     assert how == "lanczos+cholesky" or name == "tiny"
     assert true <= got <= true * (1 + 1e-8)
