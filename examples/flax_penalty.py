@@ -19,6 +19,7 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 from flax import nnx
+from sensor_scenario import perturbed_operator, sensor_graph, smooth_signals
 
 import stablefilt as sf
 
@@ -29,19 +30,14 @@ args = p.parse_args()
 
 # A sensor graph, its normalised Laplacian and certified spectral interval.
 rng = np.random.default_rng(0)
-pts = rng.uniform(size=(args.nodes, 2))
-d = np.linalg.norm(pts[:, None] - pts[None], axis=-1)
-adj = np.exp(-(d / 0.15) ** 2) * (d < 0.3)
-np.fill_diagonal(adj, 0.0)
-graph = sf.shift_operator(adj, "normalized-laplacian")
+graph = sensor_graph(args.nodes, rng)
 interval = sf.spectral_interval(graph)
 iv = (interval.lower, interval.upper)
 op = sf.jax_operator(graph)
 basis = sf.Basis("chebyshev", (0.0, 2.0))  # the normalised Laplacian's spectrum lies in [0, 2]
 
 # Smooth clean signals, noisy inputs: (signals, N, 1).
-w, v = np.linalg.eigh(graph.dense())
-clean = (v @ (np.exp(-3 * w)[:, None] * rng.standard_normal((args.nodes, 48)))).T[:, :, None]
+clean = smooth_signals(graph, 48, rng).T[:, :, None]
 noisy = clean + 0.3 * rng.standard_normal(clean.shape)
 x, y = jnp.asarray(noisy, jnp.float32), jnp.asarray(clean, jnp.float32)
 rho = float(np.max(np.linalg.norm(noisy.reshape(len(noisy), -1), axis=1)))  # inputs' largest norm
@@ -100,11 +96,7 @@ for epoch in range(1, args.epochs + 1):
 
 # Hold the certificate against one perturbed graph S_hat = S + E S + S E, ||E||_2 = eps.
 eps = 1e-2
-e = rng.standard_normal((args.nodes, args.nodes))
-e = (e + e.T) / 2
-e *= eps / np.linalg.norm(e, 2)
-s = graph.dense()
-hat = sf.jax_operator(sf.shift_operator(s + e @ s + s @ e, "as-is"))
+hat = perturbed_operator(graph, eps, rng)
 out = jax.vmap(lambda z: net(op, z))(x)
 out_hat = jax.vmap(lambda z: net(hat, z))(x)
 measured = float(np.max(np.linalg.norm(np.asarray(out - out_hat).reshape(len(x), -1), axis=1)))

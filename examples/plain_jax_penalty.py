@@ -19,6 +19,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import optax
+from sensor_scenario import perturbed_operator, sensor_graph, smooth_signals
 
 import stablefilt as sf
 
@@ -29,19 +30,14 @@ args = p.parse_args()
 n = args.nodes
 
 rng = np.random.default_rng(0)
-pts = rng.uniform(size=(n, 2))
-d = np.linalg.norm(pts[:, None] - pts[None], axis=-1)
-adj = np.exp(-(d / 0.15) ** 2) * (d < 0.3)
-np.fill_diagonal(adj, 0.0)
-graph = sf.shift_operator(adj, "normalized-laplacian")
+graph = sensor_graph(n, rng)
 interval = sf.spectral_interval(graph)
 iv = (interval.lower, interval.upper)
 op = sf.jax_operator(graph)
 basis = sf.Basis("chebyshev", (0.0, 2.0))
 
 # Smooth targets, noisy inputs: 64 signals folded into the feature axis.
-w, v = np.linalg.eigh(graph.dense())
-clean = v @ (np.exp(-3 * w)[:, None] * rng.standard_normal((n, 64)))
+clean = smooth_signals(graph, 64, rng)
 noisy = clean + 0.3 * rng.standard_normal(clean.shape)
 x, y = jnp.asarray(noisy, jnp.float32), jnp.asarray(clean, jnp.float32)
 rho = float(np.max(np.linalg.norm(noisy, axis=0)))  # each signal (column) is one input
@@ -119,11 +115,7 @@ for b in cert.bounds:
 
 # The model's certificate against one perturbed graph S_hat = S + E S + S E, ||E||_2 = eps.
 eps = 1e-2
-e = rng.standard_normal((n, n))
-e = (e + e.T) / 2
-e *= eps / np.linalg.norm(e, 2)
-s = graph.dense()
-hat = sf.jax_operator(sf.shift_operator(s + e @ s + s @ e, "as-is"))
+hat = perturbed_operator(graph, eps, rng)
 measured = float(np.max(np.linalg.norm(np.asarray(model(p1, op, x) - model(p1, hat, x)), axis=0)))
 bound = certificate(p1, [eps]).at(eps).certified
 print(f"measured change at eps {eps:g}: {measured:.4g} <= certified {bound:.4g}: {measured <= bound}")
