@@ -171,6 +171,15 @@ def machine_note() -> str:
     return f"load average {load}; {os.cpu_count()} CPUs; GLIBC_TUNABLES={tun or '(unset)'}"
 
 
+def print_summary(title: str, lines) -> None:
+    """The closing block of a benchmark: ``title``, its summary lines
+    indented, and the machine note."""
+    print(f"\n{title}")
+    for line in lines:
+        print("  " + line)
+    print(f"end: {machine_note()}")
+
+
 def verdict(value: float, limit: float) -> str:
     return "PASS" if value <= limit else "MISS"
 

@@ -28,7 +28,7 @@ import jax  # noqa: E402
 import jax.numpy as jnp  # noqa: E402
 import numpy as np  # noqa: E402
 import optax  # noqa: E402
-from _common import geometric_adjacency, interleaved, machine_note, ms, parse_sizes, ratio, spread  # noqa: E402
+from _common import geometric_adjacency, interleaved, machine_note, ms, parse_sizes, print_summary, ratio, spread  # noqa: E402
 
 import stablefilt as sf  # noqa: E402
 from stablefilt._certpenalty import certified_penalty, certified_setup  # noqa: E402
@@ -93,10 +93,7 @@ def main(argv=None) -> int:
                 f"{ms(times['certified']):8.2f} ms = {r:.3f}x [{q[0]:.3f}-{q[1]:.3f}] {mark}")
         print(line, flush=True)
         summary.append(line)
-    print("\nsummary")
-    for line in summary:
-        print("  " + line)
-    print(f"end: {machine_note()}")
+    print_summary("summary", summary)
     return 0
 
 

@@ -40,6 +40,7 @@ from _common import (
     machine_note,
     ms,
     parse_sizes,
+    print_summary,
     ratio,
     rerun_with_hugepages,
     spread,
@@ -217,10 +218,7 @@ def main(argv=None) -> int:
         lines, good = bench_size(n, args.rounds, args.seed)
         summary += lines
         ok = ok and good
-    print("\nsummary (targets: JAX fwd <= 1.0x scipy fwd, JAX fwd+bwd <= 2.0x scipy fwd)")
-    for line in summary:
-        print("  " + line)
-    print(f"end: {machine_note()}")
+    print_summary("summary (targets: JAX fwd <= 1.0x scipy fwd, JAX fwd+bwd <= 2.0x scipy fwd)", summary)
     if not ok:
         print("MISMATCH: the JAX and scipy results disagreed; see above")
     return 0 if ok else 1

@@ -32,6 +32,7 @@ from _common import (
     machine_note,
     ms,
     parse_sizes,
+    print_summary,
     ratio,
     rerun_with_hugepages,
     spread,
@@ -134,10 +135,7 @@ def main(argv=None) -> int:
               f"[{q_kb[0]:.3f}-{q_kb[1]:.3f}]  (for reference, no target)")
         summary.append(f"N = {n:>6d}: step {ms(times['plain']):8.2f} ms, with integral-Lipschitz penalty "
                        f"{r_il:.3f}x {mark}; with kernel bound {r_kb:.3f}x")
-    print(f"\nsummary (penalty alone: integral_lipschitz {t_il:.3f} ms, kernel_bound {t_kb:.3f} ms)")
-    for line in summary:
-        print("  " + line)
-    print(f"end: {machine_note()}")
+    print_summary(f"summary (penalty alone: integral_lipschitz {t_il:.3f} ms, kernel_bound {t_kb:.3f} ms)", summary)
     return 0
 
 
