@@ -28,7 +28,7 @@ from ._interval import SpectralInterval, construction_interval, spectral_interva
 from ._joint import eigen_cover, interval_cover, joint_factor
 from ._kernel import eigenvalue_slack
 from ._search import LOWER_EIG_LIMIT, lower_change
-from ._second import second_kernel, second_order
+from ._second import operator_remainder, second_kernel, second_order
 
 
 def deployed_interval(kind: str):
@@ -145,11 +145,8 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
         eps = float(eps)
         fb = filter_bounds(taps, basis, iv, eps, consts, lam)
         wide = widened(iv, eps, interval.radius, deployed)
-        rem, form = bank_remainder(taps, basis, iv, eps).operator(), "whole bank, s.9.7"
-        if kern is not None:
-            so = second_order(taps, basis, iv, eps, kern).operator()
-            if so < rem:
-                rem, form = so, "second-order kernel, s.9.8"
+        rem, form = operator_remainder(bank_remainder(taps, basis, iv, eps),
+                                       None if kern is None else second_order(taps, basis, iv, eps, kern))
         ch = bank_change(taps, basis, eps, first_order=fb.first_order, remainder=fb.remainder, joint=joint,
                          radius=radius, path_cover=change_cover(lam, iv, 2 * eps * radius + slack, deployed),
                          gains=(float(consts.bank_sup), gain_constants(taps, basis, wide)[0]),

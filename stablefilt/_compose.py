@@ -269,15 +269,23 @@ class LayerChanges:
     readout_bias_change: float | None = None
 
 
+def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pcover, wide, radius: float):
+    """``(BankChange, B_hat, per-filter bounds)`` of a bank built from the
+    model's (the readout composite, a bias bank) at ``eps``, from its
+    eps-free ``filters`` and ``joint`` constants."""
+    fb = filter_bounds(taps, spec.basis, interval, eps, filters, lam)
+    g_hat = float(gain_constants(taps, spec.basis, wide)[0])
+    ch = bank_change(taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
+                     joint=joint.constant, radius=radius, path_cover=pcover,
+                     gains=(float(filters.bank_sup), g_hat))
+    return ch, g_hat, fb
+
+
 def _bias_change(bb: BiasBank | None, spec, eps: float, interval, lam, pcover, wide, radius: float):
     """``sqrt(N) Delta(G)`` for a :class:`BiasBank` at ``eps`` (docs/theory.md 9.3), or None."""
     if bb is None:
         return None
-    fb = filter_bounds(bb.taps, spec.basis, interval, eps, bb.filters, lam)
-    g_hat, _ = gain_constants(bb.taps, spec.basis, wide)
-    ch = bank_change(bb.taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
-                     joint=bb.joint.constant, radius=radius, path_cover=pcover,
-                     gains=(float(bb.filters.bank_sup), float(g_hat)))
+    ch = _composite_change(bb.taps, bb.filters, bb.joint, spec, eps, interval, lam, pcover, wide, radius)[0]
     return float(bb.rows * ch.certified * (1 + REL_ALLOW))
 
 
@@ -294,19 +302,16 @@ def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChan
         if cc.deployed is not None:
             b_hat = min(b_hat, gain_constants(layer["taps"], spec.basis, wide)[0])
         gains_hat.append(float(b_hat))
+        rem, form = lb.remainder_choice()
         changes.append(bank_change(layer["taps"], spec.basis, eps, first_order=lb.beta - lb.remainder,
                                    remainder=lb.remainder, joint=extra.joint.constant, radius=cc.radius,
-                                   path_cover=pcover, gains=(lb.gain, b_hat),
-                                   bank_remainder=lb.bank_remainder(), remainder_form=lb.remainder_form()))
+                                   path_cover=pcover, gains=(lb.gain, b_hat), bank_remainder=rem,
+                                   remainder_form=form))
     rc, rg, rr = None, None, None
     if cc.readout is not None:
         ro = cc.readout
-        rg, _ = gain_constants(ro.taps, spec.basis, wide)
-        fb = filter_bounds(ro.taps, spec.basis, (a, b), eps, ro.filters, lam)
-        rc = bank_change(ro.taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
-                         joint=ro.joint.constant, radius=cc.radius, path_cover=pcover,
-                         gains=(float(ro.filters.bank_sup), rg))
-        rg, rr = float(rg), np.asarray(fb.remainder)
+        rc, rg, fb = _composite_change(ro.taps, ro.filters, ro.joint, spec, eps, (a, b), lam, pcover, wide, cc.radius)
+        rr = np.asarray(fb.remainder)
     biases = tuple(_bias_change(extra.bias_bank, spec, eps, (a, b), lam, pcover, wide, cc.radius)
                    for extra in cc.layers)
     rbias = None if cc.readout is None else _bias_change(cc.readout.bias_bank, spec, eps, (a, b), lam, pcover, wide,

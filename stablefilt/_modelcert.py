@@ -34,7 +34,7 @@ from ._interval import SpectralInterval
 from ._joint import eigen_cover
 from ._kernel import eigenvalue_slack, spectral_first_order
 from ._model import ModelSpec, forward_np
-from ._second import SecondOrder, second_kernel, second_order
+from ._second import SecondOrder, operator_remainder, second_kernel, second_order
 from ._series import REL_ALLOW, with_allowance
 
 
@@ -165,25 +165,17 @@ class LayerBound(NamedTuple):
     bank: BankRemainder | None = None
     second: SecondOrder | None = None
 
-    def bank_remainder(self) -> float:
-        """The bank's remainder for every unit-norm input: the smallest of
+    def remainder_choice(self) -> tuple[float, str]:
+        """The bank's remainder for every unit-norm input, the smallest of
         ``||remainder||_2`` (per filter), the whole-bank form and the
-        second-order kernel form."""
-        out = combine(self.remainder)
-        if self.bank is not None:
-            out = min(out, self.bank.operator())
-        if self.second is not None:
-            out = min(out, self.second.operator())
-        return out
+        second-order kernel form, and the name of the one kept."""
+        per = (combine(self.remainder), "per filter, s.5")
+        other = operator_remainder(self.bank, self.second)
+        return per if other is None or per[0] <= other[0] else other
 
-    def remainder_form(self) -> str:
-        """Which form gives :meth:`bank_remainder` (named in the certificate's method)."""
-        forms = [(combine(self.remainder), "per filter, s.5")]
-        if self.bank is not None:
-            forms.append((self.bank.operator(), "whole bank, s.9.7"))
-        if self.second is not None:
-            forms.append((self.second.operator(), "second-order kernel, s.9.8"))
-        return min(forms, key=lambda f: f[0])[1]
+    def bank_remainder(self) -> float:
+        """:meth:`remainder_choice`'s value."""
+        return self.remainder_choice()[0]
 
     def input_remainder(self, x) -> np.ndarray:
         """Per signal of ``x`` ``(B, N, F_in)``, the smallest of the per-filter

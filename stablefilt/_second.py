@@ -112,8 +112,11 @@ class SecondOrder:
     def inputs(self, x) -> np.ndarray:
         """Per signal of ``x`` ``(B, N, F_in)``: ``eps^2 K b ||X||_F + sum_j t3_j ||X g_j||_F``."""
         x = np.asarray(x, dtype=np.float64)
-        quad = self.quadratic * np.sqrt(np.sum(x**2, axis=(1, 2)))
-        return with_allowance(quad + self.third.inputs(x), quad)
+        return self._with_third(self.quadratic * np.sqrt(np.sum(x**2, axis=(1, 2))), self.third.inputs(x))
+
+    @staticmethod
+    def _with_third(quad, third):
+        return with_allowance(quad + third, quad)
 
     def spectral(self, x, lam, vecs, slack: float) -> np.ndarray:
         """Per signal of ``x`` ``(B, N, F_in)``, the weighted form of
@@ -121,7 +124,8 @@ class SecondOrder:
         ``S`` (eigenvalues within ``slack``): ``eps^2 sqrt(K) min_W
         sqrt(c_W tr(W G))`` plus the third-order tail, never above :meth:`inputs`."""
         x = np.asarray(x, dtype=np.float64)
-        plain = self.inputs(x)
+        third = self.third.inputs(x)
+        plain = self._with_third(self.quadratic * np.sqrt(np.sum(x**2, axis=(1, 2))), third)
         kern = self.kernel
         t = kern.coefficients
         fin, fout, k = t.shape[0], t.shape[1], t.shape[2]
@@ -140,7 +144,6 @@ class SecondOrder:
         move = slack * float(np.sum(2.0 * kb**2 / (hi - lo) * per_b)) + float(np.linalg.norm(kern.errors)) * k \
             + 4.0 * k * UNIT * float(np.linalg.norm(np.abs(t)))
         dz = slack * float(np.max(2.0 * kb**2 / (hi - lo)))  # |phi_t| moves by at most this
-        third = self.third.inputs(x)
         out = np.empty(x.shape[0])
         for i in range(x.shape[0]):
             xt = vecs.T @ x[i]  # (N, F_in)
@@ -164,7 +167,7 @@ class SecondOrder:
                 best = min(best, root_c * root_tr)
             quad = self.eps * self.eps * np.sqrt(k) * best
             out[i] = quad
-        return np.minimum(plain, with_allowance(third + out, out))
+        return np.minimum(plain, self._with_third(out, third))
 
 
 def _tails3(x: float, y: float, k: int) -> np.ndarray:
@@ -184,3 +187,15 @@ def second_order(taps, basis: Basis, interval, eps: float, kernel: SecondKernel)
     quad = float(with_allowance(eps * eps * k * kernel.sup, 0.0))
     third = BankRemainder(_tails3(half, d, k), br.coefficients, br.errors, br.powers)
     return SecondOrder(kernel, float(eps), quad, third)
+
+
+def operator_remainder(bank: BankRemainder | None, second: SecondOrder | None) -> tuple[float, str] | None:
+    """The smaller, for every unit-norm input, of the whole-bank remainder
+    (docs/theory.md 9.7) and the second-order kernel form (9.8), with the
+    name the certificate's method gives it; None when neither is known."""
+    forms = []
+    if bank is not None:
+        forms.append((bank.operator(), "whole bank, s.9.7"))
+    if second is not None:
+        forms.append((second.operator(), "second-order kernel, s.9.8"))
+    return min(forms, key=lambda f: f[0]) if forms else None
