@@ -7,7 +7,7 @@ sections 9.2-9.3; :func:`certified_penalty` evaluates ``P`` in JAX with every
 supremum over the spectral interval replaced by a maximum over grid points.
 Grid maxima, power steps and Newton-Schulz steps lower the estimate, and
 leaving out the per-filter form raises it, so it is an estimate of ``P``
-(0.26% below on the demo run), not a bound: a training surrogate, never a
+(0.27% below on the demo run), not a bound: a training surrogate, never a
 certificate (the reported figures stay the float64 ones of
 :mod:`stablefilt._modelcert`).
 """
@@ -195,6 +195,26 @@ def _bank(taps, basis, split, pts, phi, right=None, right_map=None):
     return d, joint_constant(big2, fout, right.shape[1], k, kr, phi, phi_r)
 
 
+def _left(prev, taps, basis, split, pts, phi, right_map):
+    """``K``, the joint constant of the bank ``taps`` after the first-order
+    change of ``prev``: the transposed banks' right composite (docs/theory.md
+    9.3, the carried change)."""
+    tp, tt = jnp.swapaxes(prev, 1, 2), jnp.swapaxes(taps, 1, 2)
+    k, fin, fout = tp.shape
+    big2, _, kr = _block(tp, basis, split, tt, right_map)
+    phi_r = jnp.asarray(basis_values(pts, kr, split), dtype=tp.dtype)
+    return joint_constant(big2, fout, tt.shape[1], k, kr, phi, phi_r)
+
+
+def _carried(a, d, n, g, left, d_prev, ca, cb):
+    """Per unit eps, ``a_l`` of docs/theory.md 9.3 (the carried change) at
+    first order: ``min(g (d + a), c_a min(K, Delta_l g) n + c_b g d + g a)``."""
+    plain = g * (d + a)
+    if left is None:
+        return plain
+    return jnp.minimum(plain, ca * jnp.minimum(left, d_prev * g) * n + cb * g * d + g * a)
+
+
 def _clean_norm(n, b, cross, beta):
     plain = b * n + beta
     if cross is None:
@@ -243,13 +263,14 @@ def certified_penalty(params, setup: CertifiedSetup):
     k = spec.taps
     phi = jnp.asarray(basis_values(pts, k, split), dtype=dtype)
     rmap = response_map(k, basis, split.interval[0], split.interval[1], "h") if split.kind == "chebyshev" else None
-    gains, ds, rights, betas, crosses = [], [], [], [], []
+    gains, ds, rights, lefts, betas, crosses = [], [], [], [], [], []
     for i, layer in enumerate(layers):
         taps = jnp.asarray(layer["taps"])
         prev = None if (i == 0 or rmap is None) else jnp.asarray(layers[i - 1]["taps"])
         d, r = _bank(taps, basis, split, pts, phi, prev, rmap)
         ds.append(d)
         rights.append(r)
+        lefts.append(None if prev is None else _left(prev, taps, basis, split, pts, phi, rmap))
         gains.append(gain(taps, basis, pts))
         bias = layer.get("bias")
         if bias is None:
@@ -268,13 +289,15 @@ def certified_penalty(params, setup: CertifiedSetup):
     alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
     ca, cb = 0.5 * (1 + alpha), 0.5 * (1 - alpha)
     depth = len(layers)
-    e = 0.0
-    e_prev = 0.0
+    a, a_before, dl = 0.0, 0.0, []
     for i in range(depth):
         bias_d = None if i == 0 else _bias_d(jnp.asarray(layers[i]["taps"]), layers[i - 1].get("bias"), basis, split,
                                              pts, phi, setup.nodes)
-        d = _through(i, ds[i], rights[i], norms, gains, betas, ca, cb, bias_d)
-        e_prev, e = e, d + gains[i] * e
+        dl.append(_through(i, ds[i], rights[i], norms, gains, betas, ca, cb, bias_d))
+        if i < depth - 1:
+            a_before = a
+            a = _carried(a, dl[i], norms[i], gains[i + 1], lefts[i + 1], ds[i], ca, cb)
+    e = dl[-1] + a
     out = e * _readout_factor(params, spec, setup.nodes)
     if spec.readout == "node":
         w = jnp.asarray(params["readout"]["weight"])
@@ -282,7 +305,11 @@ def certified_penalty(params, setup: CertifiedSetup):
         prev = None if (depth < 2 or rmap is None) else jnp.asarray(layers[-2]["taps"])
         dw, rw = _bank(comp, basis, split, pts, phi, prev, rmap)
         bias_w = None if depth < 2 else _bias_d(comp, layers[-2].get("bias"), basis, split, pts, phi, setup.nodes)
-        through = _through(depth - 1, dw, rw, norms, gains, betas, ca, cb, bias_w) + gain(comp, basis, pts) * e_prev
+        g = 0.0
+        if depth >= 2:
+            lw = None if rmap is None else _left(jnp.asarray(layers[-2]["taps"]), comp, basis, split, pts, phi, rmap)
+            g = _carried(a_before, dl[-2], norms[depth - 2], gain(comp, basis, pts), lw, ds[-2], ca, cb)
+        through = _through(depth - 1, dw, rw, norms, gains, betas, ca, cb, bias_w) + g
         al = alpha if spec.final_nonlinearity else 1.0
         wn = _sqrt(_top(w.T @ w if w.shape[1] <= w.shape[0] else w @ w.T))
         out = jnp.minimum(out, 0.5 * (1 + al) * through + 0.5 * (1 - al) * wn * e)

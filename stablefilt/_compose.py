@@ -151,6 +151,9 @@ class LayerExtra:
       cross: a bound on ``||H^T c||_F`` for the bias ``c = 1_N b^T``, or None.
       bias_norm: ``||c||_F = sqrt(N) ||b||``.
       bias_bank: the previous layer's bias through this bank, or None.
+      left: ``K``, a bound on ``sup ||H L_prev(E)||`` over ``||E|| <= 1``: this
+        bank after the previous bank's first-order change (docs/theory.md
+        9.3, the carried change), or None.
     """
 
     joint: JointFactor
@@ -158,6 +161,7 @@ class LayerExtra:
     cross: float | None
     bias_norm: float
     bias_bank: BiasBank | None = None
+    left: float | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -169,6 +173,7 @@ class ReadoutExtra:
     joint: JointFactor
     right: float | None
     bias_bank: BiasBank | None = None
+    left: float | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -228,7 +233,8 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
             if (bias is not None and matrix is not None) else None
         bb = None if i == 0 else _bias_bank(taps, layers[i - 1].get("bias"), spec.basis, (a, b), lam, cover0, nodes,
                                             rebalance)
-        extras.append(LayerExtra(jf, right, cross, bias_norm, bb))
+        left = None if i == 0 else left_constant(layers[i - 1]["taps"], taps, spec.basis, cover0)
+        extras.append(LayerExtra(jf, right, cross, bias_norm, bb, left))
     readout = None
     w = params.get("readout", {}).get("weight") if spec.readout != "none" else None
     wn = float(np.linalg.norm(np.asarray(w, dtype=np.float64), 2)) * (1 + REL_ALLOW) if w is not None else 1.0
@@ -239,10 +245,45 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         rw = None if len(layers) < 2 else schur_constant(comp, spec.basis, cover0, "gamma", True, right=layers[-2]["taps"])
         rb = None if len(layers) < 2 else _bias_bank(comp, layers[-2].get("bias"), spec.basis, (a, b), lam, cover0,
                                                      nodes, rebalance)
-        readout = ReadoutExtra(comp, cw, jw, rw, rb)
+        lw = None if len(layers) < 2 else left_constant(layers[-2]["taps"], comp, spec.basis, cover0)
+        readout = ReadoutExtra(comp, cw, jw, rw, rb, lw)
     alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
     return CompositionConstants(tuple(extras), readout, wn, alpha, None if deployed is None else tuple(deployed),
                                 float(radius), float(slack), bool(rebalance))
+
+
+def left_constant(prev_taps, taps, basis, cover) -> float:
+    """``K >= sup ||H L_prev(E)||_2`` over ``||E||_2 <= 1`` (``L_prev`` the
+    first-order change of the bank ``prev_taps``, ``H`` the bank ``taps``
+    after it), by transposition: the right-composite bound of the bank with
+    taps ``c_k^T`` of ``prev_taps`` followed on the right by ``taps``
+    transposed (``S``, ``E`` symmetric; docs/theory.md 9.3, the carried change)."""
+    t = lambda z: np.swapaxes(np.asarray(z, dtype=np.float64), 1, 2)  # noqa: E731
+    return float(schur_constant(t(prev_taps), basis, cover, "gamma", True, right=t(taps)))
+
+
+def carried(a_prev: float, d: float, n_prev: float, gain_hat: float, gain: float, change: float,
+            left: float | None, eps: float, rem_prev: float, change_prev: float, ca: float, cb: float) -> float:
+    """``a_l``, a bound on ``||H_hat e_l||`` for the bank ``H`` that follows
+    layer ``l`` (docs/theory.md 9.3, the carried change)::
+
+        min(B_hat (d_l + a_{l-1}), c_a kappa n_{l-1} + c_b B_hat d_l + B_hat a_{l-1})
+        kappa = min(min(eps K + r_l B, Delta_l B) + Delta Delta_l, B_hat Delta_l)
+
+    Args:
+      a_prev: ``a_{l-1}`` (0 for the first layer).
+      d: ``d_l``, the bound on ``||(H_l - H_hat_l) x_{l-1}||``.
+      n_prev: ``n_{l-1}``, the clean-path bound on ``||x_{l-1}||``.
+      gain_hat, gain, change: ``B_hat``, ``B`` and ``Delta`` of the bank ``H``.
+      left: ``K`` (:func:`left_constant`) of ``H`` after layer ``l``, or None.
+      rem_prev, change_prev: ``r_l`` and ``Delta_l``, layer ``l``'s bank remainder and change.
+    """
+    plain = gain_hat * (d + a_prev)
+    if left is None:
+        return plain
+    kappa = min(eps * left + rem_prev * gain, change_prev * gain) + change * change_prev
+    kappa = min(kappa, gain_hat * change_prev)
+    return min(plain, ca * kappa * n_prev + cb * gain_hat * d + gain_hat * a_prev)
 
 
 def clean_norm(n_prev: float, gain: float, cross: float | None, bias_norm: float) -> float:
@@ -368,17 +409,20 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
         norms.append(clean_norm(norms[-1], lb.gain, extra.cross, extra.bias_norm))
         norms_hat.append(g_hat * norms_hat[-1] + extra.bias_norm)
     ca, cb = 0.5 * (1 + cc.slope_low), 0.5 * (1 - cc.slope_low)
-    deltas = []
-    e = 0.0
+    deltas, rems = [], []
+    a, a_before = 0.0, 0.0  # a: bound on ||H_hat_{i+1} e_i|| (theory 9.3, the carried change)
     for i, (ch, lb) in enumerate(zip(lc.changes, bounds)):
         rem = lb.bank_remainder()
         right = None if cc.layers[i].right is None else eps * cc.layers[i].right
         bias_ch = lc.bias_changes[i] if lc.bias_changes else None
         d = _through(i, ch.certified, rem, right, cc, norms, gains, ca, cb, bias_ch)
         deltas.append(d)
+        rems.append(rem)
         if i < spec.depth - 1:
-            e = d + lc.gains_hat[i] * e
-    e_last = deltas[-1] + lc.gains_hat[-1] * e
+            a_before = a
+            a = carried(a, d, norms[i], lc.gains_hat[i + 1], gains[i + 1], lc.changes[i + 1].certified,
+                        cc.layers[i + 1].left, eps, rem, ch.certified, ca, cb)
+    e_last = deltas[-1] + a
     rf = mc.readout
     out = rf * e_last
     if cc.readout is not None and lc.readout_change is not None:
@@ -386,7 +430,12 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
         right = None if cc.readout.right is None else eps * cc.readout.right
         dw = _through(spec.depth - 1, lc.readout_change.certified, combine(lc.readout_remainder), right, cc, norms,
                       gains, ca, cb, lc.readout_bias_change)
-        through = dw + lc.readout_gain_hat * e
+        g = 0.0  # bound on ||G_hat e_{L-2}||, G = H_L W
+        if spec.depth >= 2:
+            k = spec.depth - 2
+            g = carried(a_before, deltas[k], norms[k], lc.readout_gain_hat, float(cc.readout.filters.bank_sup),
+                        lc.readout_change.certified, cc.readout.left, eps, rems[k], lc.changes[k].certified, ca, cb)
+        through = dw + g
         out = min(out, 0.5 * (1 + alpha_l) * through + 0.5 * (1 - alpha_l) * cc.weight_norm * e_last)
     trivial = rf * (norms[-1] + norms_hat[-1])
     cert = min(out, trivial) * (1 + REL_ALLOW) + ABS_ALLOW * trivial

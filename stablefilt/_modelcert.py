@@ -357,8 +357,9 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
         "composition": "the smaller of: triangle inequality through layers (theory s.5 item 6, s.8); per layer the "
                        "smallest of per-filter, joint, whole-path and trivial bank bounds (remainders: the smallest "
                        "of per filter, whole bank s.9.7 and second-order kernel s.9.8), changes carried through the "
-                       "previous bank with its bias apart and through the readout by averaging, capped by the "
-                       "trivial bound (theory s.9)"
+                       "previous bank with its bias apart, into the next bank through its composite with the "
+                       "previous change (s.9.3, the carried change) and through the readout by averaging, capped by "
+                       "the trivial bound (theory s.9)"
                        + ("; joint factorisations rebalanced (s.9.4)" if comp is not None and comp.balanced else ""),
         "deployed_graph": deployed_text(None if comp is None else comp.deployed),
         "published": f"2 C (1 + delta sqrt(N)) L F^(L-1) eps rho ||readout||, delta = {delta:g}, first order, "

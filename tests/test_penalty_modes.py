@@ -74,7 +74,7 @@ def test_certified_penalty_is_the_eps_linear_term(case):
     """``eps * penalty`` against the float64 interval certificate at
     ``eps = 1e-5`` (its remainder is ``O(eps^2)``, about 1e-5 relative here):
     within 3% (theory s.11: grid maxima and fixed-step iterations lower the
-    estimate; two left-out refinements can raise it). Measured 0.26% below
+    estimate; two left-out refinements can raise it). Measured 0.27% below
     on the demo run."""
     graph = small_graph()
     iv = sf.spectral_interval(graph)
