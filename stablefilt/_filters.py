@@ -152,14 +152,21 @@ def run_filter(matvec: Callable, taps, x, basis: Basis, xp=np):
     taps = xp.asarray(taps)
     k = taps.shape[0]
     bank = taps.ndim == 3
-    if bank and k > 1 and taps.shape[2] <= taps.shape[1]:
-        return run_filter_backward(matvec, taps, x, basis)
     if bank and x.ndim > 2:
-        # Batch axes folded into rows for the tap products (see
-        # run_filter_backward): the sparse products see the original shape.
+        # Batch axes folded into rows for the tap products (a dense product
+        # with one contracted axis; its gradient a plain matrix product too):
+        # the sparse products see the original shape.
         y = run_filter(lambda z: matvec(z.reshape(x.shape[:-1] + z.shape[-1:])).reshape(z.shape), taps,
                        x.reshape(-1, x.shape[-1]), basis, xp=xp)
         return y.reshape(x.shape[:-1] + y.shape[-1:])
+    if bank and k > 1 and xp is not np and basis.kind == "monomial" and x.shape[0] * x.shape[1] >= _loop_threshold():
+        from . import _looped  # the JAX path only: the numpy path never imports jax here
+
+        if taps.shape[2] <= taps.shape[1]:
+            return _looped.bank_from_last(matvec, taps, x)
+        return _looped.bank_from_first(matvec, taps, x)
+    if bank and k > 1 and taps.shape[2] <= taps.shape[1]:
+        return run_filter_backward(matvec, taps, x, basis)
 
     def term(z, c):
         return z @ c if bank else z * c
@@ -184,6 +191,12 @@ def run_filter(matvec: Callable, taps, x, basis: Basis, xp=np):
             prev, cur = cur, step(cur)
         y = y + term(cur, taps[j])
     return y
+
+
+def _loop_threshold() -> int:
+    from ._looped import LOOP_MIN_ELEMENTS
+
+    return LOOP_MIN_ELEMENTS
 
 
 def run_filter_backward(matvec: Callable, taps, x, basis: Basis):

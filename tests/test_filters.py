@@ -260,3 +260,39 @@ def test_one_node_and_no_edges_by_hand():
     cheb = sf.make_basis("chebyshev", (-1.0, 1.0))
     y1 = sf.run_filter(lambda z: zero.matrix @ z, c, x, cheb)
     np.testing.assert_allclose(y1, (c[0] - c[2]) * x, rtol=1e-15)  # by hand: T_0(0) = 1, T_1(0) = 0, T_2(0) = -1
+
+
+@pytest.mark.parametrize("shape", [(5, 3, 2), (4, 2, 3)])
+def test_large_signal_loop_matches_eigh_with_gradients(monkeypatch, shape):
+    """Above ``LOOP_MIN_ELEMENTS`` a monomial bank runs as an XLA loop
+    (stablefilt._looped, Horner's rule from the last tap when F_out <= F_in,
+    powers from the first tap otherwise); with the threshold lowered to 0 the
+    loop must give the values and gradients of the dense reference
+    (numpy.linalg.eigh: Y = sum_k S^k X c_k, dY/dX = sum_k S^k G c_k^T,
+    dY/dc_k = (S^k X)^T G for G = Y), under jit and vmap, and the traced
+    program must contain the loop."""
+    from stablefilt import _filters
+
+    monkeypatch.setattr(_filters, "_loop_threshold", lambda: 0)
+    op = GRAPHS["karate-scaled"]
+    jop = sf.jax_operator(op)
+    basis = sf.make_basis()
+    rng = np.random.default_rng(11)
+    taps = rng.standard_normal(shape).astype(np.float32)
+    x = rng.standard_normal((op.nodes, shape[1])).astype(np.float32)
+
+    def loss(c, z):
+        return 0.5 * jnp.sum(sf.apply_filter(jop, c, z, basis) ** 2)
+
+    assert "scan[" in str(jax.make_jaxpr(loss)(jnp.asarray(taps), jnp.asarray(x)))  # fori_loop with fixed bounds
+    y = jax.jit(lambda c, z: sf.apply_filter(jop, c, z, basis))(jnp.asarray(taps), jnp.asarray(x))
+    gc, gx = jax.jit(jax.grad(loss, argnums=(0, 1)))(jnp.asarray(taps), jnp.asarray(x))
+    s = op.dense()
+    pk = [np.linalg.matrix_power(s, j) for j in range(shape[0])]
+    ref = sum(pk[j] @ x @ taps[j] for j in range(shape[0]))
+    assert _rel(y, ref) < 1e-5
+    assert _rel(gx, sum(pk[j] @ ref @ taps[j].T for j in range(shape[0]))) < 1e-5
+    assert _rel(gc, np.stack([(pk[j] @ x).T @ ref for j in range(shape[0])])) < 1e-5
+    xs = np.stack([x, 2 * x])
+    batched = jax.vmap(lambda z: sf.apply_filter(jop, jnp.asarray(taps), z, basis))(jnp.asarray(xs))
+    assert _rel(batched[1], 2 * ref) < 1e-5
