@@ -67,7 +67,7 @@ def per_signal_loss(out, y, task: str):
     the batch is the trainer's ``task_loss`` (softmax cross-entropy or the
     squared error, averaged over nodes and outputs)."""
     if task == "classify":
-        terms = optax.softmax_cross_entropy_with_integer_labels(out, y)
+        terms = optax.softmax_cross_entropy(out, jax.nn.one_hot(y, out.shape[-1], dtype=out.dtype))  # as task_loss
     else:
         terms = ((out[..., 0] if y.ndim < out.ndim else out) - y) ** 2
     return terms.reshape(terms.shape[0], -1).mean(axis=1)
