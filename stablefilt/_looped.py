@@ -29,10 +29,12 @@ from typing import Callable
 
 import jax
 
-#: Smallest ``N * F`` of one signal block for which the loop is used: at
-#: ``N = 3 * 10^4``, ``F = 32`` it measured even with the written-out form
-#: (0.91-0.96x forward, 0.97-1.01x forward+backward), at ``10^5`` 0.63-0.64x
-#: and 0.82-0.83x (``python benchmarks/bench_filter.py``, interleaved rounds).
+#: Smallest ``N * F`` of one signal block for which the loop is used. Both
+#: forms timed in interleaved rounds, the loop forced on (``F = 32``, ``K = 5``,
+#: 15 rounds): at ``N = 10^4`` and ``3 * 10^4`` about even (0.91-0.98x forward,
+#: 0.97-1.01x forward+backward), at ``10^5`` 0.62-0.64x and 0.81-0.83x;
+#: ``python benchmarks/bench_filter.py --sizes 1e5`` prints the same
+#: comparison (0.71x and 0.89x in one 9-round run).
 LOOP_MIN_ELEMENTS = 1 << 20
 
 
