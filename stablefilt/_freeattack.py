@@ -129,8 +129,10 @@ def block_ascent(params, spec: ModelSpec, sop: JaxShift, e0, x0, eps: float, rho
             target = _on_sphere(gx, rho)
             trials = [] if target is None else [(e, x + t * (target - x)) for t in STEPS]
         else:
-            target = extreme_point(ge, eps)
-            trials = [(e + t * (target - e), x) for t in STEPS]
+            # A float32 gradient can overflow on a large model at a large eps:
+            # then there is no direction to move in.
+            target = extreme_point(ge, eps) if np.all(np.isfinite(ge)) else None
+            trials = [] if target is None else [(e + t * (target - e), x) for t in STEPS]
         for en, xn in trials:
             if used >= iters:
                 break

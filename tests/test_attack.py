@@ -374,3 +374,32 @@ def test_free_block_ascent_beats_previous_search_and_stays_certified():
             assert ref_change(params, spec, s, r.e, r.x) == pytest.approx(r.change, rel=1e-9)
             assert r.change <= c_op.certified, (eps, r.start, r.change, c_op.certified)
         assert new.change >= old.change, (eps, old.change, new.change)
+
+
+def test_free_block_ascent_skips_a_non_finite_gradient(monkeypatch):
+    """A float32 gradient in E can overflow on a large model at a large eps
+    while the objective stays finite: the ascent then makes no perturbation
+    move (no NaN direction, no NaN arithmetic, which numpy warns about) and
+    returns a point in the ball (common practice: guard non-finite steps)."""
+    from stablefilt import _freeattack as fa
+
+    op = OPS["karate-normalized"]
+    spec, params = _model(op, "chebyshev", 2, 7)
+    sop = jax_operator(op)
+    real = fa.free_value_grad
+
+    def overflowing(*args, **kwargs):
+        val, (ge, gx) = real(*args, **kwargs)
+        return val, (jnp.where(jnp.arange(ge.size).reshape(ge.shape) % 2 == 0, jnp.inf, -jnp.inf), gx)
+
+    monkeypatch.setattr(fa, "free_value_grad", overflowing)
+    e0 = np.zeros((op.nodes, op.nodes))
+    x0 = _signals(op.nodes, 2, 1, 8)[0]
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", RuntimeWarning)  # NaN arithmetic on the overflowed gradient would warn
+        e, x, hist = fa.block_ascent(params, spec, sop, e0, x0, 1e-2, 1.5, 20)
+    assert np.all(np.isfinite(e)) and np.all(np.isfinite(x)) and np.all(np.isfinite(hist))
+    assert np.array_equal(e, e0)  # no perturbation move was possible
+    assert np.linalg.norm(x) == pytest.approx(1.5, rel=1e-12)
