@@ -20,7 +20,7 @@ import dataclasses
 
 import numpy as np
 
-from ._filterbounds import FilterConstants, combine, filter_bounds, filter_constants, gain_constants
+from ._filterbounds import FilterConstants, bank_remainder, combine, filter_bounds, filter_constants, gain_constants
 from ._filters import run_filter
 from ._joint import (
     JointFactor,
@@ -32,6 +32,7 @@ from ._joint import (
     schur_constant,
 )
 from ._kernel import eigenvalue_slack
+from ._second import SecondKernel, operator_remainder, second_kernel, second_order
 from ._series import ABS_ALLOW, REL_ALLOW
 
 #: Slopes of each nonlinearity lie in ``[alpha, 1]`` (relu and tanh: 0; leaky relu: 0.1; none: D = I).
@@ -174,6 +175,7 @@ class ReadoutExtra:
     right: float | None
     bias_bank: BiasBank | None = None
     left: float | None = None
+    second: SecondKernel | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -246,7 +248,9 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         rb = None if len(layers) < 2 else _bias_bank(comp, layers[-2].get("bias"), spec.basis, (a, b), lam, cover0,
                                                      nodes, rebalance)
         lw = None if len(layers) < 2 else left_constant(layers[-2]["taps"], comp, spec.basis, cover0)
-        readout = ReadoutExtra(comp, cw, jw, rw, rb, lw)
+        # The composite's second-order kernel (9.8) over the eigenvalues, as for the layers' banks.
+        sw = None if lam is None else second_kernel(comp, spec.basis, eigen_cover(lam, slack))
+        readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw)
     alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
     return CompositionConstants(tuple(extras), readout, wn, alpha, None if deployed is None else tuple(deployed),
                                 float(radius), float(slack), bool(rebalance))
@@ -299,7 +303,9 @@ def clean_norm(n_prev: float, gain: float, cross: float | None, bias_norm: float
 @dataclasses.dataclass(frozen=True)
 class LayerChanges:
     """Per-layer bank changes at one eps, the gains over ``spec S_hat``, and
-    the readout composite's change, gain and per-filter remainders (or None)."""
+    the readout composite's change, gain and per-filter remainders (or None),
+    the bias banks' changes, and the readout composite's remainder for every
+    unit-norm input (the smallest of per filter, 9.7 and 9.8), or None."""
 
     changes: tuple[BankChange, ...]
     gains_hat: tuple[float, ...]
@@ -308,18 +314,26 @@ class LayerChanges:
     readout_remainder: np.ndarray | None = None
     bias_changes: tuple = ()
     readout_bias_change: float | None = None
+    readout_bank_remainder: float | None = None
 
 
-def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pcover, wide, radius: float):
-    """``(BankChange, B_hat, per-filter bounds)`` of a bank built from the
-    model's (the readout composite, a bias bank) at ``eps``, from its
-    eps-free ``filters`` and ``joint`` constants."""
+def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pcover, wide, radius: float,
+                      kernel: SecondKernel | None = None):
+    """``(BankChange, B_hat, per-filter bounds, remainder)`` of a bank built
+    from the model's (the readout composite, a bias bank) at ``eps``, from
+    its eps-free ``filters``, ``joint`` constants and, when known, its
+    second-order ``kernel``; ``remainder`` is the smallest of the per-filter,
+    whole-bank (9.7) and second-order kernel (9.8) remainders, as for the
+    layers' banks."""
     fb = filter_bounds(taps, spec.basis, interval, eps, filters, lam)
     g_hat = float(gain_constants(taps, spec.basis, wide)[0])
+    br = bank_remainder(taps, spec.basis, interval, eps)
+    so = None if kernel is None else second_order(taps, spec.basis, interval, eps, kernel)
+    rem, form = operator_remainder(br, so)
     ch = bank_change(taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
                      joint=joint.constant, radius=radius, path_cover=pcover,
-                     gains=(float(filters.bank_sup), g_hat))
-    return ch, g_hat, fb
+                     gains=(float(filters.bank_sup), g_hat), bank_remainder=rem, remainder_form=form)
+    return ch, g_hat, fb, min(rem, combine(fb.remainder))
 
 
 def _bias_change(bb: BiasBank | None, spec, eps: float, interval, lam, pcover, wide, radius: float):
@@ -348,16 +362,17 @@ def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChan
                                    remainder=lb.remainder, joint=extra.joint.constant, radius=cc.radius,
                                    path_cover=pcover, gains=(lb.gain, b_hat), bank_remainder=rem,
                                    remainder_form=form))
-    rc, rg, rr = None, None, None
+    rc, rg, rr, rbr = None, None, None, None
     if cc.readout is not None:
         ro = cc.readout
-        rc, rg, fb = _composite_change(ro.taps, ro.filters, ro.joint, spec, eps, (a, b), lam, pcover, wide, cc.radius)
+        rc, rg, fb, rbr = _composite_change(ro.taps, ro.filters, ro.joint, spec, eps, (a, b), lam, pcover, wide,
+                                            cc.radius, ro.second)
         rr = np.asarray(fb.remainder)
     biases = tuple(_bias_change(extra.bias_bank, spec, eps, (a, b), lam, pcover, wide, cc.radius)
                    for extra in cc.layers)
     rbias = None if cc.readout is None else _bias_change(cc.readout.bias_bank, spec, eps, (a, b), lam, pcover, wide,
                                                          cc.radius)
-    return LayerChanges(tuple(changes), tuple(gains_hat), rc, rg, rr, biases, rbias)
+    return LayerChanges(tuple(changes), tuple(gains_hat), rc, rg, rr, biases, rbias, rbr)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -428,7 +443,8 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
     if cc.readout is not None and lc.readout_change is not None:
         alpha_l = cc.slope_low if spec.final_nonlinearity else 1.0
         right = None if cc.readout.right is None else eps * cc.readout.right
-        dw = _through(spec.depth - 1, lc.readout_change.certified, combine(lc.readout_remainder), right, cc, norms,
+        rem_w = combine(lc.readout_remainder) if lc.readout_bank_remainder is None else lc.readout_bank_remainder
+        dw = _through(spec.depth - 1, lc.readout_change.certified, rem_w, right, cc, norms,
                       gains, ca, cb, lc.readout_bias_change)
         g = 0.0  # bound on ||G_hat e_{L-2}||, G = H_L W
         if spec.depth >= 2:
