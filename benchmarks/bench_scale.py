@@ -43,7 +43,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import optax
-from _common import blas_threads, interleaved, machine_note, ms, parse_sizes, ratio
+from _common import HUGEPAGES_HELP, blas_threads, interleaved, machine_note, ms, parse_sizes, ratio, rerun_with_hugepages
 from bench_filter import scipy_forward
 
 import stablefilt as sf
@@ -193,7 +193,10 @@ def main(argv=None) -> int:
     p.add_argument("--product-rounds", type=int, default=5, help="interleaved rounds against scipy (default 5)")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--json", help="write the rows to this JSON file")
+    p.add_argument("--malloc-hugepages", action="store_true", help=HUGEPAGES_HELP)
     args = p.parse_args(argv)
+    if args.malloc_hugepages:
+        rerun_with_hugepages(__file__)
     print(f"bench_scale: jax {jax.__version__} on {jax.devices()[0].platform}; {machine_note()}")
     print(f"random geometric graphs, degree ~{DEGREE:g}, normalised Laplacian in RCM order; 2 layers, F = {F}, "
           f"K = {K}; epoch = {args.signals} training steps of one signal")
