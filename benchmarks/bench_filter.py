@@ -19,7 +19,8 @@ independently of the library. Timed, interleaved round by round:
 Targets: forward <= 1.0x scipy's forward, forward+backward <= 2.0x scipy's
 forward; at N >= 10^5 also forward <= 0.6x and forward+backward <= 1.5x.
 Also: one product with and without the reordering, and for the monomial bank
-the loop form used above ``LOOP_MIN_ELEMENTS`` (stablefilt._looped) against
+the loop form used above ``LOOP_MIN_ELEMENTS`` without malloc huge pages
+(stablefilt._looped) against
 the same bank written out tap by tap, timed in the same rounds.
 
     python benchmarks/bench_filter.py [--sizes 1e4,1e5] [--rounds 15]
@@ -52,7 +53,7 @@ from _common import (
 
 import stablefilt as sf
 from stablefilt import _filters
-from stablefilt._looped import LOOP_MIN_ELEMENTS
+from stablefilt._looped import loop_threshold
 from stablefilt._sparse import shift_product
 
 F = 32
@@ -175,8 +176,8 @@ def bench_size(n: int, rounds: int, seed: int) -> tuple[list[str], bool]:
                 vg_w(tapsj, xj, jop, cotj)[1][1].block_until_ready()
             finally:
                 _filters._loop_threshold = saved
-            methods["JAX fwd, written out"] = lambda: fwd_w(jop, tapsj, xj).block_until_ready()
-            methods["JAX fwd+bwd, written out"] = lambda: vg_w(tapsj, xj, jop, cotj)[1][1].block_until_ready()
+            methods["JAX fwd, written out"] = lambda fwd_w=fwd_w: fwd_w(jop, tapsj, xj).block_until_ready()
+            methods["JAX fwd+bwd, written out"] = lambda vg_w=vg_w: vg_w(tapsj, xj, jop, cotj)[1][1].block_until_ready()
         if set_blas is not None:
             def one_thread(basis=basis):
                 set_blas(1)
@@ -200,8 +201,8 @@ def bench_size(n: int, rounds: int, seed: int) -> tuple[list[str], bool]:
             print(f"  {'':9s}  {name:11s} {ms(times[name]):8.2f} ms = {r:.2f}x scipy fwd [{q[0]:.2f}-{q[1]:.2f}]  "
                   f"{verdict(r, lim)} (target <= {lim:.1f}x)")
         if "JAX fwd, written out" in times:
-            looped = n * F >= LOOP_MIN_ELEMENTS
-            print(f"  {'':9s}  {'as a loop' if looped else 'no loop (N F below the threshold)'} against written "
+            looped = n * F >= loop_threshold()
+            print(f"  {'':9s}  {'as a loop' if looped else 'no loop (below the threshold, or malloc huge pages)'} against written "
                   f"out: fwd {ratio(times, 'JAX fwd', 'JAX fwd, written out'):.2f}x "
                   f"[{'-'.join(f'{v:.2f}' for v in spread(times, 'JAX fwd', 'JAX fwd, written out'))}], fwd+bwd "
                   f"{ratio(times, 'JAX fwd+bwd', 'JAX fwd+bwd, written out'):.2f}x "

@@ -43,7 +43,16 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import optax
-from _common import HUGEPAGES_HELP, blas_threads, interleaved, machine_note, ms, parse_sizes, ratio, rerun_with_hugepages
+from _common import (
+    HUGEPAGES_HELP,
+    blas_threads,
+    interleaved,
+    machine_note,
+    ms,
+    parse_sizes,
+    ratio,
+    rerun_with_hugepages,
+)
 from bench_filter import scipy_forward
 
 import stablefilt as sf

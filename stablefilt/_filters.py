@@ -194,9 +194,9 @@ def run_filter(matvec: Callable, taps, x, basis: Basis, xp=np):
 
 
 def _loop_threshold() -> int:
-    from ._looped import LOOP_MIN_ELEMENTS
+    from ._looped import loop_threshold
 
-    return LOOP_MIN_ELEMENTS
+    return loop_threshold()
 
 
 def run_filter_backward(matvec: Callable, taps, x, basis: Basis):

@@ -296,3 +296,26 @@ def test_large_signal_loop_matches_eigh_with_gradients(monkeypatch, shape):
     xs = np.stack([x, 2 * x])
     batched = jax.vmap(lambda z: sf.apply_filter(jop, jnp.asarray(taps), z, basis))(jnp.asarray(xs))
     assert _rel(batched[1], 2 * ref) < 1e-5
+
+
+def test_no_loop_under_malloc_huge_pages(monkeypatch):
+    """With glibc's malloc huge pages (``GLIBC_TUNABLES`` holding
+    ``glibc.malloc.hugetlb=1``) the written-out bank was the faster
+    (benchmarks/README.md), so no loop is traced; without the tunable, the
+    same call above the threshold traces the loop (measured, common practice
+    for tunables: glibc.malloc.hugetlb takes 0, 1 or 2)."""
+    from stablefilt import _looped
+
+    monkeypatch.setattr(_looped, "LOOP_MIN_ELEMENTS", 0)
+    op = GRAPHS["karate-scaled"]
+    jop = sf.jax_operator(op)
+    taps = jnp.ones((4, 3, 2), jnp.float32)
+    x = jnp.ones((op.nodes, 3), jnp.float32)
+
+    def traced():
+        return str(jax.make_jaxpr(lambda t, z: sf.apply_filter(jop, t, z, sf.make_basis()))(taps, x))
+
+    monkeypatch.setenv("GLIBC_TUNABLES", "glibc.malloc.trim_threshold=1000")
+    assert "scan[" in traced()
+    monkeypatch.setenv("GLIBC_TUNABLES", "glibc.malloc.trim_threshold=1000:glibc.malloc.hugetlb=1")
+    assert "scan[" not in traced()
