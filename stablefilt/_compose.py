@@ -32,7 +32,7 @@ from ._joint import (
     schur_constant,
 )
 from ._kernel import eigenvalue_slack
-from ._second import SecondKernel, operator_remainder, second_kernel, second_order
+from ._second import SecondKernel, second_kernel, second_order, smallest_remainder
 from ._series import ABS_ALLOW, REL_ALLOW
 
 #: Slopes of each nonlinearity lie in ``[alpha, 1]`` (relu and tanh: 0; leaky relu: 0.1; none: D = I).
@@ -327,13 +327,12 @@ def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pco
     layers' banks."""
     fb = filter_bounds(taps, spec.basis, interval, eps, filters, lam)
     g_hat = float(gain_constants(taps, spec.basis, wide)[0])
-    br = bank_remainder(taps, spec.basis, interval, eps)
     so = None if kernel is None else second_order(taps, spec.basis, interval, eps, kernel)
-    rem, form = operator_remainder(br, so)
+    rem, form = smallest_remainder(fb.remainder, bank_remainder(taps, spec.basis, interval, eps), so)
     ch = bank_change(taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
                      joint=joint.constant, radius=radius, path_cover=pcover,
                      gains=(float(filters.bank_sup), g_hat), bank_remainder=rem, remainder_form=form)
-    return ch, g_hat, fb, min(rem, combine(fb.remainder))
+    return ch, g_hat, fb, rem
 
 
 def _bias_change(bb: BiasBank | None, spec, eps: float, interval, lam, pcover, wide, radius: float):

@@ -34,7 +34,7 @@ from ._interval import SpectralInterval
 from ._joint import eigen_cover
 from ._kernel import eigenvalue_slack, spectral_first_order
 from ._model import ModelSpec, forward_np
-from ._second import SecondOrder, operator_remainder, second_kernel, second_order
+from ._second import SecondOrder, second_kernel, second_order, smallest_remainder
 from ._series import REL_ALLOW, with_allowance
 
 
@@ -169,9 +169,7 @@ class LayerBound(NamedTuple):
         """The bank's remainder for every unit-norm input, the smallest of
         ``||remainder||_2`` (per filter), the whole-bank form and the
         second-order kernel form, and the name of the one kept."""
-        per = (combine(self.remainder), "per filter, s.5")
-        other = operator_remainder(self.bank, self.second)
-        return per if other is None or per[0] <= other[0] else other
+        return smallest_remainder(self.remainder, self.bank, self.second)
 
     def bank_remainder(self) -> float:
         """:meth:`remainder_choice`'s value."""

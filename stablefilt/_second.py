@@ -23,7 +23,7 @@ from math import comb
 import numpy as np
 
 from ._exact import UNIT, second_transform
-from ._filterbounds import BankRemainder, bank_remainder
+from ._filterbounds import BankRemainder, bank_remainder, combine
 from ._filters import Basis, basis_values
 from ._joint import Cover, _sup_lambda_max
 from ._series import with_allowance
@@ -199,3 +199,12 @@ def operator_remainder(bank: BankRemainder | None, second: SecondOrder | None) -
     if second is not None:
         forms.append((second.operator(), "second-order kernel, s.9.8"))
     return min(forms, key=lambda f: f[0]) if forms else None
+
+
+def smallest_remainder(per_filter, bank: BankRemainder | None, second: SecondOrder | None) -> tuple[float, str]:
+    """The smallest, for every unit-norm input, of the per-filter remainders
+    combined by ``||.||_2`` (docs/theory.md section 5), the whole-bank form
+    (9.7) and the second-order kernel form (9.8), with its name."""
+    per = (combine(per_filter), "per filter, s.5")
+    other = operator_remainder(bank, second)
+    return per if other is None or per[0] <= other[0] else other
