@@ -32,13 +32,12 @@ from __future__ import annotations
 import jax
 import jax.numpy as jnp
 import numpy as np
-import optax
 from jax.sharding import Mesh, NamedSharding
 from jax.sharding import PartitionSpec as P
 
 from ._errors import ConfigError
 from ._model import ModelSpec, forward
-from ._optstep import optimiser_step
+from ._optstep import loss_terms, optimiser_step
 
 AXIS = "signals"
 
@@ -66,10 +65,7 @@ def per_signal_loss(out, y, task: str):
     """``l_i``: the task loss of each signal, shape ``(B,)``; its mean over
     the batch is the trainer's ``task_loss`` (softmax cross-entropy or the
     squared error, averaged over nodes and outputs)."""
-    if task == "classify":
-        terms = optax.softmax_cross_entropy(out, jax.nn.one_hot(y, out.shape[-1], dtype=out.dtype))  # as task_loss
-    else:
-        terms = ((out[..., 0] if y.ndim < out.ndim else out) - y) ** 2
+    terms = loss_terms(out, y, task)
     return terms.reshape(terms.shape[0], -1).mean(axis=1)
 
 

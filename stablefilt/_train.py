@@ -26,7 +26,7 @@ from ._interval import SpectralInterval, spectral_interval
 from ._lock import check_unlocked, run_lock
 from ._model import ModelSpec, forward, init_params, spec_from
 from ._modelcert import certify_model, model_constants
-from ._optstep import optimiser_step
+from ._optstep import loss_terms, optimiser_step
 from ._penalty import model_penalty, penalty
 from ._predictions import training_predictions
 from ._progress import bar, say_through
@@ -78,12 +78,7 @@ def _residual(out, y):
 
 
 def task_loss(out, y, task: str):
-    if task == "classify":
-        # One-hot targets, not integer labels: the integer form gathers with
-        # index arrays that XLA constant-folds at compile time, for seconds and
-        # with a warning on the terminal at 10^5 nodes.
-        return jnp.mean(optax.softmax_cross_entropy(out, jax.nn.one_hot(y, out.shape[-1], dtype=out.dtype)))
-    return jnp.mean(_residual(out, y) ** 2)
+    return jnp.mean(loss_terms(out, y, task))
 
 
 def metric(out, y, task: str):
