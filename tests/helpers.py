@@ -321,3 +321,11 @@ def bank_first_order(s, taps, basis, d, x):
     l1 = np.where(close[:, :, None, None], 0.5 * (dh[:, None] + dh[None, :]),
                   (h[:, None] - h[None, :]) / safe[:, :, None, None])  # (N, N, F_in, F_out)
     return v @ np.einsum("ij,ijfg,jf->ig", v.T @ d @ v, l1, v.T @ x)
+
+
+def bank_remainder_dense(s, taps, basis, e, x):
+    """``H(S + D) X - H(S) X - L(D) X`` with ``D = E S + S E``: what the
+    first-order change leaves of a bank's change (numpy ``eigh`` for both
+    banks, Daleckii-Krein for ``L``)."""
+    d = e @ s + s @ e
+    return bank_apply(s + d, taps, basis, x) - bank_apply(s, taps, basis, x) - bank_first_order(s, taps, basis, d, x)
