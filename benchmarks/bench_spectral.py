@@ -70,6 +70,11 @@ def _laplacian(n: int, seed: int) -> sp.csr_array:
 def _load() -> str:
     return "load average " + ", ".join(f"{x:.2f}" for x in os.getloadavg())
 
+
+def _setting(rounds: int) -> str:
+    """How a new-process figure was taken: rounds, BLAS threads, load."""
+    return f"median of {rounds}; OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}; {_load()}"
+
 def _versus_import(cmd, rounds: int):
     """Median wall time of the command ``cmd`` (a new process, JSON on
     stdout) and of ``python -c 'import stablefilt'`` alone, interleaved in
@@ -129,8 +134,8 @@ def bench_cli(n: int, rounds: int) -> dict:
     print(f"stablefilt bound N = {n} (new process): {bound_s:.2f} s; reference 'import stablefilt' alone "
           f"{ref_s:.2f} s, ratio {bound_s / ref_s:.2f}, difference {bound_s - ref_s:.2f} s; last run: lower end by "
           f"{ends['lower']['method']} {ends['lower']['seconds']:.2f} s, upper end by {ends['upper']['method']} "
-          f"{ends['upper']['seconds']:.2f} s, certified {out['bounds'][0]['certified']:.4g}; median of {rounds}; "
-          f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}; {_load()}", flush=True)
+          f"{ends['upper']['seconds']:.2f} s, certified {out['bounds'][0]['certified']:.4g}; {_setting(rounds)}",
+          flush=True)
     return {"bound": bound_s, "reference": ref_s}
 
 
@@ -181,8 +186,7 @@ def bench_certify(n: int, rounds: int) -> dict:
     print(f"stablefilt certify N = {n} (new process, one-filter run): {cert_s:.2f} s; reference 'import stablefilt' "
           f"alone {ref_s:.2f} s, ratio {cert_s / ref_s:.2f}; upper end by {ends['upper']['method']} "
           f"{ends['upper']['seconds']:.2f} s (last run); one training epoch of 16 signals {epoch_s:.2f} s "
-          f"(certify / epoch {cert_s / epoch_s:.2f}); median of {rounds}; "
-          f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}; {_load()}", flush=True)
+          f"(certify / epoch {cert_s / epoch_s:.2f}); {_setting(rounds)}", flush=True)
     return {"certify": cert_s, "reference": ref_s, "epoch": epoch_s}
 
 
