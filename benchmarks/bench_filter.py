@@ -19,9 +19,9 @@ independently of the library. Timed, interleaved round by round:
 Targets: forward <= 1.0x scipy's forward, forward+backward <= 2.0x scipy's
 forward; at N >= 10^5 also forward <= 0.6x and forward+backward <= 1.5x.
 Also: one product with and without the reordering, and for the monomial bank
-the loop form used above ``LOOP_MIN_ELEMENTS`` without malloc huge pages
-(stablefilt._looped) against
-the same bank written out tap by tap, timed in the same rounds.
+the loop form (stablefilt._looped, used above ``LOOP_MIN_ELEMENTS`` without
+malloc huge pages) against the same bank written out tap by tap, timed in
+the same rounds.
 
     python benchmarks/bench_filter.py [--sizes 1e4,1e5] [--rounds 15]
 """
@@ -202,12 +202,15 @@ def bench_size(n: int, rounds: int, seed: int) -> tuple[list[str], bool]:
                   f"{verdict(r, lim)} (target <= {lim:.1f}x)")
         if "JAX fwd, written out" in times:
             looped = n * F >= loop_threshold()
-            print(f"  {'':9s}  {'as a loop' if looped else 'no loop (below the threshold, or malloc huge pages)'} against written "
-                  f"out: fwd {ratio(times, 'JAX fwd', 'JAX fwd, written out'):.2f}x "
-                  f"[{'-'.join(f'{v:.2f}' for v in spread(times, 'JAX fwd', 'JAX fwd, written out'))}], fwd+bwd "
-                  f"{ratio(times, 'JAX fwd+bwd', 'JAX fwd+bwd, written out'):.2f}x "
-                  f"[{'-'.join(f'{v:.2f}' for v in spread(times, 'JAX fwd+bwd', 'JAX fwd+bwd, written out'))}]; "
-                  f"written out: fwd {ratio(times, 'JAX fwd, written out', 'scipy'):.2f}x, fwd+bwd "
+
+            def vs_written(m, times=times):
+                q = spread(times, m, m + ", written out")
+                return f"{ratio(times, m, m + ', written out'):.2f}x [{q[0]:.2f}-{q[1]:.2f}]"
+
+            print(f"  {'':9s}  {'as a loop' if looped else 'no loop (below the threshold, or malloc huge pages)'} "
+                  f"against written out: fwd {vs_written('JAX fwd')}, fwd+bwd {vs_written('JAX fwd+bwd')}; "
+                  f"written out: fwd "
+                  f"{ratio(times, 'JAX fwd, written out', 'scipy'):.2f}x, fwd+bwd "
                   f"{ratio(times, 'JAX fwd+bwd, written out', 'scipy'):.2f}x scipy fwd")
         if n >= 100_000:
             print(f"  {'':9s}  scale targets at N >= 10^5: fwd {rf:.2f}x {verdict(rf, SCALE_FWD)} (<= {SCALE_FWD}x), "
