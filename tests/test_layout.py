@@ -62,8 +62,22 @@ def _imports(tree: ast.AST, module: str, modules: set[str]) -> tuple[set[str], s
             visit(child)
 
     visit(tree)
+    if module == PACKAGE:
+        inside |= {f"{PACKAGE}.{m}" for m in _lazy_table(tree).values()}
     inside.discard(module)
     return inside, outside
+
+
+def _lazy_table(tree: ast.AST) -> dict[str, str]:
+    """The package's ``_PUBLIC = {name: module}``: names its ``__getattr__``
+    loads from those modules on first use, imports in effect."""
+    for node in getattr(tree, "body", []):
+        if (isinstance(node, (ast.Assign, ast.AnnAssign)) and isinstance(node.value, ast.Dict)
+                and any(isinstance(t, ast.Name) and t.id == "_PUBLIC"
+                        for t in (node.targets if isinstance(node, ast.Assign) else [node.target]))):
+            return {k.value: v.value for k, v in zip(node.value.keys, node.value.values)
+                    if isinstance(k, ast.Constant) and isinstance(v, ast.Constant)}
+    return {}
 
 
 def import_graph(sources: dict[str, str]) -> tuple[dict[str, set[str]], dict[str, set[str]]]:
@@ -126,7 +140,7 @@ GRAPH, EXTERN = import_graph(SOURCES)
 
 def test_the_package_was_read():
     assert len(SOURCES) > 20
-    assert f"{PACKAGE}._certify" in GRAPH[PACKAGE]  # __init__ re-exports it
+    assert f"{PACKAGE}._certify" in GRAPH[PACKAGE]  # __init__ re-exports it (loaded on first use)
 
 
 def test_no_import_cycles():
@@ -192,3 +206,13 @@ def test_parser_sees_function_imports_and_skips_type_checking():
     # Without the function-level import the cycle is gone; under TYPE_CHECKING it never counted.
     sources[f"{PACKAGE}._a"] = "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from ._b import B\n"
     assert find_cycle(import_graph(sources)[0]) is None
+
+
+def test_the_lazy_table_counts_as_imports():
+    sources = {
+        f"{PACKAGE}": '_PUBLIC = {\n    "f": "_a",\n}\n',
+        f"{PACKAGE}._a": "import stablefilt\n",
+    }
+    graph, _ = import_graph(sources)
+    assert graph[PACKAGE] == {f"{PACKAGE}._a"}
+    assert find_cycle(graph) == [PACKAGE, f"{PACKAGE}._a", PACKAGE]
