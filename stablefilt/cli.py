@@ -531,6 +531,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
+    """The command line (``argv`` None: ``sys.argv``). The ``stablefilt``
+    command and ``python -m stablefilt`` start through
+    :func:`stablefilt._launch.main`, which sets malloc's huge pages first."""
     parser = build_parser()
     args = parser.parse_args(argv)
     from ._progress import set_quiet
