@@ -26,6 +26,7 @@ from ._joint import (
     JointFactor,
     eigen_cover,
     input_first_order,
+    input_first_order_sparse,
     interval_cover,
     joint_factor,
     path_bound,
@@ -476,7 +477,8 @@ def _masked_readout(w, pre, beta, nonlinearity) -> np.ndarray:
 
 
 def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eigenvectors=None,
-                    forward_layer, known=None, changes: LayerChanges | None = None, refine: int = 0) -> np.ndarray:
+                    forward_layer, known=None, changes: LayerChanges | None = None, refine: int = 0,
+                    matrix=None) -> np.ndarray:
     """Input-specific bound per signal on ``||Phi(S) x_b - Phi(S_hat) x_b||_F``
     (``x``: ``(B, N, F_0)``; docs/theory.md 9.2, 9.3, 9.5). Per layer the
     smaller of the joint spectral bound (with eigenvectors) and the bank's
@@ -488,10 +490,12 @@ def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eige
     (:mod:`stablefilt._networst`, docs/theory.md 9.6, a few seconds), until
     the largest bound is a refined one or ``refine`` signals are done. ``forward_layer(i, z) -> (pre, out)``
     runs layer ``i`` in float64; ``known[i]``, when given, are other valid
-    bounds on layer ``i``'s change of these signals (the smaller is kept)."""
+    bounds on layer ``i``'s change of these signals (the smaller is kept).
+    Without eigenvectors, ``matrix`` (``S`` in float64) gives each bank's
+    joint bound for its input by sparse products (9.2, without eigenvectors)."""
     lc = changes or layer_changes(mc, cc, bounds, eps)
     z = np.asarray(x, dtype=np.float64)
-    out = _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known, False)
+    out = _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known, False, matrix)
     if refine and mc.eigenvalues is not None and eigenvectors is not None:
         # Refine the signal with the largest bound until the largest is a
         # refined one, or ``refine`` signals are done.
@@ -507,7 +511,7 @@ def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eige
     return out
 
 
-def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known, worst: bool):
+def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known, worst: bool, matrix=None):
     """The per-signal chain of :func:`composed_inputs`; ``worst`` adds the
     fixed-input first-order bounds of :mod:`stablefilt._inputworst`."""
     from ._inputworst import input_worst
@@ -516,6 +520,8 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
     e = np.zeros(z.shape[0])
     e_prev, last_in, pre = e, z, None
     use_spec = lam is not None and eigenvectors is not None
+    ends = (mc.interval.lower, mc.interval.upper)
+    sparse = not use_spec and matrix is not None
     chain = []
     x0 = z
     for i, (lb, ch, extra) in enumerate(zip(bounds, lc.changes, cc.layers)):
@@ -526,6 +532,8 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
             if worst:
                 first = eps * input_worst(mc.params["layers"][i]["taps"], spec.basis, lam, eigenvectors, z, cc.slack)
                 d = np.minimum(d, first * (1 + REL_ALLOW) + rem)
+        elif sparse:
+            d = np.minimum(d, input_first_order_sparse(extra.joint, matrix, z, eps, ends) + lb.input_remainder(z))
         if known is not None:
             d = np.minimum(d, known[i])
         e_prev, e = e, d + lc.gains_hat[i] * e
@@ -542,9 +550,11 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
     # ||W D v|| <= ||W^T v|| + ||W_U|| ||v||, and ||W^T v|| through the composite bank.
     ro = cc.readout
     dw = lc.readout_change.certified * np.sqrt(np.sum(last_in**2, axis=(1, 2)))
+    feat = np.sqrt(np.sum(last_in**2, axis=1))
+    remw = np.linalg.norm(feat @ lc.readout_remainder, axis=1) * (1 + REL_ALLOW)
+    if sparse:
+        dw = np.minimum(dw, input_first_order_sparse(ro.joint, matrix, last_in, eps, ends) + remw)
     if use_spec:
-        feat = np.sqrt(np.sum(last_in**2, axis=1))
-        remw = np.linalg.norm(feat @ lc.readout_remainder, axis=1) * (1 + REL_ALLOW)
         dw = np.minimum(dw, input_first_order(ro.joint, lam, eigenvectors, last_in, eps) + remw)
         if worst:
             first = eps * input_worst(ro.taps, spec.basis, lam, eigenvectors, last_in, cc.slack)

@@ -30,6 +30,8 @@ from ._series import REL_ALLOW
 
 #: Grid points over a split interval for the rigorous suprema.
 GRID = 4097
+#: Float64 values of Chebyshev columns held at once by :func:`input_first_order_sparse` (128 MB).
+CHUNK_VALUES = 2**24
 
 
 @dataclasses.dataclass(frozen=True)
@@ -337,6 +339,83 @@ def path_bound(taps, basis: Basis, eps: float, radius: float, cover: Cover, opti
 def _spectral_norm(beta) -> float:
     """``||beta||_2`` of a matrix of per-filter bounds (docs/theory.md s. 8)."""
     return float(np.linalg.norm(np.asarray(beta, dtype=np.float64), ord=2)) * (1 + REL_ALLOW)
+
+
+def _gamma(k: float) -> float:
+    """``gamma_k = k u / (1 - k u)`` (Higham, 2002, ch. 3)."""
+    return k * UNIT / (1.0 - k * UNIT)
+
+
+def chebyshev_columns(matrix, z, split: Basis, kr: int) -> tuple[np.ndarray, np.ndarray]:
+    """``T_a(t(S)) z`` for ``a < kr`` by the three-term recurrence in float64
+    (``z``: ``(B, N, F)``; result ``(B, N, F, kr)``), and ``eta`` ``(kr,)``:
+    each computed column is within ``eta_a ||z_f||`` of the exact one when
+    ``spec S`` lies in the split interval (docs/theory.md 9.2, without
+    eigenvectors); ``eta`` is inf where that cannot be claimed."""
+    z = np.asarray(z, dtype=np.float64)
+    nb, n, f = z.shape
+    al, be = split.mapping()
+    flat = np.moveaxis(z, 0, 1).reshape(n, nb * f)
+    cols = [flat]
+    if kr > 1:
+        cols.append(al * (matrix @ flat) + be * flat)
+    for _ in range(2, kr):
+        cols.append(2.0 * (al * (matrix @ cols[-1]) + be * cols[-1]) - cols[-2])
+    out = np.stack([c.reshape(n, nb, f) for c in cols], axis=-1).transpose(1, 0, 2, 3)
+    # Rounding: |fl(S v) - S v| <= gamma_m |S| |v|, m the most nonzeros in a row.
+    absm = abs(matrix)
+    rows = np.asarray(absm.sum(axis=1)).ravel()
+    m = int(np.max(matrix.getnnz(axis=1))) if hasattr(matrix, "getnnz") else n
+    c = abs(al) * float(np.max(rows)) + abs(be)  # || |S| ||_2 <= max row sum of |S| (symmetric)
+    local = _gamma(m + 4) * (2.0 * c + 1.0) * 1.01
+    a = np.arange(kr, dtype=np.float64)
+    eta = a * (a + 1.0) / 2.0 * local
+    if not np.max(eta) < 0.01:
+        eta = np.full(kr, np.inf)
+    return out, eta
+
+
+def gram_quadratic(factor: JointFactor, matrix, z) -> tuple[np.ndarray, np.ndarray]:
+    """Per signal ``(q, err)``: ``q = <P, Z^T Z>`` computed in float64, equal to
+    ``sum_j z~_j^T G_B(lam_j) z~_j`` in exact arithmetic, and ``err`` bounding
+    ``|q - exact|`` (docs/theory.md 9.2, without eigenvectors; inf where it
+    cannot be claimed)."""
+    cols, eta = chebyshev_columns(matrix, z, factor.cover.split, factor.kr)
+    nb, n, f, kr = cols.shape
+    zm = cols.reshape(nb, n, f * kr)  # layout (f, a), as P = B^T B
+    gram = np.einsum("bnp,bnq->bpq", zm, zm)
+    feat = np.sqrt(np.sum(np.asarray(z, dtype=np.float64) ** 2, axis=1))  # (B, F)
+    scale = np.repeat(feat, kr, axis=1)  # ||z_f|| per column
+    e = np.tile(eta, f)
+    d_gram = (e[:, None] + e[None, :] + e[:, None] * e[None, :]
+              + _gamma(n) * (1 + e[:, None]) * (1 + e[None, :]))[None] * scale[:, :, None] * scale[:, None, :]
+    p, p_err = factor.pb, factor.pb_err
+    quad = np.einsum("pq,bpq->b", p, gram)
+    err = (np.einsum("pq,bpq->b", np.abs(p) + p_err, d_gram + _gamma(p.size) * np.abs(gram))
+           + np.einsum("pq,bpq->b", p_err, np.abs(gram)))
+    return quad, np.where(np.isfinite(err), err, np.inf)
+
+
+def input_first_order_sparse(factor: JointFactor, matrix, z, eps: float, interval) -> np.ndarray:
+    """Input-specific joint first-order bound per signal without
+    eigenvectors (docs/theory.md 9.2): as :func:`input_first_order` with
+    ``sum_j z~_j^T G_B(lam_j) z~_j`` from :func:`gram_quadratic`.
+    ``matrix``: ``S`` in float64 (scipy sparse or dense); ``interval``: the
+    certified ``(a, b)`` holding ``spec S``, which the factor's split
+    interval must hold too (else, or where rounding cannot be bounded, inf)."""
+    z = np.asarray(z, dtype=np.float64)
+    lo, hi = factor.cover.split.interval
+    if not (lo <= interval[0] and interval[1] <= hi):
+        return np.full(z.shape[0], np.inf)
+    # Signals in chunks of at most CHUNK_VALUES values of the columns.
+    step = max(1, CHUNK_VALUES // max(1, z.shape[1] * z.shape[2] * factor.kr))
+    parts = [gram_quadratic(factor, matrix, z[i:i + step]) for i in range(0, z.shape[0], step)]
+    quad = np.concatenate([q for q, _ in parts])
+    err = np.concatenate([e for _, e in parts])
+    zn = np.sqrt(np.sum(z**2, axis=(1, 2)))
+    val = (np.sqrt(max(factor.sup_a, 0.0)) * np.sqrt(np.maximum(quad + err, 0.0))
+           + factor.res * np.sqrt(factor.k * factor.kr) * zn)
+    return eps * val * (1 + REL_ALLOW)
 
 
 def input_first_order(factor: JointFactor, lam, vecs, z, eps: float) -> np.ndarray:

@@ -413,7 +413,7 @@ def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterva
         return old
     new = composed_inputs(constants, comp, bounds, x, eps, eigenvectors=eigenvectors,
                           forward_layer=lambda i, v: _layer(p, spec, op_matrix, i, v), known=contribs, changes=lc,
-                          refine=refine)
+                          refine=refine, matrix=op_matrix)
     return np.minimum(old, new)
 
 

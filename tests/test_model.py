@@ -27,6 +27,7 @@ from stablefilt import (
     forward_np,
     init_params,
     jax_operator,
+    model_constants,
     shift_operator,
     spectral_interval,
 )
@@ -312,6 +313,7 @@ def test_measured_change_never_exceeds_certificate(graph_ops, case):
     params = _random_params(spec, seed=case["seed"], scale=0.6)
     cert = certify_model(params, spec, iv, n, EPS, rho=RHO, eigenvalues=iv.eigenvalues)
     cert_iv = certify_model(params, spec, iv, n, EPS, rho=RHO)  # interval only (the per-epoch form)
+    interval_constants = model_constants(params, spec, iv, n, matrix=op.matrix)
     rng = np.random.default_rng(100 + case["seed"])
     w, v = np.linalg.eigh(s)
     # Random signals, and single eigenvectors (where the spectral form of the
@@ -325,7 +327,11 @@ def test_measured_change_never_exceeds_certificate(graph_ops, case):
         assert np.isfinite(bound) and bound <= cert_iv.at(eps).certified * (1 + 1e-12)
         per_norms = certify_inputs(params, spec, op.matrix, iv, x, eps, iv.eigenvalues)
         per_spec = certify_inputs(params, spec, op.matrix, iv, x, eps, w, v)  # as `stablefilt certify` calls it
-        assert per_norms.shape == per_spec.shape == (len(x),)
+        # Interval only, as on graphs too large for eigh: each bank's joint
+        # bound for its input comes from sparse products (theory.md s. 9.2).
+        per_sparse = certify_inputs(params, spec, op.matrix, iv, x, eps, constants=interval_constants)
+        assert per_norms.shape == per_spec.shape == per_sparse.shape == (len(x),)
+        assert np.all(per_sparse <= cert_iv.at(eps).certified * (1 + 1e-9))
         # Input-specific bounds use measured norms: never above the
         # operator-level one for inputs of norm rho.
         assert np.all(per_norms <= bound * (1 + 1e-9)) and np.all(per_spec <= per_norms * (1 + 1e-9))
@@ -336,6 +342,7 @@ def test_measured_change_never_exceeds_certificate(graph_ops, case):
             assert d.max() <= bound, (label, eps, d.max(), bound)
             assert np.all(d <= per_norms), (label, eps, d, per_norms)
             assert np.all(d <= per_spec), (label, eps, d, per_spec)
+            assert np.all(d <= per_sparse), (label, eps, d, per_sparse)
             worst = max(worst, float(np.max(d / per_spec)))
     # The check has teeth: the perturbations move the output.
     assert worst > 1e-3

@@ -16,7 +16,17 @@ from reference import change, daleckii_krein, filter_matrices, random_symmetric,
 import stablefilt as sf
 from stablefilt._exact import divided_transform
 from stablefilt._filters import Basis, basis_values
-from stablefilt._joint import eigen_cover, input_first_order, interval_cover, joint_factor, path_bound, schur_constant
+from stablefilt._joint import (
+    chebyshev_columns,
+    eigen_cover,
+    gram_quadratic,
+    input_first_order,
+    input_first_order_sparse,
+    interval_cover,
+    joint_factor,
+    path_bound,
+    schur_constant,
+)
 from stablefilt._kernel import eigenvalue_slack
 from stablefilt.stress import worst_perturbation
 
@@ -203,6 +213,52 @@ def test_input_specific_joint_bound(family):
         for b in range(3):
             got = float(np.linalg.norm(d @ x[b].T.reshape(-1)))
             assert got <= bound[b] * (1 + 1e-9) + 1e-12, (name, b, got, bound[b])
+
+
+def test_input_specific_bound_without_eigenvectors(family):
+    """Without eigenvectors (theory.md s. 9.2): ``<P, Z^T Z>`` from sparse
+    products equals ``sum_j X~_j^T G_B(lam_j) X~_j`` evaluated on numpy's
+    ``eigh`` within its stated error; the bound is above the Daleckii-Krein
+    first-order change (numpy) of the signals for random, scaling and pair
+    ``E``; columns taken on the wrong interval (the filter's, not the
+    split's) miss the reference, so the comparison can fail."""
+    import scipy.sparse as sps
+
+    name, op = family
+    s = op.dense()
+    lam, v = np.linalg.eigh(s)
+    rng = np.random.default_rng(611 + len(name))
+    basis = Basis("chebyshev", wider_interval(s, rng))
+    taps = rng.standard_normal((4, 2, 3))
+    n = s.shape[0]
+    x = rng.standard_normal((3, n, 2))
+    x[1] = np.outer(v[:, -1], [1.0, -0.5])
+    iv = sf.spectral_interval(op)
+    ends = (iv.lower, iv.upper)
+    factor = joint_factor(taps, basis, interval_cover(*ends))
+    mat = sps.csr_matrix(s)
+    # The reference: G_B at each eigenvalue, in the split's Chebyshev variable.
+    lo, hi = factor.cover.split.interval
+    vt = np.polynomial.chebyshev.chebvander((2 * lam - lo - hi) / (hi - lo), factor.kr - 1)  # (N, K_r)
+    xt = np.einsum("ni,bnf->bif", v, x)
+    w = np.einsum("bif,ia->bifa", xt, vt).reshape(3, n, -1)  # layout (f, a)
+    ref = np.einsum("pq,bip,biq->b", factor.pb, w, w)
+    quad, err = gram_quadratic(factor, mat, x)
+    assert np.all(err >= 0) and np.all(err <= 1e-8 * np.abs(ref) + 1e-12)
+    assert np.all(np.abs(quad - ref) <= err + 1e-9 * np.abs(ref)), (name, quad, ref, err)
+    wrong_cols, _ = chebyshev_columns(mat, x, basis, factor.kr)
+    wrong = np.einsum("pq,bnp,bnq->b", factor.pb, wrong_cols.reshape(3, n, -1), wrong_cols.reshape(3, n, -1))
+    assert np.max(np.abs(wrong - ref) / np.abs(ref)) > 1e-3
+    eps = 1e-2
+    bound = input_first_order_sparse(factor, mat, x, eps, ends)
+    assert np.all(np.isfinite(bound))
+    for e in _errors(s, lam, taps, basis, eps, rng, searched=False):
+        d = daleckii_krein(s, e, taps, basis.kind, basis.interval)
+        for b in range(3):
+            got = float(np.linalg.norm(d @ x[b].T.reshape(-1)))
+            assert got <= bound[b] * (1 + 1e-9) + 1e-12, (name, b, got, bound[b])
+    # Not claimed when the certified interval is not inside the split.
+    assert np.all(np.isinf(input_first_order_sparse(factor, mat, x, eps, (lo - 1.0, hi))))
 
 
 def test_balancing_tightens_a_trained_like_filter():
