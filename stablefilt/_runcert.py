@@ -97,13 +97,23 @@ class RunCertificate:
             raise KeyError(f"no bound at eps {eps:g}.")
         return found[-1]
 
+    @property
+    def input_method(self) -> str:
+        """How the input-specific bounds were made (recorded with them)."""
+        if self.spectrum.eigenvectors is not None:
+            return (f"eigenvectors of S: each bank's joint bound for its input (theory s.9.2), the {REFINE} largest "
+                    "refined for their own inputs (s.9.5, s.9.6)")
+        return ("interval only, no eigenvectors: each bank's joint bound for its input from float64 sparse "
+                "products (theory s.9.2)")
+
     def as_dict(self) -> dict:
         """The ``certify --json`` form."""
         iv = self.spectrum.interval
         d = self.model.as_dict()
         d.update({"run": self.run, "nodes": self.nodes, "interval": [iv.lower, iv.upper],
                   "interval_method": iv.method, "interval_ends": iv.ends(),
-                  "input_specific_test_max": {eps_key(b.eps): v for b, v in zip(self.model.bounds, self.input_test_max)}})
+                  "input_specific_test_max": {eps_key(b.eps): v for b, v in zip(self.model.bounds, self.input_test_max)},
+                  "input_specific_method": self.input_method})
         return d
 
 

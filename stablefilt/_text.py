@@ -102,6 +102,7 @@ def run_certificate_text(run, rc, eps_list) -> str:
     rows = [[f"{e:g}", fmt(b.certified), fmt(b.per_unit), fmt(rc.input_at(e)), fmt(b.published)]
             for e, b in zip(eps_list, at)]
     lines.append(table(rows, ["eps", "certified", "per unit eps", "input-specific (test max)", "published"]))
+    lines.append(f"input-specific bounds: {rc.input_method}")
     return "\n".join(lines + _assumptions(cert.assumptions) + [CAUTION])
 
 

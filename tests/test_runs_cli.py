@@ -50,6 +50,8 @@ def test_certify_json_matches_summary(runs, capsys, which):
     # operator-level one (test signals have norm <= rho).
     for key, v in d["input_specific_test_max"].items():
         assert v <= d["certified"][key] * (1 + 1e-9)
+    # A small graph: its eigenvectors are used, and the record says so.
+    assert d["input_specific_method"].startswith("eigenvectors of S")
 
 
 def test_certify_at_a_new_eps_holds(runs, capsys):
@@ -78,7 +80,7 @@ def test_certify_text_report(runs, capsys):
     capsys.readouterr()
     assert cli.main(["certify", runs[0]]) == 0
     out = capsys.readouterr().out
-    for word in ("certified", "published", "assumptions", "relative"):
+    for word in ("certified", "published", "assumptions", "relative", "input-specific bounds: eigenvectors of S"):
         assert word in out
 
 
@@ -174,3 +176,15 @@ def test_compare_table_and_csv(runs, tmp_path, capsys):
 def test_compare_missing_run(runs, tmp_path, capsys):
     line = H.one_line_exit_2(capsys, ["compare", runs[0], str(tmp_path / "gone")])
     assert "gone" in line
+
+
+def test_input_method_recorded_without_eigenvectors(runs):
+    """On a graph too large for eigh the record names the sparse-product form."""
+    import dataclasses
+
+    import stablefilt as sf
+
+    rc = sf.certify_run(sf.open_run(runs[0]), [0.05])
+    plain = dataclasses.replace(rc, spectrum=dataclasses.replace(rc.spectrum, eigenvalues=None, eigenvectors=None))
+    assert "sparse products" in plain.input_method and "sparse products" in plain.as_dict()["input_specific_method"]
+    assert rc.input_method.startswith("eigenvectors of S")
