@@ -26,11 +26,11 @@ from ._joint import (
     JointFactor,
     eigen_cover,
     input_first_order,
-    input_first_order_sparse,
     interval_cover,
     joint_factor,
     path_bound,
     schur_constant,
+    sparse_first_orders,
 )
 from ._kernel import eigenvalue_slack
 from ._second import SecondKernel, second_kernel, second_order, smallest_remainder
@@ -533,7 +533,11 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
                 first = eps * input_worst(mc.params["layers"][i]["taps"], spec.basis, lam, eigenvectors, z, cc.slack)
                 d = np.minimum(d, first * (1 + REL_ALLOW) + rem)
         elif sparse:
-            d = np.minimum(d, input_first_order_sparse(extra.joint, matrix, z, eps, ends) + lb.input_remainder(z))
+            # The last bank and the readout composite read the same input: their products are shared.
+            shared = i == len(bounds) - 1 and cc.readout is not None and spec.final_nonlinearity
+            firsts = sparse_first_orders([extra.joint] + ([cc.readout.joint] if shared else []), matrix, z, eps, ends)
+            d = np.minimum(d, firsts[0] + lb.input_remainder(z))
+            readout_first = firsts[1] if shared else None
         if known is not None:
             d = np.minimum(d, known[i])
         e_prev, e = e, d + lc.gains_hat[i] * e
@@ -553,7 +557,7 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
     feat = np.sqrt(np.sum(last_in**2, axis=1))
     remw = np.linalg.norm(feat @ lc.readout_remainder, axis=1) * (1 + REL_ALLOW)
     if sparse:
-        dw = np.minimum(dw, input_first_order_sparse(ro.joint, matrix, last_in, eps, ends) + remw)
+        dw = np.minimum(dw, readout_first + remw)
     if use_spec:
         dw = np.minimum(dw, input_first_order(ro.joint, lam, eigenvectors, last_in, eps) + remw)
         if worst:

@@ -375,12 +375,13 @@ def chebyshev_columns(matrix, z, split: Basis, kr: int) -> tuple[np.ndarray, np.
     return out, eta
 
 
-def gram_quadratic(factor: JointFactor, matrix, z) -> tuple[np.ndarray, np.ndarray]:
+def gram_quadratic(factor: JointFactor, matrix, z, columns=None) -> tuple[np.ndarray, np.ndarray]:
     """Per signal ``(q, err)``: ``q = <P, Z^T Z>`` computed in float64, equal to
     ``sum_j z~_j^T G_B(lam_j) z~_j`` in exact arithmetic, and ``err`` bounding
     ``|q - exact|`` (docs/theory.md 9.2, without eigenvectors; inf where it
-    cannot be claimed)."""
-    cols, eta = chebyshev_columns(matrix, z, factor.cover.split, factor.kr)
+    cannot be claimed). ``columns``: :func:`chebyshev_columns` of ``z`` for
+    the factor's split and ``K_r``, when already computed."""
+    cols, eta = columns if columns is not None else chebyshev_columns(matrix, z, factor.cover.split, factor.kr)
     nb, n, f, kr = cols.shape
     zm = cols.reshape(nb, n, f * kr)  # layout (f, a), as P = B^T B
     gram = np.einsum("bnp,bnq->bpq", zm, zm)
@@ -403,19 +404,37 @@ def input_first_order_sparse(factor: JointFactor, matrix, z, eps: float, interva
     ``matrix``: ``S`` in float64 (scipy sparse or dense); ``interval``: the
     certified ``(a, b)`` holding ``spec S``, which the factor's split
     interval must hold too (else, or where rounding cannot be bounded, inf)."""
+    return sparse_first_orders([factor], matrix, z, eps, interval)[0]
+
+
+def sparse_first_orders(factors, matrix, z, eps: float, interval) -> list[np.ndarray]:
+    """:func:`input_first_order_sparse` for several banks on the same input
+    ``z``; banks with the same split interval and ``K_r`` share the sparse
+    products. Signals go in chunks of at most ``CHUNK_VALUES`` column values."""
     z = np.asarray(z, dtype=np.float64)
-    lo, hi = factor.cover.split.interval
-    if not (lo <= interval[0] and interval[1] <= hi):
-        return np.full(z.shape[0], np.inf)
-    # Signals in chunks of at most CHUNK_VALUES values of the columns.
-    step = max(1, CHUNK_VALUES // max(1, z.shape[1] * z.shape[2] * factor.kr))
-    parts = [gram_quadratic(factor, matrix, z[i:i + step]) for i in range(0, z.shape[0], step)]
-    quad = np.concatenate([q for q, _ in parts])
-    err = np.concatenate([e for _, e in parts])
     zn = np.sqrt(np.sum(z**2, axis=(1, 2)))
-    val = (np.sqrt(max(factor.sup_a, 0.0)) * np.sqrt(np.maximum(quad + err, 0.0))
-           + factor.res * np.sqrt(factor.k * factor.kr) * zn)
-    return eps * val * (1 + REL_ALLOW)
+    out = [np.full(z.shape[0], np.inf) for _ in factors]
+    groups: dict = {}
+    for i, f in enumerate(factors):
+        lo, hi = f.cover.split.interval
+        if lo <= interval[0] and interval[1] <= hi:
+            groups.setdefault((lo, hi, f.kr), []).append(i)
+    for (_, _, kr), members in groups.items():
+        split = factors[members[0]].cover.split
+        step = max(1, CHUNK_VALUES // max(1, z.shape[1] * z.shape[2] * kr))
+        parts = {i: [] for i in members}
+        for b in range(0, z.shape[0], step):
+            cols = chebyshev_columns(matrix, z[b:b + step], split, kr)
+            for i in members:
+                parts[i].append(gram_quadratic(factors[i], matrix, z[b:b + step], cols))
+        for i in members:
+            f = factors[i]
+            quad = np.concatenate([q for q, _ in parts[i]])
+            err = np.concatenate([e for _, e in parts[i]])
+            val = (np.sqrt(max(f.sup_a, 0.0)) * np.sqrt(np.maximum(quad + err, 0.0))
+                   + f.res * np.sqrt(f.k * f.kr) * zn)
+            out[i] = eps * val * (1 + REL_ALLOW)
+    return out
 
 
 def input_first_order(factor: JointFactor, lam, vecs, z, eps: float) -> np.ndarray:
