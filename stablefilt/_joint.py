@@ -384,7 +384,7 @@ def gram_quadratic(factor: JointFactor, matrix, z, columns=None) -> tuple[np.nda
     cols, eta = columns if columns is not None else chebyshev_columns(matrix, z, factor.cover.split, factor.kr)
     nb, n, f, kr = cols.shape
     zm = cols.reshape(nb, n, f * kr)  # layout (f, a), as P = B^T B
-    gram = np.einsum("bnp,bnq->bpq", zm, zm)
+    gram = np.swapaxes(zm, 1, 2) @ zm  # batched BLAS product
     feat = np.sqrt(np.sum(np.asarray(z, dtype=np.float64) ** 2, axis=1))  # (B, F)
     scale = np.repeat(feat, kr, axis=1)  # ||z_f|| per column
     e = np.tile(eta, f)

@@ -239,3 +239,18 @@ def test_readout_composite_remainder_bounds_the_dense_remainder():
             cols = [H.bank_remainder_dense(s, comp, spec.basis, e, x).ravel() for x in eye]
             assert np.linalg.norm(np.stack(cols, axis=1), 2) <= rem, (eps, rem)
     assert lower
+
+
+@pytest.mark.parametrize("n, f", [(1000, 16), (60, 3), (9, 20), (1, 1), (40, 9)])
+def test_unique_rows_match_numpy(n, f):
+    """The readout mask's distinct activation patterns, found by packing
+    rows into bytes, are numpy's ``unique(..., axis=0)`` rows."""
+    from stablefilt._compose import _unique_rows
+
+    rng = np.random.default_rng(n + f)
+    mask = rng.random((n, f)) < rng.uniform(0.05, 0.95)
+    mask[: n // 3] = mask[0]  # repeated rows
+    got = _unique_rows(mask)
+    want = np.unique(mask, axis=0)
+    assert len(got) == len(want)
+    assert sorted(map(tuple, got.tolist())) == sorted(map(tuple, want.tolist()))
