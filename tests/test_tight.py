@@ -193,26 +193,38 @@ def test_composition_with_a_previous_bank(family, optimise):
         assert got <= eps * j * (1 + 1e-9) + 1e-12, (name, got, eps * j)
 
 
+def _bank_and_signals(s, seed):
+    """A ``(4, 2, 3)`` Chebyshev bank on an interval wider than the spectrum
+    and three signals, one on the top eigenvector: ``(lam, v, rng, basis, taps, x)``."""
+    lam, v = np.linalg.eigh(s)
+    rng = np.random.default_rng(seed)
+    basis = Basis("chebyshev", wider_interval(s, rng))
+    taps = rng.standard_normal((4, 2, 3))
+    x = rng.standard_normal((3, s.shape[0], 2))
+    x[1] = np.outer(v[:, -1], [1.0, -0.5])  # concentrated on one eigenvector
+    return lam, v, rng, basis, taps, x
+
+
+def _assert_above_first_order(name, s, lam, taps, basis, x, eps, bound, rng):
+    """The Daleckii-Krein first-order change (numpy) of each signal for
+    random, scaling and pair ``E`` is within ``bound``."""
+    for e in _errors(s, lam, taps, basis, eps, rng, searched=False):
+        d = daleckii_krein(s, e, taps, basis.kind, basis.interval)
+        for b in range(len(x)):
+            got = float(np.linalg.norm(d @ x[b].T.reshape(-1)))
+            assert got <= bound[b] * (1 + 1e-9) + 1e-12, (name, b, got, bound[b])
+
+
 def test_input_specific_joint_bound(family):
     """``||DH(S)[E S + S E] X||_F`` for given signals ``X`` is within the
     input-specific joint bound (theory.md s. 9.2)."""
     name, op = family
     s = op.dense()
-    lam, v = np.linalg.eigh(s)
-    rng = np.random.default_rng(301 + len(name))
-    basis = Basis("chebyshev", wider_interval(s, rng))
-    taps = rng.standard_normal((4, 2, 3))
-    n = s.shape[0]
-    x = rng.standard_normal((3, n, 2))
-    x[1] = np.outer(v[:, -1], [1.0, -0.5])  # concentrated on one eigenvector
+    lam, v, rng, basis, taps, x = _bank_and_signals(s, 301 + len(name))
     eps = 1e-2
     factor = joint_factor(taps, basis, eigen_cover(lam, eigenvalue_slack(lam)), optimise=True)
     bound = input_first_order(factor, lam, v, x, eps)
-    for e in _errors(s, lam, taps, basis, eps, rng, searched=False):
-        d = daleckii_krein(s, e, taps, basis.kind, basis.interval)
-        for b in range(3):
-            got = float(np.linalg.norm(d @ x[b].T.reshape(-1)))
-            assert got <= bound[b] * (1 + 1e-9) + 1e-12, (name, b, got, bound[b])
+    _assert_above_first_order(name, s, lam, taps, basis, x, eps, bound, rng)
 
 
 def test_input_specific_bound_without_eigenvectors(family):
@@ -226,13 +238,8 @@ def test_input_specific_bound_without_eigenvectors(family):
 
     name, op = family
     s = op.dense()
-    lam, v = np.linalg.eigh(s)
-    rng = np.random.default_rng(611 + len(name))
-    basis = Basis("chebyshev", wider_interval(s, rng))
-    taps = rng.standard_normal((4, 2, 3))
     n = s.shape[0]
-    x = rng.standard_normal((3, n, 2))
-    x[1] = np.outer(v[:, -1], [1.0, -0.5])
+    lam, v, rng, basis, taps, x = _bank_and_signals(s, 611 + len(name))
     iv = sf.spectral_interval(op)
     ends = (iv.lower, iv.upper)
     factor = joint_factor(taps, basis, interval_cover(*ends))
@@ -252,11 +259,7 @@ def test_input_specific_bound_without_eigenvectors(family):
     eps = 1e-2
     bound = input_first_order_sparse(factor, mat, x, eps, ends)
     assert np.all(np.isfinite(bound))
-    for e in _errors(s, lam, taps, basis, eps, rng, searched=False):
-        d = daleckii_krein(s, e, taps, basis.kind, basis.interval)
-        for b in range(3):
-            got = float(np.linalg.norm(d @ x[b].T.reshape(-1)))
-            assert got <= bound[b] * (1 + 1e-9) + 1e-12, (name, b, got, bound[b])
+    _assert_above_first_order(name, s, lam, taps, basis, x, eps, bound, rng)
     # Not claimed when the certified interval is not inside the split.
     assert np.all(np.isinf(input_first_order_sparse(factor, mat, x, eps, (lo - 1.0, hi))))
 
