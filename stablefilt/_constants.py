@@ -68,7 +68,19 @@ def bank_sup_norm(taps, interval, basis: Basis = Basis(), grid: int = DEFAULT_GR
     h = _response(taps, spectral_grid(interval, grid), basis)
     if h.ndim == 1:
         return jnp.max(jnp.abs(h))
-    return jnp.max(jnp.linalg.norm(h, ord=2, axis=(-2, -1)))
+    return jnp.max(one_by_one(lambda a: jnp.linalg.norm(a, ord=2), h))
+
+
+def one_by_one(fn, x):
+    """``fn`` on each matrix of ``x`` (``(..., n, m)``), one after another
+    (``jax.lax.map``). A batched LAPACK routine splits its batch over XLA's
+    CPU thread pool and waits for the pieces; two of them at once could each
+    wait on the other for ever on a 2-core machine (seen with the ``model``
+    penalty at 32 features: one thread in a batched eigenvalue routine, one
+    in a batched SVD). One matrix per call never splits."""
+    flat = x.reshape((-1,) + x.shape[-2:])
+    out = jax.lax.map(fn, flat)
+    return jax.tree_util.tree_map(lambda o: o.reshape(x.shape[:-2] + o.shape[1:]), out)
 
 
 def split_basis(interval) -> Basis:
@@ -105,14 +117,14 @@ def psd_part(m):
     ``max(., 0)``, bounded and defined at repeated eigenvalues, where the
     gradient of ``eigh`` itself is not (Bhatia, "Matrix Analysis", 1997, V.3).
     """
-    w, q = jnp.linalg.eigh(m)
+    w, q = one_by_one(jnp.linalg.eigh, m)
     return (q * jnp.maximum(w, 0)[..., None, :]) @ jnp.swapaxes(q, -1, -2)
 
 
 @psd_part.defjvp
 def _psd_part_jvp(primals, tangents):
     (m,), (dm,) = primals, tangents
-    w, q = jnp.linalg.eigh(m)
+    w, q = one_by_one(jnp.linalg.eigh, m)
     qt = jnp.swapaxes(q, -1, -2)
     f = jnp.maximum(w, 0)
     wi, wj = w[..., :, None], w[..., None, :]

@@ -72,3 +72,42 @@ def test_model_that_hung_completes():
                          timeout=240)
     assert out.returncode == 0, out.stderr[-2000:]
     assert out.stdout.split() == ["done", "True"]
+
+
+def test_batched_routines_run_one_matrix_at_a_time():
+    """``one_by_one`` gives numpy's eigenvalues and norms (numpy ``eigh``,
+    ``norm(ord=2)``) for a batch of matrices."""
+    from stablefilt._constants import one_by_one
+
+    rng = np.random.default_rng(3)
+    m = rng.standard_normal((4, 3, 6, 6))
+    m = m + np.swapaxes(m, -1, -2)
+    with jax.enable_x64(True):
+        w, _ = one_by_one(jnp.linalg.eigh, jnp.asarray(m))
+        n = one_by_one(lambda a: jnp.linalg.norm(a, ord=2), jnp.asarray(m[..., :4]))
+    np.testing.assert_allclose(np.asarray(w), np.linalg.eigvalsh(m), rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(np.asarray(n), np.linalg.norm(m[..., :4], ord=2, axis=(-2, -1)), rtol=1e-10)
+
+
+PENALTY = """
+import jax, jax.numpy as jnp, numpy as np
+import stablefilt as sf
+from stablefilt._penalty import model_penalty
+rng = np.random.default_rng(0)
+params = {'layers': [{'taps': jnp.asarray(rng.standard_normal((5, 1 if i == 0 else 32, 32)).astype(np.float32) * 0.3)}
+                     for i in range(3)], 'readout': {'weight': jnp.asarray(rng.standard_normal((32, 1)).astype(np.float32))}}
+basis = sf.Basis('chebyshev', (0.0, 2.0))
+f = jax.jit(jax.grad(lambda p: model_penalty(p, (0.0, 2.0), basis=basis)))
+for _ in range(40):
+    jax.block_until_ready(f(params))
+print('done')
+"""
+
+
+def test_model_penalty_at_32_features_completes():
+    """The ``model`` penalty's gradient at 32 features, 3 layers: it hung
+    within 100 steps on a 2-core machine before (a batched eigenvalue
+    routine and a batched SVD in one step)."""
+    out = subprocess.run([sys.executable, "-c", PENALTY], capture_output=True, text=True, timeout=240)
+    assert out.returncode == 0, out.stderr[-2000:]
+    assert out.stdout.split() == ["done"]
