@@ -27,6 +27,13 @@ from ._filters import Basis
 UNIT = 2.0**-53
 
 
+def gamma(k: float) -> float:
+    """``gamma_k = k u / (1 - k u)``, the bound on the relative error of
+    ``k`` float64 operations in a row (Higham, "Accuracy and Stability of
+    Numerical Algorithms", 2002, ch. 3)."""
+    return k * UNIT / (1.0 - k * UNIT)
+
+
 def _mul(p, q):
     out = [Fraction(0)] * (len(p) + len(q) - 1)
     for i, a in enumerate(p):

@@ -23,7 +23,7 @@ import dataclasses
 
 import numpy as np
 
-from ._exact import UNIT, divided_transform, kernel_transform, product_error, response_map
+from ._exact import UNIT, divided_transform, gamma, kernel_transform, product_error, response_map
 from ._filters import Basis
 from ._kernel import product_tensor
 from ._series import REL_ALLOW
@@ -341,11 +341,6 @@ def _spectral_norm(beta) -> float:
     return float(np.linalg.norm(np.asarray(beta, dtype=np.float64), ord=2)) * (1 + REL_ALLOW)
 
 
-def _gamma(k: float) -> float:
-    """``gamma_k = k u / (1 - k u)`` (Higham, 2002, ch. 3)."""
-    return k * UNIT / (1.0 - k * UNIT)
-
-
 def chebyshev_columns(matrix, z, split: Basis, kr: int) -> tuple[np.ndarray, np.ndarray]:
     """``T_a(t(S)) z`` for ``a < kr`` by the three-term recurrence in float64
     (``z``: ``(B, N, F)``; result ``(B, N, F, kr)``), and ``eta`` ``(kr,)``:
@@ -367,7 +362,7 @@ def chebyshev_columns(matrix, z, split: Basis, kr: int) -> tuple[np.ndarray, np.
     rows = np.asarray(absm.sum(axis=1)).ravel()
     m = int(np.max(matrix.getnnz(axis=1))) if hasattr(matrix, "getnnz") else n
     c = abs(al) * float(np.max(rows)) + abs(be)  # || |S| ||_2 <= max row sum of |S| (symmetric)
-    local = _gamma(m + 4) * (2.0 * c + 1.0) * 1.01
+    local = gamma(m + 4) * (2.0 * c + 1.0) * 1.01
     a = np.arange(kr, dtype=np.float64)
     eta = a * (a + 1.0) / 2.0 * local
     if not np.max(eta) < 0.01:
@@ -389,10 +384,10 @@ def gram_quadratic(factor: JointFactor, matrix, z, columns=None) -> tuple[np.nda
     scale = np.repeat(feat, kr, axis=1)  # ||z_f|| per column
     e = np.tile(eta, f)
     d_gram = (e[:, None] + e[None, :] + e[:, None] * e[None, :]
-              + _gamma(n) * (1 + e[:, None]) * (1 + e[None, :]))[None] * scale[:, :, None] * scale[:, None, :]
+              + gamma(n) * (1 + e[:, None]) * (1 + e[None, :]))[None] * scale[:, :, None] * scale[:, None, :]
     p, p_err = factor.pb, factor.pb_err
     quad = np.einsum("pq,bpq->b", p, gram)
-    err = (np.einsum("pq,bpq->b", np.abs(p) + p_err, d_gram + _gamma(p.size) * np.abs(gram))
+    err = (np.einsum("pq,bpq->b", np.abs(p) + p_err, d_gram + gamma(p.size) * np.abs(gram))
            + np.einsum("pq,bpq->b", p_err, np.abs(gram)))
     return quad, np.where(np.isfinite(err), err, np.inf)
 

@@ -21,17 +21,12 @@ import numpy as np
 import scipy.linalg as sla
 import scipy.sparse.linalg as spla
 
+from ._exact import UNIT, gamma
+
 #: Relative margins ``t`` tried above the Lanczos value.
 MARGINS = (1e-10, 1e-7)
 #: Most products of the Lanczos step.
 LANCZOS_PRODUCTS = 600
-
-_U = np.finfo(np.float64).eps / 2
-
-
-def _gamma(k: int) -> float:
-    return k * _U / (1 - k * _U)
-
 
 def _side_bound(m: np.ndarray, sigma: float, sign: float) -> float | None:
     """A proved bound on ``lam_max(sign M)`` from a Cholesky factorisation
@@ -47,7 +42,7 @@ def _side_bound(m: np.ndarray, sigma: float, sign: float) -> float | None:
     if not np.isfinite(fro2):
         return None
     diag = float(np.max(np.abs(np.diagonal(m)))) if n else 0.0
-    return sigma + _gamma(n + 1) * fro2 * 1.01 + _U * (sigma + diag)
+    return sigma + gamma(n + 1) * fro2 * 1.01 + UNIT * (sigma + diag)
 
 
 def norm2_upper(m: np.ndarray) -> tuple[float, str]:
@@ -77,4 +72,4 @@ def norm2_upper(m: np.ndarray) -> tuple[float, str]:
     w = sla.eigh(m, eigvals_only=True, driver="evd", check_finite=False)
     # A backward-stable eigensolver errs by a modest multiple of N u ||M||
     # (Weyl's inequality); the allowance 8 (N + 1) u is common practice.
-    return float(max(abs(w[0]), abs(w[-1]))) * (1 + 8 * (n + 1) * _U), "eigvalsh"
+    return float(max(abs(w[0]), abs(w[-1]))) * (1 + 8 * (n + 1) * UNIT), "eigvalsh"
