@@ -156,11 +156,11 @@ HUGEPAGES_HELP = ("re-run this script with GLIBC_TUNABLES=glibc.malloc.hugetlb=1
 def rerun_with_hugepages(script: str) -> None:
     """Replace this process by ``script`` run again with malloc's huge-page
     tunable set (glibc reads tunables only at start-up). No return."""
-    env = dict(os.environ)
-    if "glibc.malloc.hugetlb" in env.get("GLIBC_TUNABLES", ""):
+    from stablefilt._malloc import hugetlb_setting, with_hugepages
+
+    if hugetlb_setting(os.environ) is not None:
         return
-    env["GLIBC_TUNABLES"] = ":".join(filter(None, [env.get("GLIBC_TUNABLES"), "glibc.malloc.hugetlb=1"]))
-    os.execve(sys.executable, [sys.executable, os.path.abspath(script), *sys.argv[1:]], env)
+    os.execve(sys.executable, [sys.executable, os.path.abspath(script), *sys.argv[1:]], with_hugepages(os.environ))
 
 
 def machine_note() -> str:

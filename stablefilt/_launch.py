@@ -26,8 +26,8 @@ import os
 import platform
 import sys
 
-#: The malloc tunable added (glibc manual, "Memory Allocation Tunables").
-TUNABLE = "glibc.malloc.hugetlb=1"
+from ._malloc import hugetlb_setting, with_hugepages
+
 #: The first glibc with that tunable (glibc 2.35 release notes).
 GLIBC_MIN = (2, 35)
 #: Where Linux states the transparent huge page mode, e.g. ``always [madvise] never``.
@@ -64,20 +64,17 @@ def relaunch_env(environ, system: str, libc: tuple[str, str], mode: str | None) 
       libc: ``platform.libc_ver()``, e.g. ``("glibc", "2.36")``.
       mode: :func:`thp_mode`.
     """
-    tunables = environ.get("GLIBC_TUNABLES", "")
-    if "glibc.malloc.hugetlb" in tunables:
+    if hugetlb_setting(environ) is not None:
         return None  # already set, or set otherwise on purpose
     if system != "Linux" or libc[0] != "glibc" or _version(libc[1]) < GLIBC_MIN:
         return None
     if mode not in ("always", "madvise"):
         return None
-    env = dict(environ)
-    env["GLIBC_TUNABLES"] = ":".join(filter(None, [tunables, TUNABLE]))
-    return env
+    return with_hugepages(environ)
 
 
 def relaunch() -> None:
-    """Replace this process by the same command with :data:`TUNABLE` set,
+    """Replace this process by the same command with :data:`stablefilt._malloc.TUNABLE` set,
     when :func:`relaunch_env` says it helps; otherwise, or if the new start
     fails, return and go on unchanged."""
     env = relaunch_env(os.environ, platform.system(), platform.libc_ver(), thp_mode())

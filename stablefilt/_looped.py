@@ -31,6 +31,8 @@ from typing import Callable
 
 import jax
 
+from ._malloc import hugepages_on
+
 #: Smallest ``N * F`` of one signal block for which the loop is used. Both
 #: forms timed in interleaved rounds, the loop forced on (``F = 32``, ``K = 5``,
 #: 15 rounds): at ``N = 10^4`` and ``3 * 10^4`` about even (0.91-0.98x forward,
@@ -47,8 +49,7 @@ def loop_threshold() -> float:
     little, and the written-out bank measured faster (the loop 1.14x its
     forward and 1.34x its forward+backward at ``N = 10^5``, ``python
     benchmarks/bench_filter.py --sizes 1e5 --malloc-hugepages``)."""
-    tunables = os.environ.get("GLIBC_TUNABLES", "")
-    if any(item.strip() in ("glibc.malloc.hugetlb=1", "glibc.malloc.hugetlb=2") for item in tunables.split(":")):
+    if hugepages_on(os.environ):
         return math.inf
     return LOOP_MIN_ELEMENTS
 

@@ -20,7 +20,7 @@ import sys
 import pytest
 
 import stablefilt
-from stablefilt import _launch
+from stablefilt import _launch, _malloc
 
 LINUX = ("Linux", ("glibc", "2.36"), "madvise")
 
@@ -49,6 +49,16 @@ def test_a_setting_of_the_user_is_left(tunables):
 ])
 def test_no_new_start_where_it_cannot_help(system, libc, mode):
     assert _launch.relaunch_env({}, system, libc, mode) is None
+
+
+@pytest.mark.parametrize("tunables, value, on", [
+    ("", None, False), ("glibc.malloc.arena_max=2", None, False), ("glibc.malloc.hugetlb=0", "0", False),
+    ("glibc.malloc.arena_max=2: glibc.malloc.hugetlb=2 ", "2", True), ("glibc.malloc.hugetlb=1", "1", True),
+])
+def test_tunable_read_from_the_list(tunables, value, on):
+    env = {"GLIBC_TUNABLES": tunables}
+    assert _malloc.hugetlb_setting(env) == value
+    assert _malloc.hugepages_on(env) is on
 
 
 def test_new_glibc_versions_compare_as_numbers():
@@ -81,7 +91,7 @@ def test_process_starts_again_with_the_tunable_once():
                          env=env, timeout=60)
     assert out.returncode == 0, out.stderr
     helps = _launch.relaunch_env(env, platform.system(), platform.libc_ver(), _launch.thp_mode()) is not None
-    expected = _launch.TUNABLE if helps else None
+    expected = _malloc.TUNABLE if helps else None
     assert out.stdout.strip() == f"{expected} ['one', 'two words']"
 
 
