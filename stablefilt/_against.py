@@ -138,7 +138,7 @@ def against(run, new: ShiftOperator, bound_at, *, align: bool = False, same_kind
         "measured": "||Y_hat - Y||_F per test signal, the model in float64 on both graphs",
         "new_graph_kind": new.kind,
         "deployed_graph": ("same kind as the training graph (s.9.1)" if same_kind else
-                           "any S_hat (Weyl widening, s.8)"),
+                           "any S_hat (its spectrum in the relative enclosure of s.9.1)"),
     }
     return Against(float(d.relative), float(d.residual), float(d.tolerance), bool(d.expressible), bool(align), kept,
                    measured, flipped, eps, bounds, cert_frac, cert_flipped, int(np.sum(measured > bounds)),

@@ -20,12 +20,12 @@ import dataclasses
 import numpy as np
 
 from ._checks import check_eps
-from ._compose import bank_change, change_cover, widened
+from ._compose import bank_change, change_cover, perturbed_cover, widened
 from ._filterbounds import FilterConstants, bank_remainder, combine, filter_bounds, filter_constants, gain_constants
 from ._filters import Basis, check_taps
 from ._graph import ShiftOperator
 from ._interval import SpectralInterval, construction_interval, spectral_interval
-from ._joint import eigen_cover, interval_cover, joint_factor
+from ._joint import cover_gain, eigen_cover, interval_cover, joint_factor
 from ._kernel import eigenvalue_slack
 from ._search import LOWER_EIG_LIMIT, lower_change
 from ._second import operator_remainder, second_kernel, second_order
@@ -44,7 +44,9 @@ def deployed_interval(kind: str):
 def deployed_text(deployed) -> str:
     """The deployment assumption, as recorded beside a certificate."""
     if deployed is None:
-        return ("any S_hat = S + E S + S E: its spectrum lies within 2 eps R of that of S (Weyl's inequality)")
+        return ("any S_hat = S + E S + S E: its k-th eigenvalue lies within 2 eps R of that of S (Weyl's inequality) "
+                "and between (1 - eps)^2 lam_k - eps^2 R and (1 + eps)^2 lam_k + eps^2 R for lam_k >= 0 (mirrored "
+                "for lam_k < 0; Ostrowski's theorem; theory s.9.1)")
     return (f"S_hat keeps the kind of S (rebuilt as the same kind of operator after the change), so its spectrum "
             f"lies in [{deployed[0]:g}, {deployed[1]:g}] by construction, and so does every S + t (E S + S E) "
             "(a convex set; theory s.9.1); an assumption about the deployment, not checked here")
@@ -147,10 +149,13 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
         wide = widened(iv, eps, interval.radius, deployed)
         rem, form = operator_remainder(bank_remainder(taps, basis, iv, eps),
                                        None if kern is None else second_order(taps, basis, iv, eps, kern))
+        pcover = perturbed_cover(lam, iv, eps, radius, slack, deployed)
+        g_hat = gain_constants(taps, basis, wide)[0]
+        if lam is not None:
+            g_hat = min(g_hat, cover_gain(taps, basis, pcover))
         ch = bank_change(taps, basis, eps, first_order=fb.first_order, remainder=fb.remainder, joint=joint,
-                         radius=radius, path_cover=change_cover(lam, iv, 2 * eps * radius + slack, deployed),
-                         gains=(float(consts.bank_sup), gain_constants(taps, basis, wide)[0]),
-                         bank_remainder=rem, remainder_form=form)
+                         radius=radius, path_cover=pcover, gains=(float(consts.bank_sup), g_hat),
+                         bank_remainder=rem, remainder_form=form, balance=rebalance)
         published = combine(2 * np.asarray(consts.integral_lipschitz) * (1 + delta * np.sqrt(n)) * eps)
         al = consts.aligned_spectrum if consts.aligned_spectrum is not None else 2 * np.asarray(consts.integral_lipschitz)
         aligned = combine(np.asarray(al) * eps)

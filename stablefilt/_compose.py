@@ -20,10 +20,13 @@ import dataclasses
 
 import numpy as np
 
+from ._enclosure import bands, interval_band
 from ._filterbounds import FilterConstants, bank_remainder, combine, filter_bounds, filter_constants, gain_constants
 from ._filters import run_filter
 from ._joint import (
     JointFactor,
+    band_cover,
+    cover_gain,
     eigen_cover,
     input_first_order,
     interval_cover,
@@ -61,30 +64,36 @@ class BankChange:
 
 
 def change_cover(lam, interval, slack: float, deployed=None):
-    """Points covering where the spectra of ``S + t (E S + S E)`` may lie: the
-    eigenvalues (or the interval) widened by ``slack``, intersected with the
-    deployed graph's interval when it keeps its kind (docs/theory.md 9.1)."""
+    """Points covering the eigenvalues (or the interval) widened by
+    ``slack``, intersected with ``deployed`` when given."""
     if lam is not None:
         return eigen_cover(lam, slack, deployed)
-    return interval_cover(*_widen(interval, slack, deployed))
+    lo, hi = interval[0] - slack, interval[1] + slack
+    if deployed is not None:
+        lo, hi = max(lo, deployed[0]), min(hi, deployed[1])
+    return interval_cover(lo, hi)
+
+
+def perturbed_cover(lam, interval, eps: float, radius: float, slack: float = 0.0, deployed=None):
+    """Points covering where the spectra of every ``S + t (E S + S E)``,
+    ``t in [0, 1]``, may lie: the relative enclosure of each eigenvalue
+    (known to within ``slack``), or of the interval, intersected with the
+    deployed graph's interval when it keeps its kind (docs/theory.md 9.1)."""
+    if lam is not None:
+        lo, hi = bands(lam, eps, radius, slack)
+        return band_cover(lo, hi, deployed, what=f"relative enclosure of the eigenvalues at eps {eps:g}")
+    return interval_cover(*widened(interval, eps, radius, deployed))
 
 
 def widened(interval, eps: float, radius: float, deployed=None) -> tuple[float, float]:
-    """``[a - 2 eps R, b + 2 eps R]`` (Weyl), intersected with ``deployed``."""
-    return _widen(interval, 2 * eps * radius, deployed)
-
-
-def _widen(interval, by: float, deployed=None) -> tuple[float, float]:
-    """``[a - by, b + by]`` intersected with ``deployed`` when given."""
-    lo, hi = interval[0] - by, interval[1] + by
-    if deployed is not None:
-        lo, hi = max(lo, deployed[0]), min(hi, deployed[1])
-    return lo, hi
+    """The relative enclosure of ``interval`` (at most ``[a - 2 eps R, b + 2 eps R]``,
+    Weyl), intersected with ``deployed`` (docs/theory.md 9.1)."""
+    return interval_band(interval, eps, radius, deployed)
 
 
 def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float, radius: float,
                 path_cover, gains, bank_remainder: float | None = None,
-                remainder_form: str = "whole bank, s.9.7") -> BankChange:
+                remainder_form: str = "whole bank, s.9.7", balance: bool = False) -> BankChange:
     """``Delta`` of one filter or bank at ``eps``.
 
     Args:
@@ -95,6 +104,7 @@ def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float
       gains: ``(B, B_hat)``, bounds on ``||H(S)||`` and ``||H(S_hat)||``.
       bank_remainder: the whole bank's remainder (docs/theory.md 9.7, 9.8), when known.
       remainder_form: how ``bank_remainder`` was obtained (named in ``method``).
+      balance: rebalance the whole-path bound's joint factorisation (docs/theory.md 9.4).
     """
     fo, rem = np.asarray(first_order), np.asarray(remainder)
     per = combine(fo + rem)
@@ -102,7 +112,7 @@ def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float
     if bank_remainder is not None and bank_remainder < rem_c:
         rem_c, form = bank_remainder, remainder_form
     joint_b = float(eps * joint * (1 + REL_ALLOW) + rem_c)
-    path = path_bound(taps, basis, eps, radius, path_cover)
+    path = path_bound(taps, basis, eps, radius, path_cover, optimise=balance)
     trivial = float(gains[0] + gains[1])
     options = [(per, combine(fo), "per-filter kernel + remainder"),
                (joint_b, float(eps * joint), f"joint kernel + remainder ({form})"),
@@ -319,7 +329,7 @@ class LayerChanges:
 
 
 def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pcover, wide, radius: float,
-                      kernel: SecondKernel | None = None):
+                      kernel: SecondKernel | None = None, balance: bool = False):
     """``(BankChange, B_hat, per-filter bounds, remainder)`` of a bank built
     from the model's (the readout composite, a bias bank) at ``eps``, from
     its eps-free ``filters``, ``joint`` constants and, when known, its
@@ -327,20 +337,33 @@ def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pco
     whole-bank (9.7) and second-order kernel (9.8) remainders, as for the
     layers' banks."""
     fb = filter_bounds(taps, spec.basis, interval, eps, filters, lam)
-    g_hat = float(gain_constants(taps, spec.basis, wide)[0])
+    g_hat = _gain_hat(taps, spec.basis, wide, lam, pcover)
     so = None if kernel is None else second_order(taps, spec.basis, interval, eps, kernel)
     rem, form = smallest_remainder(fb.remainder, bank_remainder(taps, spec.basis, interval, eps), so)
     ch = bank_change(taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
                      joint=joint.constant, radius=radius, path_cover=pcover,
-                     gains=(float(filters.bank_sup), g_hat), bank_remainder=rem, remainder_form=form)
+                     gains=(float(filters.bank_sup), g_hat), bank_remainder=rem, remainder_form=form,
+                     balance=balance)
     return ch, g_hat, fb, rem
 
 
-def _bias_change(bb: BiasBank | None, spec, eps: float, interval, lam, pcover, wide, radius: float):
+def _gain_hat(taps, basis, wide, lam, pcover) -> float:
+    """``B_hat``, a bound on ``||H(S_hat)||_2``: the supremum of ``||H||_2`` over
+    the enclosing interval ``wide``, and with eigenvalues the smaller
+    supremum over the cover ``pcover`` of their enclosures (docs/theory.md 9.1)."""
+    g = float(gain_constants(taps, basis, wide)[0])
+    if lam is not None:
+        g = min(g, cover_gain(taps, basis, pcover))
+    return g
+
+
+def _bias_change(bb: BiasBank | None, spec, eps: float, interval, lam, pcover, wide, radius: float,
+                 balance: bool = False):
     """``sqrt(N) Delta(G)`` for a :class:`BiasBank` at ``eps`` (docs/theory.md 9.3), or None."""
     if bb is None:
         return None
-    ch = _composite_change(bb.taps, bb.filters, bb.joint, spec, eps, interval, lam, pcover, wide, radius)[0]
+    ch = _composite_change(bb.taps, bb.filters, bb.joint, spec, eps, interval, lam, pcover, wide, radius,
+                           balance=balance)[0]
     return float(bb.rows * ch.certified * (1 + REL_ALLOW))
 
 
@@ -349,29 +372,27 @@ def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChan
     constants, ``bounds`` its per-layer ``LayerBound`` records at ``eps``."""
     spec, iv, lam = mc.spec, mc.interval, mc.eigenvalues
     a, b = iv.lower, iv.upper
-    pcover = change_cover(lam, (a, b), 2 * eps * cc.radius + cc.slack, cc.deployed)
+    pcover = perturbed_cover(lam, (a, b), eps, cc.radius, cc.slack, cc.deployed)
     wide = widened((a, b), eps, iv.radius, cc.deployed)
     changes, gains_hat = [], []
     for layer, lb, extra in zip(mc.params["layers"], bounds, cc.layers):
-        b_hat = lb.gain_perturbed
-        if cc.deployed is not None:
-            b_hat = min(b_hat, gain_constants(layer["taps"], spec.basis, wide)[0])
+        b_hat = lb.gain_perturbed  # over the enclosure, with the deployed interval (layer_bounds)
         gains_hat.append(float(b_hat))
         rem, form = lb.remainder_choice()
         changes.append(bank_change(layer["taps"], spec.basis, eps, first_order=lb.beta - lb.remainder,
                                    remainder=lb.remainder, joint=extra.joint.constant, radius=cc.radius,
                                    path_cover=pcover, gains=(lb.gain, b_hat), bank_remainder=rem,
-                                   remainder_form=form))
+                                   remainder_form=form, balance=cc.balanced))
     rc, rg, rr, rbr = None, None, None, None
     if cc.readout is not None:
         ro = cc.readout
         rc, rg, fb, rbr = _composite_change(ro.taps, ro.filters, ro.joint, spec, eps, (a, b), lam, pcover, wide,
-                                            cc.radius, ro.second)
+                                            cc.radius, ro.second, cc.balanced)
         rr = np.asarray(fb.remainder)
-    biases = tuple(_bias_change(extra.bias_bank, spec, eps, (a, b), lam, pcover, wide, cc.radius)
+    biases = tuple(_bias_change(extra.bias_bank, spec, eps, (a, b), lam, pcover, wide, cc.radius, cc.balanced)
                    for extra in cc.layers)
     rbias = None if cc.readout is None else _bias_change(cc.readout.bias_bank, spec, eps, (a, b), lam, pcover, wide,
-                                                         cc.radius)
+                                                         cc.radius, cc.balanced)
     return LayerChanges(tuple(changes), tuple(gains_hat), rc, rg, rr, biases, rbias, rbr)
 
 

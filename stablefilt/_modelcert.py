@@ -19,7 +19,15 @@ from typing import NamedTuple
 import numpy as np
 
 from ._certify import MODEL, NORM, deployed_text
-from ._compose import CompositionConstants, composed_bound, composed_inputs, composition_constants, layer_changes
+from ._compose import (
+    CompositionConstants,
+    composed_bound,
+    composed_inputs,
+    composition_constants,
+    layer_changes,
+    perturbed_cover,
+    widened,
+)
 from ._filterbounds import (
     BankRemainder,
     FilterConstants,
@@ -31,7 +39,7 @@ from ._filterbounds import (
 )
 from ._filters import frequency_response
 from ._interval import SpectralInterval
-from ._joint import eigen_cover
+from ._joint import cover_gain, eigen_cover
 from ._kernel import eigenvalue_slack, spectral_first_order
 from ._model import ModelSpec, forward_np
 from ._second import SecondOrder, second_kernel, second_order, smallest_remainder
@@ -199,20 +207,32 @@ class LayerBound(NamedTuple):
 
 def layer_bounds(constants: ModelConstants, eps: float) -> tuple[LayerBound, ...]:
     """Per layer, its :class:`LayerBound` at ``eps``. The spectrum of
-    ``S_hat`` lies within ``w = 2 eps R`` of that of ``S`` (Weyl's
-    inequality), so ``B_hat_l`` is taken over the widened interval, or, with
-    the eigenvalues, as ``B_l + w ||C0||_F``."""
+    ``S_hat`` lies in the relative enclosure of that of ``S`` (docs/theory.md
+    9.1; within ``w = 2 eps R`` of it by Weyl's inequality), so ``B_hat_l`` is
+    the supremum of ``||H_l||_2`` over the enclosure of the interval, and, with
+    the eigenvalues, the smaller of ``B_l + w ||C0||_F`` and the supremum over
+    the enclosures of the eigenvalues."""
     spec, interval, lam = constants.spec, constants.interval, constants.eigenvalues
     a, b = interval.lower, interval.upper
     w = 2.0 * eps * interval.radius
+    cc = constants.composition
+    deployed = None if cc is None else cc.deployed
+    wide = widened((a, b), eps, interval.radius, deployed)
+    pcover = None
+    if lam is not None and w > 0:
+        slack = eigenvalue_slack(lam)
+        radius = min(interval.radius, float(np.max(np.abs(lam))) + slack)
+        pcover = perturbed_cover(lam, (a, b), eps, radius, slack, deployed)
     out = []
     for layer, c, b_now in zip(constants.params["layers"], constants.filters, constants.gains):
         taps = layer["taps"]
         fb = filter_bounds(taps, spec.basis, (a, b), eps, c, lam)
-        b_hat, c0_wide = gain_constants(taps, spec.basis, (a - w, b + w)) if w > 0 else (c.bank_sup, c.lipschitz)
-        if lam is not None:
-            # ||H(mu) - H(lam_i)||_2 <= |mu - lam_i| ||C0||_F over the widened interval.
-            b_hat = min(b_hat, b_now + float(with_allowance(w * float(np.linalg.norm(np.asarray(c0_wide))), 0.0)))
+        b_hat, c0_wide = gain_constants(taps, spec.basis, wide) if w > 0 else (c.bank_sup, c.lipschitz)
+        if pcover is not None:
+            # ||H(mu) - H(lam_i)||_2 <= |mu - lam_i| ||C0||_F within 2 eps R of an eigenvalue, or
+            # the supremum over the enclosures of the eigenvalues.
+            b_hat = min(b_hat, b_now + float(with_allowance(w * float(np.linalg.norm(np.asarray(c0_wide))), 0.0)),
+                        cover_gain(taps, spec.basis, pcover))
         second = None if constants.second is None else second_order(taps, spec.basis, (a, b), eps,
                                                                      constants.second[len(out)])
         out.append(LayerBound(np.asarray(fb.first_order + fb.remainder), np.asarray(fb.remainder), b_now, b_hat,

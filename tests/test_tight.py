@@ -14,6 +14,7 @@ import pytest
 from reference import change, daleckii_krein, filter_matrices, random_symmetric, relative, response, wider_interval
 
 import stablefilt as sf
+from stablefilt._compose import perturbed_cover
 from stablefilt._exact import divided_transform
 from stablefilt._filters import Basis, basis_values
 from stablefilt._joint import (
@@ -111,10 +112,14 @@ def test_whole_path_bound_holds(family, kind, shape, eps):
     on_eig = path_bound(taps, basis, eps, r, eigen_cover(lam, 2 * eps * r + slack)).certified
     on_iv = path_bound(taps, basis, eps, r, interval_cover(lam[0] - 2 * eps * r - slack,
                                                            lam[-1] + 2 * eps * r + slack)).certified
+    # The relative enclosure of 9.1 (Ostrowski and Weyl), with the joint form rebalanced.
+    on_rel = path_bound(taps, basis, eps, r, perturbed_cover(lam, (lam[0], lam[-1]), eps, r, slack),
+                        optimise=len(shape) > 1).certified
     for e in _errors(s, lam, taps, basis, eps, rng):
         got = change(s, relative(s, e), taps, basis.kind, basis.interval)
         assert got <= on_eig, (name, got, on_eig)
         assert got <= on_iv, (name, got, on_iv)
+        assert got <= on_rel, (name, got, on_rel)
 
 
 def test_same_kind_deployment_interval(family_ops):
