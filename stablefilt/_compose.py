@@ -38,6 +38,7 @@ from ._joint import (
 from ._kernel import eigenvalue_slack
 from ._second import SecondKernel, second_kernel, second_order, smallest_remainder
 from ._series import ABS_ALLOW, REL_ALLOW
+from ._signterm import SignTerm, sign_term
 
 #: Slopes of each nonlinearity lie in ``[alpha, 1]`` (relu and tanh: 0; leaky relu: 0.1; none: D = I).
 SLOPE_LOW = {"relu": 0.0, "leaky_relu": 0.1, "tanh": 0.0, "none": 1.0}
@@ -166,6 +167,8 @@ class LayerExtra:
       left: ``K``, a bound on ``sup ||H L_prev(E)||`` over ``||E|| <= 1``: this
         bank after the previous bank's first-order change (docs/theory.md
         9.3, the carried change), or None.
+      sign: the sign term of a relu input through ``S``'s quadratic form
+        (docs/theory.md 9.9), or None.
     """
 
     joint: JointFactor
@@ -174,6 +177,7 @@ class LayerExtra:
     bias_norm: float
     bias_bank: BiasBank | None = None
     left: float | None = None
+    sign: SignTerm | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -187,6 +191,7 @@ class ReadoutExtra:
     bias_bank: BiasBank | None = None
     left: float | None = None
     second: SecondKernel | None = None
+    sign: SignTerm | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -235,6 +240,8 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
     radius = interval.radius if lam is None else min(interval.radius, float(np.max(np.abs(lam))) + slack)
     cover0 = change_cover(lam, (a, b), slack)
     layers = params["layers"]
+    # relu and leaky relu: sigma(v) = c_a v + c_b |v| (docs/theory.md 9.9), on a graph given as a matrix.
+    relu_like = spec.nonlinearity in ("relu", "leaky_relu") and matrix is not None
     extras = []
     for i, layer in enumerate(layers):
         taps = layer["taps"]
@@ -247,7 +254,9 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         bb = None if i == 0 else _bias_bank(taps, layers[i - 1].get("bias"), spec.basis, (a, b), lam, cover0, nodes,
                                             rebalance)
         left = None if i == 0 else left_constant(layers[i - 1]["taps"], taps, spec.basis, cover0)
-        extras.append(LayerExtra(jf, right, cross, bias_norm, bb, left))
+        sg = None if (i == 0 or not relu_like) else sign_term(jf, layers[i - 1]["taps"], spec.basis,
+                                                             layers[i - 1].get("bias"), matrix)
+        extras.append(LayerExtra(jf, right, cross, bias_norm, bb, left, sg))
     readout = None
     w = params.get("readout", {}).get("weight") if spec.readout != "none" else None
     wn = float(np.linalg.norm(np.asarray(w, dtype=np.float64), 2)) * (1 + REL_ALLOW) if w is not None else 1.0
@@ -261,7 +270,9 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         lw = None if len(layers) < 2 else left_constant(layers[-2]["taps"], comp, spec.basis, cover0)
         # The composite's second-order kernel (9.8) over the eigenvalues, as for the layers' banks.
         sw = None if lam is None else second_kernel(comp, spec.basis, eigen_cover(lam, slack))
-        readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw)
+        sg = None if (len(layers) < 2 or not relu_like) else sign_term(jw, layers[-2]["taps"], spec.basis,
+                                                                       layers[-2].get("bias"), matrix)
+        readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw, sg)
     alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
     return CompositionConstants(tuple(extras), readout, wn, alpha, None if deployed is None else tuple(deployed),
                                 float(radius), float(slack), bool(rebalance))
@@ -417,19 +428,26 @@ class ComposedBound:
     clean_norms: tuple[float, ...]
 
 
-def _through(i, delta, rem, right, cc, norms, gains, ca, cb, bias_change=None):
+def _through(i, delta, rem, right, cc, norms, gains, ca, cb, bias_change=None, sign=None, eps=0.0):
     """Bound on ``||(H_i - H_hat_i) x_{i-1}||`` over the inputs: ``Delta
     n_{i-1}``, or through the previous bank, with the previous bias apart
-    when ``bias_change`` bounds ``||(H_i - H_hat_i) c||`` (docs/theory.md 9.3)."""
+    when ``bias_change`` bounds ``||(H_i - H_hat_i) c||`` (docs/theory.md 9.3),
+    and the sign term through ``S``'s quadratic form when ``sign`` (a
+    :class:`SignTerm`) is given (9.9)."""
     plain = delta * norms[i]
     if i == 0 or (right is None and bias_change is None):
         return plain
     prev = cc.layers[i - 1]
+    # ||(H_i - H_hat_i) |v| ||, v the previous pre-activation (||v|| <= norms[i]).
+    abs_part = delta * norms[i]
+    if sign is not None:
+        abs_part = min(abs_part, sign.bound(eps, norms[i - 1], norms[i], rem))
     d_right = delta * gains[i - 1] if right is None else min(right + rem * gains[i - 1], delta * gains[i - 1])
-    nested = ca * d_right * norms[i - 1] + cb * delta * gains[i - 1] * norms[i - 1] + delta * prev.bias_norm
+    nested = ca * d_right * norms[i - 1] + cb * min(delta * gains[i - 1] * norms[i - 1], abs_part) \
+        + delta * prev.bias_norm
     if bias_change is not None:
         nested = min(nested, ca * d_right * norms[i - 1] + ca * min(bias_change, delta * prev.bias_norm)
-                     + cb * delta * norms[i])
+                     + cb * abs_part)
     return min(plain, nested)
 
 
@@ -451,7 +469,7 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
         rem = lb.bank_remainder()
         right = None if cc.layers[i].right is None else eps * cc.layers[i].right
         bias_ch = lc.bias_changes[i] if lc.bias_changes else None
-        d = _through(i, ch.certified, rem, right, cc, norms, gains, ca, cb, bias_ch)
+        d = _through(i, ch.certified, rem, right, cc, norms, gains, ca, cb, bias_ch, cc.layers[i].sign, eps)
         deltas.append(d)
         rems.append(rem)
         if i < spec.depth - 1:
@@ -466,7 +484,7 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
         right = None if cc.readout.right is None else eps * cc.readout.right
         rem_w = combine(lc.readout_remainder) if lc.readout_bank_remainder is None else lc.readout_bank_remainder
         dw = _through(spec.depth - 1, lc.readout_change.certified, rem_w, right, cc, norms,
-                      gains, ca, cb, lc.readout_bias_change)
+                      gains, ca, cb, lc.readout_bias_change, cc.readout.sign, eps)
         g = 0.0  # bound on ||G_hat e_{L-2}||, G = H_L W
         if spec.depth >= 2:
             k = spec.depth - 2
