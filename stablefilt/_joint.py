@@ -124,27 +124,42 @@ def band_cover(lo, hi, clip=None, grid: int = GRID, what: str = "") -> Cover:
     return Cover(split, g[keep], h / 2, what)
 
 
+def split_coefficients(taps, basis: Basis, split: Basis) -> tuple[np.ndarray, np.ndarray]:
+    """A bank's Chebyshev coefficients on ``split`` (``(K', F_in, F_out)``) in
+    float64 and an entrywise bound on their error."""
+    taps = np.asarray(taps, dtype=np.float64)
+    if taps.ndim == 1:
+        taps = taps[:, None, None]
+    k, fin, fout = taps.shape
+    lo, hi = split.interval
+    cmap = response_map(k, basis, lo, hi, "h")  # taps -> Chebyshev on the split
+    cols = taps.reshape(k, -1)
+    return (cmap @ cols).reshape(-1, fin, fout), product_error(cmap, cols).reshape(-1, fin, fout)
+
+
+def gain_gram(c, dc):
+    """``(P, P_err, F_out, K')`` with ``H(t)^T H(t) = phi(t)^T P phi(t)``, ``P = A^T A``,
+    from coefficients ``c`` ``(K', F_in, F_out)`` given to within ``dc``."""
+    kk, fin, fout = c.shape
+    a = np.moveaxis(c, 0, 2).reshape(fin, fout * kk)  # column (g, s)
+    da = np.moveaxis(dc, 0, 2).reshape(fin, fout * kk)
+    p = a.T @ a
+    p_err = 2.0 * (fin + 2) * UNIT * (np.abs(a).T @ np.abs(a)) + np.abs(a).T @ da + da.T @ np.abs(a) + da.T @ da
+    return p, p_err, fout, kk
+
+
+def _coefficient_gain(c, dc, cover: Cover) -> float:
+    p, p_err, fout, kk = gain_gram(c, dc)
+    top = float(_sup_lambda_max(p[None], p_err[None], fout, kk, cover)[0])
+    return float(np.sqrt(max(top, 0.0))) * (1 + REL_ALLOW)
+
+
 def cover_gain(taps, basis: Basis, cover: Cover) -> float:
     """Rigorous ``sup ||H(mu)||_2`` over the points ``cover`` covers:
     ``H^T H = phi^T P phi`` with ``P = C^T C``, ``C`` the bank's coefficients
     on the cover's split interval (float64, with an entrywise error bound),
     bounded like ``G_A`` (docs/theory.md 9.1, the relative enclosure; 9.2)."""
-    taps = np.asarray(taps, dtype=np.float64)
-    if taps.ndim == 1:
-        taps = taps[:, None, None]
-    k, fin, fout = taps.shape
-    lo, hi = cover.split.interval
-    cmap = response_map(k, basis, lo, hi, "h")  # taps -> Chebyshev on the split
-    cols = taps.reshape(k, -1)
-    c = (cmap @ cols).reshape(-1, fin, fout)
-    dc = product_error(cmap, cols).reshape(c.shape)
-    kk = c.shape[0]
-    a = np.moveaxis(c, 0, 2).reshape(fin, fout * kk)  # column (g, s)
-    da = np.moveaxis(dc, 0, 2).reshape(fin, fout * kk)
-    p = a.T @ a
-    p_err = (2.0 * (fin + 2) * UNIT * (np.abs(a).T @ np.abs(a)) + np.abs(a).T @ da + da.T @ np.abs(a) + da.T @ da)
-    top = float(_sup_lambda_max(p[None], p_err[None], fout, kk, cover)[0])
-    return float(np.sqrt(max(top, 0.0))) * (1 + REL_ALLOW)
+    return _coefficient_gain(*split_coefficients(taps, basis, cover.split), cover)
 
 
 def block_kernels(taps, basis: Basis, split: Basis, which: str, joint: bool, right=None):

@@ -39,8 +39,10 @@ class SecondKernel:
       coefficients: ``T`` ``(F_in, F_out, K, K, K)`` in float64.
       errors: entrywise bounds on their float64 error.
       split: the Chebyshev basis ``phi``.
-      sup: ``b``, rigorous.
+      sup: ``b``, rigorous (``b'`` of the scaled kernel when ``factor`` is set).
       cover: where ``b`` was taken (recorded with the certificate).
+      factor: ``sqrt(left right)`` of the diagonal scalings, or None (``K``, no scaling).
+      scales: the scalings ``(d, e)`` per Chebyshev index, powers of two, or None.
     """
 
     coefficients: np.ndarray
@@ -48,6 +50,15 @@ class SecondKernel:
     split: Basis
     sup: float
     cover: str
+    factor: float | None = None
+    scales: tuple | None = None
+
+    @property
+    def operator(self) -> float:
+        """``||Q(X)||_F <= eps^2 * operator * ||X||_F``: ``K b``, or
+        ``sqrt(left right) b'`` with the diagonal scalings (docs/theory.md 9.8)."""
+        k = self.coefficients.shape[2]
+        return float(k * self.sup if self.factor is None else self.factor * self.sup)
 
 
 def second_kernel(taps, basis: Basis, cover: Cover) -> SecondKernel:
@@ -64,6 +75,34 @@ def second_kernel(taps, basis: Basis, cover: Cover) -> SecondKernel:
     tr = second_transform(k, basis, cover.split)  # (s, b, t, j)
     t = np.einsum("sbtj,jfg->fgsbt", tr, taps, optimize=True)
     t_err = 2.0 * (k + 2) * UNIT * np.einsum("sbtj,jfg->fgsbt", np.abs(tr), np.abs(taps), optimize=True)
+    plain = _beta_sup(t, t_err, cover)
+    kern = SecondKernel(t, t_err, cover.split, plain, cover.description)
+    # Diagonal scalings per Chebyshev index (docs/theory.md 9.8, "Rebalanced");
+    # the float64 scaling adds two roundings per coefficient to the error bound.
+    d, e = _scalings(t, cover)
+    if np.any(d != 1.0) or np.any(e != 1.0):
+        de = d[None, None, :, None, None] * e[None, None, None, None, :]
+        ts = t / de
+        es = (t_err / de) * (1 + 4 * UNIT) + 4 * UNIT * np.abs(ts)
+        scaled = _beta_sup(ts, es, cover)
+        factor = float(np.sqrt(_weighted_sup(d, cover) * _weighted_sup(e, cover))) * (1 + 8 * UNIT)
+        if factor * scaled < k * plain:
+            kern = dataclasses.replace(kern, sup=scaled, factor=factor, scales=(d, e))
+    t.setflags(write=False)
+    t_err.setflags(write=False)
+    return kern
+
+
+#: Objective evaluations and points of the search for the diagonal scalings
+#: (the bound is checked on every point of the cover).
+SCALE_EVALS = 600
+SCALE_POINTS = 16
+
+
+def _beta_sup(t, t_err, cover: Cover) -> float:
+    """Rigorous ``sup ||beta(mu)||_2`` over ``cover`` for coefficients ``t``
+    ``(F_in, F_out, K, K, K)`` given to within ``t_err``."""
+    fin, fout, k = t.shape[:3]
     # P[(f,t), b, (f',u), c] = sum_{g,s} T_fg[s,b,t] T_f'g[s,c,u]
     p = np.einsum("fgsbt,hgscu->ftbhuc", t, t, optimize=True).reshape(1, fin * k * k, fin * k * k)
     terms = fout * k
@@ -76,10 +115,42 @@ def second_kernel(taps, basis: Basis, cover: Cover) -> SecondKernel:
     top = max(float(_sup_lambda_max(p, p_err.reshape(p.shape), fin * k, k,
                                     dataclasses.replace(cover, t=cover.t[i:i + step]))[0])
               for i in range(0, len(cover.t), step))
-    t.setflags(write=False)
-    t_err.setflags(write=False)
-    return SecondKernel(t, t_err, cover.split, float(with_allowance(np.sqrt(max(top, 0.0)), 0.0)),
-                        cover.description)
+    return float(with_allowance(np.sqrt(max(top, 0.0)), 0.0))
+
+
+def _weighted_sup(w, cover: Cover) -> float:
+    """Rigorous ``sup sum_s w_s^2 T_s(t)^2`` over ``cover`` (a scalar polynomial
+    ``phi^T diag(w^2) phi``; ``w^2`` rounded once)."""
+    k = len(w)
+    p = np.diag(np.asarray(w, dtype=np.float64) ** 2)[None]
+    return float(_sup_lambda_max(p, 2 * UNIT * p, 1, k, cover)[0])
+
+
+def _scalings(t, cover: Cover) -> tuple[np.ndarray, np.ndarray]:
+    """Scalings ``(d, e)`` per Chebyshev index lowering
+    ``sqrt(sup sum d_s^2 T_s^2 sup sum e_t^2 T_t^2) sup ||D^-1 beta E^-1||``
+    at up to ``SCALE_POINTS`` points of the cover (Nelder-Mead on the
+    logarithms, ``SCALE_EVALS`` evaluations at most; scipy.optimize). Only a
+    proposal: the bound is recomputed for it on the whole cover."""
+    from scipy.optimize import minimize
+
+    fin, fout, k = t.shape[:3]
+    pts = cover.t[np.unique(np.linspace(0, len(cover.t) - 1, SCALE_POINTS).astype(int))]
+    phi = np.polynomial.chebyshev.chebvander(pts, k - 1)  # (P, K)
+    beta = np.einsum("fgsbt,mb->mgsft", t, phi, optimize=True)  # (P, F_out, K, F_in, K)
+
+    def objective(x):
+        d, e = np.exp(x[:k]), np.exp(x[k:])
+        left, right = np.max(phi**2 @ d**2), np.max(phi**2 @ e**2)
+        b = beta / d[None, None, :, None, None] / e[None, None, None, None, :]
+        mid = np.max(np.linalg.svd(b.reshape(len(pts), fout * k, fin * k), compute_uv=False)[:, 0])
+        return 0.5 * np.log(left * right) + np.log(max(mid, 1e-300))
+
+    res = minimize(objective, np.zeros(2 * k), method="Nelder-Mead",
+                   options={"maxfev": SCALE_EVALS, "xatol": 1e-3, "fatol": 1e-5})
+    x = res.x if np.all(np.isfinite(res.x)) else np.zeros(2 * k)
+    x = np.clip(x - 0.5 * (x[:k].mean() + x[k:].mean()), -30, 30)  # unchanged by d -> c d, e -> e / c
+    return np.exp(x[:k]), np.exp(x[k:])
 
 
 #: Weights ``W = (G / ||G|| + tau I)^-1`` tried for a given input (``inf``: ``W = I``).
@@ -184,7 +255,7 @@ def second_order(taps, basis: Basis, interval, eps: float, kernel: SecondKernel)
     mid = 0.5 * (a + b)
     half = max(b - mid, mid - a) * (1 + 4 * UNIT)
     d = 2.0 * eps * max(abs(a), abs(b))
-    quad = float(with_allowance(eps * eps * k * kernel.sup, 0.0))
+    quad = float(with_allowance(eps * eps * kernel.operator, 0.0))
     third = BankRemainder(_tails3(half, d, k), br.coefficients, br.errors, br.powers)
     return SecondOrder(kernel, float(eps), quad, third)
 

@@ -23,9 +23,9 @@ import dataclasses
 import numpy as np
 import scipy.sparse as sp
 
-from ._exact import UNIT, gamma, product_error, response_map
+from ._exact import UNIT, gamma
 from ._filters import Basis, run_filter
-from ._joint import JointFactor, _gram
+from ._joint import JointFactor, _gram, gain_gram, split_coefficients
 from ._series import REL_ALLOW
 
 #: Slopes ``|beta|`` of the linear majorant tried, relative to ``sup b / (hi - lo)``.
@@ -92,23 +92,6 @@ def _point_tops(p, p_err, f: int, k: int, cover):
     return tops + float(err[0]), float(slope[0])
 
 
-def _gain_gram(taps, basis: Basis, split: Basis):
-    """``(P, P_err, F_out, K)`` with ``H(t)^T H(t) = phi(t)^T P phi(t)`` on ``split``."""
-    taps = np.asarray(taps, dtype=np.float64)
-    k, fin, fout = taps.shape
-    lo, hi = split.interval
-    cmap = response_map(k, basis, lo, hi, "h")
-    cols = taps.reshape(k, -1)
-    c = (cmap @ cols).reshape(-1, fin, fout)
-    dc = product_error(cmap, cols).reshape(c.shape)
-    kk = c.shape[0]
-    a = np.moveaxis(c, 0, 2).reshape(fin, fout * kk)
-    da = np.moveaxis(dc, 0, 2).reshape(fin, fout * kk)
-    p = a.T @ a
-    p_err = 2.0 * (fin + 2) * UNIT * (np.abs(a).T @ np.abs(a)) + np.abs(a).T @ da + da.T @ np.abs(a) + da.T @ da
-    return p, p_err, fout, kk
-
-
 def sign_term(joint: JointFactor, prev_taps, basis: Basis, prev_bias, matrix) -> SignTerm | None:
     """The :class:`SignTerm` of a bank (its ``joint`` factorisation) whose input
     is ``sigma(H' x + 1_N b^T)``, ``H'`` the bank ``prev_taps`` and ``b`` =
@@ -124,7 +107,7 @@ def sign_term(joint: JointFactor, prev_taps, basis: Basis, prev_bias, matrix) ->
     lam_pad = 4 * UNIT * (abs(mid) + half)  # float64 error of lam_i (a few roundings)
     dlam = cover.gap * half + lam_pad  # every covered point is within dlam of some lam_i
     tops_b, slope_b = _point_tops(joint.pb, joint.pb_err, joint.fin, joint.kr, cover)
-    p, p_err, fh, kh = _gain_gram(prev_taps, basis, cover.split)
+    p, p_err, fh, kh = gain_gram(*split_coefficients(prev_taps, basis, cover.split))
     tops_h, slope_h = _point_tops(p, p_err, fh, kh, cover)
     hv = np.maximum(tops_h + cover.gap * slope_h, 0.0)  # ||H'||^2 on each point's neighbourhood
     m = sp.csr_matrix(matrix).astype(np.float64)

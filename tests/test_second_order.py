@@ -108,3 +108,47 @@ def test_degree_one_has_no_second_order_term():
     lam = np.linalg.eigvalsh(s)
     kern = second_kernel(np.array([0.3, -1.2]), basis, eigen_cover(lam, eigenvalue_slack(lam)))
     assert kern.sup == 0.0
+
+
+def test_rebalanced_kernel_bounds_the_second_order_term():
+    """With the diagonal scalings of 9.8 ("Rebalanced") in use, the exact
+    second-order term (the ``t^2`` coefficient, numpy as above) stays below
+    ``eps^2 operator ||X||`` for random inputs and for ``E`` and ``X`` pushed
+    up by a few steps of alternating ascent; the scaled middle factor with
+    the unscaled outer ones (``K b'``) is exceeded, so the check can fail."""
+    s, iv, basis = _setting("karate", "normalized-laplacian", "chebyshev")
+    n, k = s.shape[0], 5
+    rng = np.random.default_rng(11)
+    taps = rng.standard_normal((k, 2, 3)) * 0.5
+    lam, v = np.linalg.eigh(s)
+    kern = second_kernel(taps, basis, eigen_cover(lam, eigenvalue_slack(lam)))
+    assert kern.factor is not None  # the scaled form is the one kept
+    ts = np.linspace(-1.0, 1.0, k)
+    vander = np.linalg.inv(np.vander(ts, k, increasing=True))
+
+    def quad(e, x):
+        d = e @ s + s @ e
+        vals = np.stack([H.bank_apply(s + t * d, taps, basis, x) for t in ts])
+        return (vander[2] @ vals.reshape(k, -1)).reshape(n, -1)
+
+    worst = 0.0
+    for trial in range(6):
+        e = H.random_error(rng, n, 1.0)
+        x = rng.standard_normal((n, 2))
+        for _ in range(3 if trial else 0):
+            # Alternate: the best unit X for this E (top singular vector of X -> Q(X), linear),
+            # then E along the gradient of ||Q(X)||^2 (numerical, projected onto the unit ball).
+            cols = np.stack([quad(e, z.reshape(n, 2)).ravel() for z in np.eye(2 * n)], axis=1)
+            x = np.linalg.svd(cols)[2][0].reshape(n, 2)
+            g = np.zeros_like(e)
+            base = np.sum(quad(e, x) ** 2)
+            for i, j in zip(*np.triu_indices(n)):
+                de = np.zeros_like(e)
+                de[i, j] = de[j, i] = 1e-4
+                g[i, j] = g[j, i] = (np.sum(quad(e + de, x) ** 2) - base) / 1e-4
+            w, q = np.linalg.eigh(e + 0.5 * g / np.linalg.norm(g))
+            e = (q * np.clip(w, -1.0, 1.0)) @ q.T
+        val = np.linalg.norm(quad(e, x)) / np.linalg.norm(x)
+        assert val <= kern.operator * (1 + 1e-9), (val, kern.operator)
+        worst = max(worst, val)
+    assert worst > k * kern.sup, (worst, k * kern.sup)
