@@ -94,16 +94,15 @@ def _run(alpha, beta, steps: int):
     return jax.vmap(one)(alpha, beta)
 
 
-def balance(alpha: np.ndarray, beta: np.ndarray, steps: int = STEPS, points: int = MAX_POINTS) -> np.ndarray:
+def balance(alpha: np.ndarray, beta: np.ndarray, steps: int = STEPS) -> np.ndarray:
     """``T`` per batch entry (``(B, r, r)``) lowering ``max_t lambda_max(G_A)
     max_t lambda_max(G_B)`` for factors evaluated at points: ``alpha``
-    ``(B, T, r, F_out)``, ``beta`` ``(B, T, r, F_in)``, of which at most
-    ``points``, evenly spaced, are used. Identity when the optimiser does not
-    improve on it."""
+    ``(B, T, r, F_out)``, ``beta`` ``(B, T, r, F_in)``. Identity when the
+    optimiser does not improve on it."""
     alpha = np.asarray(alpha, dtype=np.float64)
     beta = np.asarray(beta, dtype=np.float64)
-    if alpha.shape[1] > points:
-        idx = np.unique(np.linspace(0, alpha.shape[1] - 1, points).astype(int))
+    if alpha.shape[1] > MAX_POINTS:
+        idx = np.unique(np.linspace(0, alpha.shape[1] - 1, MAX_POINTS).astype(int))
         alpha, beta = alpha[:, idx], beta[:, idx]
     with jax.enable_x64(True):
         t = np.array(_run(jnp.asarray(alpha), jnp.asarray(beta), steps))

@@ -141,7 +141,7 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
     slack = 0.0 if lam is None else eigenvalue_slack(lam)
     radius = interval.radius if lam is None else min(interval.radius, float(np.max(np.abs(lam))) + slack)
     joint = joint_factor(taps, basis, change_cover(lam, iv, slack), optimise=rebalance).constant
-    kern = _second_kernel(taps, basis, lam, slack, iv)
+    kern = _second_kernel(taps, basis, lam, slack, iv, rebalance)
     bounds = []
     for eps in eps_list:
         eps = float(eps)
@@ -155,7 +155,7 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
             g_hat = min(g_hat, cover_gain(taps, basis, pcover))
         ch = bank_change(taps, basis, eps, first_order=fb.first_order, remainder=fb.remainder, joint=joint,
                          radius=radius, path_cover=pcover, gains=(float(consts.bank_sup), g_hat),
-                         bank_remainder=rem, remainder_form=form, balance=rebalance)
+                         bank_remainder=rem, remainder_form=form)
         published = combine(2 * np.asarray(consts.integral_lipschitz) * (1 + delta * np.sqrt(n)) * eps)
         al = consts.aligned_spectrum if consts.aligned_spectrum is not None else 2 * np.asarray(consts.integral_lipschitz)
         aligned = combine(np.asarray(al) * eps)
@@ -192,13 +192,13 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
 SECOND_INTERVAL_LIMIT = 64
 
 
-def _second_kernel(taps, basis, lam, slack: float, iv):
+def _second_kernel(taps, basis, lam, slack: float, iv, optimise: bool = False):
     """The bank's :class:`~stablefilt._second.SecondKernel` over the
     eigenvalues, or over the interval for small banks, or None."""
     t = np.asarray(taps)
     fin_k = t.shape[0] * (t.shape[1] if t.ndim == 3 else 1)
     if lam is not None:
-        return second_kernel(taps, basis, eigen_cover(lam, slack))
+        return second_kernel(taps, basis, eigen_cover(lam, slack), optimise)
     if fin_k <= SECOND_INTERVAL_LIMIT:
-        return second_kernel(taps, basis, interval_cover(*iv))
+        return second_kernel(taps, basis, interval_cover(*iv), optimise)
     return None

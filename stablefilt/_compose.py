@@ -94,7 +94,7 @@ def widened(interval, eps: float, radius: float, deployed=None) -> tuple[float, 
 
 def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float, radius: float,
                 path_cover, gains, bank_remainder: float | None = None,
-                remainder_form: str = "whole bank, s.9.7", balance: bool = False) -> BankChange:
+                remainder_form: str = "whole bank, s.9.7") -> BankChange:
     """``Delta`` of one filter or bank at ``eps``.
 
     Args:
@@ -105,7 +105,6 @@ def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float
       gains: ``(B, B_hat)``, bounds on ``||H(S)||`` and ``||H(S_hat)||``.
       bank_remainder: the whole bank's remainder (docs/theory.md 9.7, 9.8), when known.
       remainder_form: how ``bank_remainder`` was obtained (named in ``method``).
-      balance: rebalance the whole-path bound's joint factorisation (docs/theory.md 9.4).
     """
     fo, rem = np.asarray(first_order), np.asarray(remainder)
     per = combine(fo + rem)
@@ -113,7 +112,7 @@ def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float
     if bank_remainder is not None and bank_remainder < rem_c:
         rem_c, form = bank_remainder, remainder_form
     joint_b = float(eps * joint * (1 + REL_ALLOW) + rem_c)
-    path = path_bound(taps, basis, eps, radius, path_cover, optimise=balance)
+    path = path_bound(taps, basis, eps, radius, path_cover)
     trivial = float(gains[0] + gains[1])
     options = [(per, combine(fo), "per-filter kernel + remainder"),
                (joint_b, float(eps * joint), f"joint kernel + remainder ({form})"),
@@ -269,7 +268,7 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
                                                      nodes, rebalance)
         lw = None if len(layers) < 2 else left_constant(layers[-2]["taps"], comp, spec.basis, cover0)
         # The composite's second-order kernel (9.8) over the eigenvalues, as for the layers' banks.
-        sw = None if lam is None else second_kernel(comp, spec.basis, eigen_cover(lam, slack))
+        sw = None if lam is None else second_kernel(comp, spec.basis, eigen_cover(lam, slack), optimise=rebalance)
         sg = None if (len(layers) < 2 or not relu_like) else sign_term(jw, layers[-2]["taps"], spec.basis,
                                                                        layers[-2].get("bias"), matrix)
         readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw, sg)
@@ -340,7 +339,7 @@ class LayerChanges:
 
 
 def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pcover, wide, radius: float,
-                      kernel: SecondKernel | None = None, balance: bool = False):
+                      kernel: SecondKernel | None = None):
     """``(BankChange, B_hat, per-filter bounds, remainder)`` of a bank built
     from the model's (the readout composite, a bias bank) at ``eps``, from
     its eps-free ``filters``, ``joint`` constants and, when known, its
@@ -353,8 +352,7 @@ def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pco
     rem, form = smallest_remainder(fb.remainder, bank_remainder(taps, spec.basis, interval, eps), so)
     ch = bank_change(taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
                      joint=joint.constant, radius=radius, path_cover=pcover,
-                     gains=(float(filters.bank_sup), g_hat), bank_remainder=rem, remainder_form=form,
-                     balance=balance)
+                     gains=(float(filters.bank_sup), g_hat), bank_remainder=rem, remainder_form=form)
     return ch, g_hat, fb, rem
 
 
@@ -368,13 +366,11 @@ def _gain_hat(taps, basis, wide, lam, pcover) -> float:
     return g
 
 
-def _bias_change(bb: BiasBank | None, spec, eps: float, interval, lam, pcover, wide, radius: float,
-                 balance: bool = False):
+def _bias_change(bb: BiasBank | None, spec, eps: float, interval, lam, pcover, wide, radius: float):
     """``sqrt(N) Delta(G)`` for a :class:`BiasBank` at ``eps`` (docs/theory.md 9.3), or None."""
     if bb is None:
         return None
-    ch = _composite_change(bb.taps, bb.filters, bb.joint, spec, eps, interval, lam, pcover, wide, radius,
-                           balance=balance)[0]
+    ch = _composite_change(bb.taps, bb.filters, bb.joint, spec, eps, interval, lam, pcover, wide, radius)[0]
     return float(bb.rows * ch.certified * (1 + REL_ALLOW))
 
 
@@ -393,17 +389,17 @@ def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChan
         changes.append(bank_change(layer["taps"], spec.basis, eps, first_order=lb.beta - lb.remainder,
                                    remainder=lb.remainder, joint=extra.joint.constant, radius=cc.radius,
                                    path_cover=pcover, gains=(lb.gain, b_hat), bank_remainder=rem,
-                                   remainder_form=form, balance=cc.balanced))
+                                   remainder_form=form))
     rc, rg, rr, rbr = None, None, None, None
     if cc.readout is not None:
         ro = cc.readout
         rc, rg, fb, rbr = _composite_change(ro.taps, ro.filters, ro.joint, spec, eps, (a, b), lam, pcover, wide,
-                                            cc.radius, ro.second, cc.balanced)
+                                            cc.radius, ro.second)
         rr = np.asarray(fb.remainder)
-    biases = tuple(_bias_change(extra.bias_bank, spec, eps, (a, b), lam, pcover, wide, cc.radius, cc.balanced)
+    biases = tuple(_bias_change(extra.bias_bank, spec, eps, (a, b), lam, pcover, wide, cc.radius)
                    for extra in cc.layers)
     rbias = None if cc.readout is None else _bias_change(cc.readout.bias_bank, spec, eps, (a, b), lam, pcover, wide,
-                                                         cc.radius, cc.balanced)
+                                                         cc.radius)
     return LayerChanges(tuple(changes), tuple(gains_hat), rc, rg, rr, biases, rbias, rbr)
 
 

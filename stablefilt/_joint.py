@@ -30,10 +30,6 @@ from ._series import REL_ALLOW
 
 #: Grid points over a split interval for the rigorous suprema.
 GRID = 4097
-#: Points the optimiser sees when it rebalances the whole-path bound (the
-#: bound is checked on all): on the 2-layer demo's 16 x 16 bank 64 points
-#: gave a slightly smaller bound than 512, in 0.8-1.5 s against 6-7 s.
-PATH_POINTS = 64
 #: Float64 values of Chebyshev columns held at once by :func:`input_first_order_sparse` (128 MB).
 CHUNK_VALUES = 2**24
 
@@ -262,7 +258,7 @@ def _checked(m, dm, a, b):
     return pa, pa_err, pb, pb_err, res
 
 
-def _factor(m, dm, cover=None, k=None, kr=None, f=None, optimise: bool = False, points: int | None = None):
+def _factor(m, dm, cover=None, k=None, kr=None, f=None, optimise: bool = False):
     """A checked factorisation of ``M``; with ``optimise`` the SVD factors are
     rebalanced as ``(T A, T^-T B)`` by :func:`stablefilt._balance.balance` to
     lower ``sup a * sup b`` on the points of ``cover`` (any ``T`` is valid:
@@ -277,7 +273,7 @@ def _factor(m, dm, cover=None, k=None, kr=None, f=None, optimise: bool = False, 
         phi_b = np.polynomial.chebyshev.chebvander(cover.t, kr - 1)
         alpha = np.einsum("zrga,ta->ztrg", a.reshape(a.shape[0], a.shape[1], fout, k), phi_a)
         beta = np.einsum("zrfa,ta->ztrf", b.reshape(b.shape[0], b.shape[1], fin, kr), phi_b)
-        t = balance(alpha, beta) if points is None else balance(alpha, beta, points=points)
+        t = balance(alpha, beta)
         a = t @ a
         b = np.linalg.solve(np.swapaxes(t, 1, 2), b)
     return _checked(m, dm, a, b)
@@ -313,7 +309,7 @@ class JointFactor:
 
 
 def joint_factor(taps, basis: Basis, cover: Cover, which: str = "gamma", right=None,
-                 optimise: bool = False, points: int | None = None) -> JointFactor:
+                 optimise: bool = False) -> JointFactor:
     """The joint factorisation of a bank's block kernel over ``cover``: from
     the SVD, and with ``optimise`` also rebalanced (:mod:`stablefilt._balance`),
     keeping the one with the smaller checked constant."""
@@ -324,7 +320,7 @@ def joint_factor(taps, basis: Basis, cover: Cover, which: str = "gamma", right=N
     m, dm, (fout, fin), kr = block_kernels(taps, basis, cover.split, which, True, right)
     best = None
     for opt in ((False, True) if optimise else (False,)):
-        pa, pa_err, pb, pb_err, res = _factor(m, dm, cover, k, kr, (fout, fin), opt, points)
+        pa, pa_err, pb, pb_err, res = _factor(m, dm, cover, k, kr, (fout, fin), opt)
         sa = float(_sup_lambda_max(pa, pa_err, fout, k, cover)[0])
         sb = float(_sup_lambda_max(pb, pb_err, fin, kr, cover)[0])
         # ||phi|| ||psi|| <= sqrt(K K_r) for Chebyshev values in [-1, 1].
@@ -387,17 +383,12 @@ class PathBound:
 def path_bound(taps, basis: Basis, eps: float, radius: float, cover: Cover, optimise: bool = False) -> PathBound:
     """The whole-path bound of a filter or bank for ``||E||_2 <= eps``,
     ``radius >= ||S||_2``, with ``cover`` covering a set holding the spectrum
-    of every ``S + t (E S + S E)``, ``t in [0, 1]``. With ``optimise`` the
-    joint factorisation of ``Gamma`` (the first-order part) is rebalanced
-    (docs/theory.md 9.4); the second-order and per-filter forms keep theirs."""
+    of every ``S + t (E S + S E)``, ``t in [0, 1]``."""
     taps = np.asarray(taps, dtype=np.float64)
     out = []
     for joint in (True, False):
-        if joint:
-            g = np.asarray(joint_factor(taps, basis, cover, "gamma", optimise=optimise, points=PATH_POINTS).constant)
-        else:
-            g = np.asarray(schur_constant(taps, basis, cover, "gamma", joint))
-        d = np.asarray(schur_constant(taps, basis, cover, "divided", joint))
+        g = np.asarray(schur_constant(taps, basis, cover, "gamma", joint, optimise=optimise))
+        d = np.asarray(schur_constant(taps, basis, cover, "divided", joint, optimise=optimise))
         first = eps * g
         second = 2.0 * eps * eps * radius * d
         if not joint and taps.ndim == 3:

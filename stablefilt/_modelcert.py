@@ -149,7 +149,7 @@ def model_constants(params, spec: ModelSpec, interval: SpectralInterval, nodes: 
     second = None
     if eigenvalues is not None:
         cover = eigen_cover(eigenvalues, eigenvalue_slack(eigenvalues))
-        second = tuple(second_kernel(layer["taps"], spec.basis, cover) for layer in p["layers"])
+        second = tuple(second_kernel(layer["taps"], spec.basis, cover, optimise=rebalance) for layer in p["layers"])
     return ModelConstants(p, spec, interval, int(nodes), eigenvalues, tuple(filters), tuple(gains),
                           readout_factor(p, spec, nodes), tuple(layers), comp, second)
 

@@ -61,10 +61,13 @@ class SecondKernel:
         return float(k * self.sup if self.factor is None else self.factor * self.sup)
 
 
-def second_kernel(taps, basis: Basis, cover: Cover) -> SecondKernel:
+def second_kernel(taps, basis: Basis, cover: Cover, optimise: bool = False) -> SecondKernel:
     """The :class:`SecondKernel` of a bank ``(K, F_in, F_out)`` (or one filter
     ``(K,)``): ``b`` a rigorous upper bound on ``sup ||beta(mu)||_2`` over the
-    points ``cover`` covers (docs/theory.md 9.8)."""
+    points ``cover`` covers (docs/theory.md 9.8); with ``optimise``, also the
+    rebalanced form with diagonal scalings, kept when smaller (a second or
+    a few for a 16 x 16 bank, so only for the final and ``certify``
+    certificates, like the rebalanced factorisations of 9.4)."""
     taps = np.asarray(taps, dtype=np.float64)
     if taps.ndim == 1:
         taps = taps[:, None, None]
@@ -79,7 +82,7 @@ def second_kernel(taps, basis: Basis, cover: Cover) -> SecondKernel:
     kern = SecondKernel(t, t_err, cover.split, plain, cover.description)
     # Diagonal scalings per Chebyshev index (docs/theory.md 9.8, "Rebalanced");
     # the float64 scaling adds two roundings per coefficient to the error bound.
-    d, e = _scalings(t, cover)
+    d, e = _scalings(t, cover) if (optimise and plain > 0.0) else (np.ones(k), np.ones(k))
     if np.any(d != 1.0) or np.any(e != 1.0):
         de = d[None, None, :, None, None] * e[None, None, None, None, :]
         ts = t / de
@@ -140,11 +143,16 @@ def _scalings(t, cover: Cover) -> tuple[np.ndarray, np.ndarray]:
     beta = np.einsum("fgsbt,mb->mgsft", t, phi, optimize=True)  # (P, F_out, K, F_in, K)
 
     def objective(x):
+        x = np.clip(x, -30.0, 30.0)
         d, e = np.exp(x[:k]), np.exp(x[k:])
         left, right = np.max(phi**2 @ d**2), np.max(phi**2 @ e**2)
         b = beta / d[None, None, :, None, None] / e[None, None, None, None, :]
-        mid = np.max(np.linalg.svd(b.reshape(len(pts), fout * k, fin * k), compute_uv=False)[:, 0])
-        return 0.5 * np.log(left * right) + np.log(max(mid, 1e-300))
+        b = b.reshape(len(pts), fout * k, fin * k)
+        if not np.all(np.isfinite(b)):
+            return np.inf
+        mid = np.max(np.linalg.svd(b, compute_uv=False)[:, 0])
+        val = 0.5 * np.log(left * right) + np.log(max(mid, 1e-300))
+        return val if np.isfinite(val) else np.inf
 
     res = minimize(objective, np.zeros(2 * k), method="Nelder-Mead",
                    options={"maxfev": SCALE_EVALS, "xatol": 1e-3, "fatol": 1e-5})
