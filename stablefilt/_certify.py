@@ -20,13 +20,12 @@ import dataclasses
 import numpy as np
 
 from ._checks import check_eps
-from ._compose import bank_change, change_cover, perturbed_cover, widened
-from ._filterbounds import FilterConstants, bank_remainder, combine, filter_bounds, filter_constants, gain_constants
+from ._compose import bank_change, change_cover, gain_hat, perturbed_cover, radius_and_slack, widened
+from ._filterbounds import FilterConstants, bank_remainder, combine, filter_bounds, filter_constants
 from ._filters import Basis, check_taps
 from ._graph import ShiftOperator
 from ._interval import SpectralInterval, construction_interval, spectral_interval
-from ._joint import cover_gain, eigen_cover, interval_cover, joint_factor
-from ._kernel import eigenvalue_slack
+from ._joint import eigen_cover, interval_cover, joint_factor
 from ._search import LOWER_EIG_LIMIT, lower_change
 from ._second import operator_remainder, second_kernel, second_order
 
@@ -138,8 +137,7 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
     if lower and lam is not None and n <= LOWER_EIG_LIMIT:
         w, v = np.linalg.eigh(op.dense())
         eig = (w, v)
-    slack = 0.0 if lam is None else eigenvalue_slack(lam)
-    radius = interval.radius if lam is None else min(interval.radius, float(np.max(np.abs(lam))) + slack)
+    radius, slack = radius_and_slack(interval, lam)
     joint = joint_factor(taps, basis, change_cover(lam, iv, slack), optimise=rebalance).constant
     kern = _second_kernel(taps, basis, lam, slack, iv, rebalance)
     bounds = []
@@ -150,9 +148,7 @@ def certify_filter(op: ShiftOperator, taps, basis: Basis, eps_list, *, delta: fl
         rem, form = operator_remainder(bank_remainder(taps, basis, iv, eps),
                                        None if kern is None else second_order(taps, basis, iv, eps, kern))
         pcover = perturbed_cover(lam, iv, eps, radius, slack, deployed)
-        g_hat = gain_constants(taps, basis, wide)[0]
-        if lam is not None:
-            g_hat = min(g_hat, cover_gain(taps, basis, pcover))
+        g_hat = gain_hat(taps, basis, wide, lam, pcover)
         ch = bank_change(taps, basis, eps, first_order=fb.first_order, remainder=fb.remainder, joint=joint,
                          radius=radius, path_cover=pcover, gains=(float(consts.bank_sup), g_hat),
                          bank_remainder=rem, remainder_form=form)

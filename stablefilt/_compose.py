@@ -64,6 +64,15 @@ class BankChange:
     method: str
 
 
+def radius_and_slack(interval, lam) -> tuple[float, float]:
+    """``(R, slack)``: ``R >= ||S||_2`` (the interval's, or the largest
+    eigenvalue in absolute value plus its slack when smaller) and how far the
+    computed eigenvalues may be from the true ones (0 without eigenvalues)."""
+    slack = 0.0 if lam is None else eigenvalue_slack(lam)
+    radius = interval.radius if lam is None else min(interval.radius, float(np.max(np.abs(lam))) + slack)
+    return float(radius), float(slack)
+
+
 def change_cover(lam, interval, slack: float, deployed=None):
     """Points covering the eigenvalues (or the interval) widened by
     ``slack``, intersected with ``deployed`` when given."""
@@ -235,8 +244,7 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
     float64 numpy; ``filters`` the layers' :class:`FilterConstants`)."""
     a, b = interval.lower, interval.upper
     lam = None if eigenvalues is None else np.asarray(eigenvalues, dtype=np.float64)
-    slack = 0.0 if lam is None else eigenvalue_slack(lam)
-    radius = interval.radius if lam is None else min(interval.radius, float(np.max(np.abs(lam))) + slack)
+    radius, slack = radius_and_slack(interval, lam)
     cover0 = change_cover(lam, (a, b), slack)
     layers = params["layers"]
     # relu and leaky relu: sigma(v) = c_a v + c_b |v| (docs/theory.md 9.9), on a graph given as a matrix.
@@ -347,7 +355,7 @@ def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pco
     whole-bank (9.7) and second-order kernel (9.8) remainders, as for the
     layers' banks."""
     fb = filter_bounds(taps, spec.basis, interval, eps, filters, lam)
-    g_hat = _gain_hat(taps, spec.basis, wide, lam, pcover)
+    g_hat = gain_hat(taps, spec.basis, wide, lam, pcover)
     so = None if kernel is None else second_order(taps, spec.basis, interval, eps, kernel)
     rem, form = smallest_remainder(fb.remainder, bank_remainder(taps, spec.basis, interval, eps), so)
     ch = bank_change(taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
@@ -356,7 +364,7 @@ def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pco
     return ch, g_hat, fb, rem
 
 
-def _gain_hat(taps, basis, wide, lam, pcover) -> float:
+def gain_hat(taps, basis, wide, lam, pcover) -> float:
     """``B_hat``, a bound on ``||H(S_hat)||_2``: the supremum of ``||H||_2`` over
     the enclosing interval ``wide``, and with eigenvalues the smaller
     supremum over the cover ``pcover`` of their enclosures (docs/theory.md 9.1)."""

@@ -144,18 +144,14 @@ def gain_gram(c, dc):
     return p, p_err, fout, kk
 
 
-def _coefficient_gain(c, dc, cover: Cover) -> float:
-    p, p_err, fout, kk = gain_gram(c, dc)
-    top = float(_sup_lambda_max(p[None], p_err[None], fout, kk, cover)[0])
-    return float(np.sqrt(max(top, 0.0))) * (1 + REL_ALLOW)
-
-
 def cover_gain(taps, basis: Basis, cover: Cover) -> float:
     """Rigorous ``sup ||H(mu)||_2`` over the points ``cover`` covers:
     ``H^T H = phi^T P phi`` with ``P = C^T C``, ``C`` the bank's coefficients
     on the cover's split interval (float64, with an entrywise error bound),
     bounded like ``G_A`` (docs/theory.md 9.1, the relative enclosure; 9.2)."""
-    return _coefficient_gain(*split_coefficients(taps, basis, cover.split), cover)
+    p, p_err, fout, kk = gain_gram(*split_coefficients(taps, basis, cover.split))
+    top = float(_sup_lambda_max(p[None], p_err[None], fout, kk, cover)[0])
+    return float(np.sqrt(max(top, 0.0))) * (1 + REL_ALLOW)
 
 
 def block_kernels(taps, basis: Basis, split: Basis, which: str, joint: bool, right=None):
@@ -227,13 +223,22 @@ def _gram(p, p_err, f: int, k: int, t):
     return g, err, slope
 
 
+def point_tops(p, p_err, f: int, k: int, cover: Cover):
+    """``lambda_max(G)`` at each point of ``cover`` in float64 (``(B, T)``),
+    with :func:`_gram`'s bounds on the error of ``G`` (``(B,)``) and on its
+    slope (``(B,)``): ``G`` within ``gap`` of a point is within ``gap * slope
+    + err`` of the value there."""
+    g, err, slope = _gram(p, p_err, f, k, cover.t)
+    tops = np.linalg.eigvalsh(g)[..., -1] if f > 1 else g[..., 0, 0]
+    return tops, err, slope
+
+
 def _sup_lambda_max(p, p_err, f: int, k: int, cover: Cover) -> np.ndarray:
     """Rigorous ``sup_Lambda lambda_max(G(lam))`` per batch entry (``p``:
     ``(B, F K, F K)``; ``p_err``: an entrywise bound on how far ``p`` is from
     the exact matrix)."""
-    g, err, slope = _gram(p, p_err, f, k, cover.t)
-    top = np.linalg.eigvalsh(g)[..., -1].max(axis=1) if f > 1 else g[..., 0, 0].max(axis=1)
-    return np.maximum(top, 0.0) + cover.gap * slope + err
+    tops, err, slope = point_tops(p, p_err, f, k, cover)
+    return np.maximum(tops.max(axis=1), 0.0) + cover.gap * slope + err
 
 
 def _svd_factor(m):

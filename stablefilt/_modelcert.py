@@ -26,6 +26,7 @@ from ._compose import (
     composition_constants,
     layer_changes,
     perturbed_cover,
+    radius_and_slack,
     widened,
 )
 from ._filterbounds import (
@@ -220,9 +221,7 @@ def layer_bounds(constants: ModelConstants, eps: float) -> tuple[LayerBound, ...
     wide = widened((a, b), eps, interval.radius, deployed)
     pcover = None
     if lam is not None and w > 0:
-        slack = eigenvalue_slack(lam)
-        radius = min(interval.radius, float(np.max(np.abs(lam))) + slack)
-        pcover = perturbed_cover(lam, (a, b), eps, radius, slack, deployed)
+        pcover = perturbed_cover(lam, (a, b), eps, *radius_and_slack(interval, lam), deployed)
     out = []
     for layer, c, b_now in zip(constants.params["layers"], constants.filters, constants.gains):
         taps = layer["taps"]

@@ -42,7 +42,7 @@ class SecondKernel:
       sup: ``b``, rigorous (``b'`` of the scaled kernel when ``factor`` is set).
       cover: where ``b`` was taken (recorded with the certificate).
       factor: ``sqrt(left right)`` of the diagonal scalings, or None (``K``, no scaling).
-      scales: the scalings ``(d, e)`` per Chebyshev index, powers of two, or None.
+      scales: the scalings ``(d, e)`` per Chebyshev index, or None.
     """
 
     coefficients: np.ndarray

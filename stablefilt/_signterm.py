@@ -25,7 +25,7 @@ import scipy.sparse as sp
 
 from ._exact import UNIT, gamma
 from ._filters import Basis, run_filter
-from ._joint import JointFactor, _gram, gain_gram, split_coefficients
+from ._joint import JointFactor, gain_gram, point_tops, split_coefficients
 from ._series import REL_ALLOW
 
 #: Slopes ``|beta|`` of the linear majorant tried, relative to ``sup b / (hi - lo)``.
@@ -84,12 +84,10 @@ def off_diagonal_sign(matrix) -> int:
 
 
 def _point_tops(p, p_err, f: int, k: int, cover):
-    """Per point of ``cover``, a rigorous upper bound on ``lambda_max(G)`` at the
-    point and on the points within its gap, ``G = phi^T P phi``; and the slope
-    bound and error of :func:`stablefilt._joint._gram`."""
-    g, err, slope = _gram(p[None], p_err[None], f, k, cover.t)
-    tops = np.linalg.eigvalsh(g[0])[:, -1] if f > 1 else g[0, :, 0, 0]
-    return tops + float(err[0]), float(slope[0])
+    """Per point of ``cover``, ``lambda_max(G)`` plus the error bound of ``G``
+    (``G = phi^T P phi``), and the slope bound (:func:`stablefilt._joint.point_tops`)."""
+    tops, err, slope = point_tops(p[None], p_err[None], f, k, cover)
+    return tops[0] + float(err[0]), float(slope[0])
 
 
 def sign_term(joint: JointFactor, prev_taps, basis: Basis, prev_bias, matrix) -> SignTerm | None:
