@@ -38,7 +38,7 @@ from ._joint import (
 from ._kernel import eigenvalue_slack
 from ._second import SecondKernel, second_kernel, second_order, smallest_remainder
 from ._series import ABS_ALLOW, REL_ALLOW
-from ._signterm import SignTerm, sign_term
+from ._signterm import SignTerm, previous_bank, sign_term
 
 #: Slopes of each nonlinearity lie in ``[alpha, 1]`` (relu and tanh: 0; leaky relu: 0.1; none: D = I).
 SLOPE_LOW = {"relu": 0.0, "leaky_relu": 0.1, "tanh": 0.0, "none": 1.0}
@@ -248,7 +248,11 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
     cover0 = change_cover(lam, (a, b), slack)
     layers = params["layers"]
     # relu and leaky relu: sigma(v) = c_a v + c_b |v| (docs/theory.md 9.9), on a graph given as a matrix.
+    # previous[i]: what the sign term needs of layer i's bank and bias, shared by the banks that read
+    # its output (the next layer, and the readout composite after the last but one).
     relu_like = spec.nonlinearity in ("relu", "leaky_relu") and matrix is not None
+    previous = [previous_bank(layer["taps"], spec.basis, layer.get("bias"), matrix, cover0) if relu_like else None
+                for layer in layers[:-1]]
     extras = []
     for i, layer in enumerate(layers):
         taps = layer["taps"]
@@ -261,8 +265,7 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         bb = None if i == 0 else _bias_bank(taps, layers[i - 1].get("bias"), spec.basis, (a, b), lam, cover0, nodes,
                                             rebalance)
         left = None if i == 0 else left_constant(layers[i - 1]["taps"], taps, spec.basis, cover0)
-        sg = None if (i == 0 or not relu_like) else sign_term(jf, layers[i - 1]["taps"], spec.basis,
-                                                             layers[i - 1].get("bias"), matrix)
+        sg = None if i == 0 else sign_term(jf, previous[i - 1])
         extras.append(LayerExtra(jf, right, cross, bias_norm, bb, left, sg))
     readout = None
     w = params.get("readout", {}).get("weight") if spec.readout != "none" else None
@@ -277,8 +280,7 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         lw = None if len(layers) < 2 else left_constant(layers[-2]["taps"], comp, spec.basis, cover0)
         # The composite's second-order kernel (9.8) over the eigenvalues, as for the layers' banks.
         sw = None if lam is None else second_kernel(comp, spec.basis, eigen_cover(lam, slack), optimise=rebalance)
-        sg = None if (len(layers) < 2 or not relu_like) else sign_term(jw, layers[-2]["taps"], spec.basis,
-                                                                       layers[-2].get("bias"), matrix)
+        sg = None if len(layers) < 2 else sign_term(jw, previous[-1])
         readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw, sg)
     alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
     return CompositionConstants(tuple(extras), readout, wn, alpha, None if deployed is None else tuple(deployed),

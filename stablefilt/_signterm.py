@@ -25,7 +25,7 @@ import scipy.sparse as sp
 
 from ._exact import UNIT, gamma
 from ._filters import Basis, run_filter
-from ._joint import JointFactor, gain_gram, point_tops, split_coefficients
+from ._joint import Cover, JointFactor, gain_gram, point_tops, split_coefficients
 from ._series import REL_ALLOW
 
 #: Slopes ``|beta|`` of the linear majorant tried, relative to ``sup b / (hi - lo)``.
@@ -90,55 +90,91 @@ def _point_tops(p, p_err, f: int, k: int, cover):
     return tops[0] + float(err[0]), float(slope[0])
 
 
-def sign_term(joint: JointFactor, prev_taps, basis: Basis, prev_bias, matrix) -> SignTerm | None:
-    """The :class:`SignTerm` of a bank (its ``joint`` factorisation) whose input
-    is ``sigma(H' x + 1_N b^T)``, ``H'`` the bank ``prev_taps`` and ``b`` =
-    ``prev_bias`` (or None), on the graph ``matrix``; None when the
-    off-diagonal entries of ``S`` have both signs."""
+@dataclasses.dataclass(frozen=True)
+class PreviousBank:
+    """What the sign term needs of the bank ``H'`` and bias ``b`` before the
+    nonlinearity, on one cover (shared by every bank that reads that layer's
+    output: the next layer and the readout composite).
+
+    Attributes:
+      sign: :func:`off_diagonal_sign` of ``S`` (never 0 here).
+      cover: the cover ``gain`` is on.
+      gain: per cover point, ``||H'||^2`` bounded on the point's neighbourhood.
+      nodes: ``N``.
+      bias2: ``||b||^2`` rounded up (0 without bias).
+      ones: ``(1^T S 1, a bound on its float64 error)``.
+      u1, u2: ``H'^T c`` and ``H'^T S c`` (``c = 1_N b^T``) in float64, or None.
+    """
+
+    sign: int
+    cover: Cover
+    gain: np.ndarray
+    nodes: int
+    bias2: float
+    ones: tuple
+    u1: np.ndarray | None
+    u2: np.ndarray | None
+
+
+def previous_bank(prev_taps, basis: Basis, prev_bias, matrix, cover) -> PreviousBank | None:
+    """The :class:`PreviousBank` of ``H'`` (taps ``prev_taps``) and bias
+    ``prev_bias`` (or None) on the graph ``matrix``, over ``cover``; None when
+    the off-diagonal entries of ``S`` have both signs."""
     sgn = off_diagonal_sign(matrix)
     if sgn == 0:
         return None
-    cover = joint.cover
-    lo, hi = cover.split.interval
-    mid, half = 0.5 * (lo + hi), 0.5 * (hi - lo)
-    lam = mid + half * cover.t
-    lam_pad = 4 * UNIT * (abs(mid) + half)  # float64 error of lam_i (a few roundings)
-    dlam = cover.gap * half + lam_pad  # every covered point is within dlam of some lam_i
-    tops_b, slope_b = _point_tops(joint.pb, joint.pb_err, joint.fin, joint.kr, cover)
     p, p_err, fh, kh = gain_gram(*split_coefficients(prev_taps, basis, cover.split))
     tops_h, slope_h = _point_tops(p, p_err, fh, kh, cover)
     hv = np.maximum(tops_h + cover.gap * slope_h, 0.0)  # ||H'||^2 on each point's neighbourhood
     m = sp.csr_matrix(matrix).astype(np.float64)
     n = m.shape[0]
     if prev_bias is None:
-        b2, ones_s, u1, u2 = 0.0, (0.0, 0.0), None, None
-    else:
-        b = np.asarray(prev_bias, dtype=np.float64)
-        b2 = float(np.sum(b**2)) * (1 + 4 * UNIT)
-        ones_s = (float(m.sum()), gamma(m.nnz + 1) * float(np.abs(m.data).sum()))
-        # H'^T c and H'^T S c in float64 by the recurrence with the transposed
-        # taps (H' symmetric in the graph); ||H'^T W c|| = ||alpha_0 u1 + beta u2||.
-        c = np.ones((n, 1)) * b[None, :]
-        t = np.swapaxes(np.asarray(prev_taps, dtype=np.float64), 1, 2)
-        u1 = run_filter(lambda z: m @ z, t, c, basis)
-        u2 = run_filter(lambda z: m @ z, t, m @ c, basis)
+        return PreviousBank(sgn, cover, hv, n, 0.0, (0.0, 0.0), None, None)
+    b = np.asarray(prev_bias, dtype=np.float64)
+    b2 = float(np.sum(b**2)) * (1 + 4 * UNIT)
+    ones = (float(m.sum()), gamma(m.nnz + 1) * float(np.abs(m.data).sum()))
+    # H'^T c and H'^T S c in float64 by the recurrence with the transposed
+    # taps (H' symmetric in the graph); ||H'^T W c|| = ||alpha_0 u1 + beta u2||.
+    c = np.ones((n, 1)) * b[None, :]
+    t = np.swapaxes(np.asarray(prev_taps, dtype=np.float64), 1, 2)
+    u1 = run_filter(lambda z: m @ z, t, c, basis)
+    u2 = run_filter(lambda z: m @ z, t, m @ c, basis)
+    return PreviousBank(sgn, cover, hv, n, b2, ones, u1, u2)
+
+
+def sign_term(joint: JointFactor, prev: PreviousBank | None) -> SignTerm | None:
+    """The :class:`SignTerm` of a bank (its ``joint`` factorisation) whose input
+    is ``sigma(H' x + 1_N b^T)``, ``prev`` the :class:`PreviousBank` of ``H'``
+    and ``b`` on the same cover; None when ``prev`` is None."""
+    if prev is None:
+        return None
+    cover = joint.cover
+    if prev.cover is not cover:
+        raise ValueError("the sign term needs the previous bank on the cover of the joint factorisation.")
+    lo, hi = cover.split.interval
+    mid, half = 0.5 * (lo + hi), 0.5 * (hi - lo)
+    lam = mid + half * cover.t
+    lam_pad = 4 * UNIT * (abs(mid) + half)  # float64 error of lam_i (a few roundings)
+    dlam = cover.gap * half + lam_pad  # every covered point is within dlam of some lam_i
+    tops_b, slope_b = _point_tops(joint.pb, joint.pb_err, joint.fin, joint.kr, cover)
     scale = float(np.max(tops_b)) / max(hi - lo, 1e-300)
-    betas = sgn * BETA_STEPS * scale
+    betas = prev.sign * BETA_STEPS * scale
     ms, cross, bias2 = [], [], []
     for beta in betas:
         alpha0 = float(np.max(tops_b - beta * lam)) + cover.gap * (slope_b + abs(beta) * half) + abs(beta) * lam_pad
         weight = np.maximum(alpha0 + beta * lam + abs(beta) * dlam, 0.0)
-        ms.append(float(np.max(weight * hv)))
-        if prev_bias is None:
+        ms.append(float(np.max(weight * prev.gain)))
+        if prev.u1 is None:
             cross.append(0.0)
             bias2.append(0.0)
         else:
             # 1^T S 1 rounded up in the direction beta multiplies it; the
             # cross term with the allowance of bias_cross (1e-9 relative, common practice).
-            s1 = ones_s[0] + np.sign(beta) * ones_s[1]
-            bias2.append(max(alpha0 * n * b2 + beta * b2 * s1, 0.0))
-            cross.append(float(np.linalg.norm(alpha0 * u1 + beta * u2)) * (1 + 1e-9)
-                         + 1e-9 * (alpha0 * float(np.linalg.norm(u1)) + abs(beta) * float(np.linalg.norm(u2))))
+            s1 = prev.ones[0] + np.sign(beta) * prev.ones[1]
+            bias2.append(max(alpha0 * prev.nodes * prev.bias2 + beta * prev.bias2 * s1, 0.0))
+            cross.append(float(np.linalg.norm(alpha0 * prev.u1 + beta * prev.u2)) * (1 + 1e-9)
+                         + 1e-9 * (alpha0 * float(np.linalg.norm(prev.u1))
+                                   + abs(beta) * float(np.linalg.norm(prev.u2))))
     up = 1 + 8 * UNIT
     return SignTerm(float(np.sqrt(max(joint.sup_a, 0.0))), float(joint.res) * np.sqrt(joint.k * joint.kr),
                     np.asarray(ms) * up, np.asarray(cross) * up, np.asarray(bias2) * up, np.asarray(betas))

@@ -20,7 +20,7 @@ from reference import daleckii_krein, filter_matrices, kron_operator, random_sym
 from stablefilt._filters import Basis
 from stablefilt._joint import eigen_cover, joint_factor
 from stablefilt._kernel import eigenvalue_slack
-from stablefilt._signterm import off_diagonal_sign, sign_term
+from stablefilt._signterm import off_diagonal_sign, previous_bank, sign_term
 
 
 def _quad(s, v):
@@ -63,8 +63,8 @@ def _case(family, seed):
 @pytest.mark.parametrize("seed", [1, 2])
 def test_sign_term_bounds_the_first_order_change_of_abs(family, seed):
     name, op, s, lam, basis, prev, taps, bias, rng = _case(family, seed)
-    term = sign_term(joint_factor(taps, basis, eigen_cover(lam, eigenvalue_slack(lam))), prev, basis, bias,
-                     op.matrix)
+    joint = joint_factor(taps, basis, eigen_cover(lam, eigenvalue_slack(lam)))
+    term = sign_term(joint, previous_bank(prev, basis, bias, op.matrix, joint.cover))
     if off_diagonal_sign(op.matrix) == 0:
         assert term is None
         return
