@@ -34,6 +34,7 @@ from ._joint import (
     path_bound,
     schur_constant,
     sparse_first_orders,
+    sparse_quadratics,
 )
 from ._kernel import eigenvalue_slack
 from ._second import SecondKernel, second_kernel, second_order, smallest_remainder
@@ -536,7 +537,7 @@ def _masked_readout(w, pre, beta, nonlinearity) -> np.ndarray:
 
 def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eigenvectors=None,
                     forward_layer, known=None, changes: LayerChanges | None = None, refine: int = 0,
-                    matrix=None) -> np.ndarray:
+                    matrix=None, memo=None) -> np.ndarray:
     """Input-specific bound per signal on ``||Phi(S) x_b - Phi(S_hat) x_b||_F``
     (``x``: ``(B, N, F_0)``; docs/theory.md 9.2, 9.3, 9.5). Per layer the
     smaller of the joint spectral bound (with eigenvectors) and the bank's
@@ -550,10 +551,12 @@ def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eige
     runs layer ``i`` in float64; ``known[i]``, when given, are other valid
     bounds on layer ``i``'s change of these signals (the smaller is kept).
     Without eigenvectors, ``matrix`` (``S`` in float64) gives each bank's
-    joint bound for its input by sparse products (9.2, without eigenvectors)."""
+    joint bound for its input by sparse products (9.2, without eigenvectors).
+    ``memo``: an :class:`~stablefilt._memo.InputMemo` for ``x`` (its sparse
+    quadratic forms and remainder norms kept between sizes), or None."""
     lc = changes or layer_changes(mc, cc, bounds, eps)
     z = np.asarray(x, dtype=np.float64)
-    out = _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known, False, matrix)
+    out = _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known, False, matrix, memo)
     if refine and mc.eigenvalues is not None and eigenvectors is not None:
         # Refine the signal with the largest bound until the largest is a
         # refined one, or ``refine`` signals are done.
@@ -569,7 +572,8 @@ def composed_inputs(mc, cc: CompositionConstants, bounds, x, eps: float, *, eige
     return out
 
 
-def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known, worst: bool, matrix=None):
+def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known, worst: bool, matrix=None,
+                 memo=None):
     """The per-signal chain of :func:`composed_inputs`; ``worst`` adds the
     fixed-input first-order bounds of :mod:`stablefilt._inputworst`."""
     from ._inputworst import input_worst
@@ -585,7 +589,7 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
     for i, (lb, ch, extra) in enumerate(zip(bounds, lc.changes, cc.layers)):
         d = ch.certified * np.sqrt(np.sum(z**2, axis=(1, 2)))
         if use_spec:
-            rem = lb.spectral_remainder(z, lam, eigenvectors, cc.slack) if worst else lb.input_remainder(z)
+            rem = lb.spectral_remainder(z, lam, eigenvectors, cc.slack) if worst else lb.input_remainder(z, memo)
             d = np.minimum(d, input_first_order(extra.joint, lam, eigenvectors, z, eps) + rem)
             if worst:
                 first = eps * input_worst(mc.params["layers"][i]["taps"], spec.basis, lam, eigenvectors, z, cc.slack)
@@ -593,8 +597,11 @@ def _input_chain(mc, cc, bounds, lc, z, eps, eigenvectors, forward_layer, known,
         elif sparse:
             # The last bank and the readout composite read the same input: their products are shared.
             shared = i == len(bounds) - 1 and cc.readout is not None and spec.final_nonlinearity
-            firsts = sparse_first_orders([extra.joint] + ([cc.readout.joint] if shared else []), matrix, z, eps, ends)
-            d = np.minimum(d, firsts[0] + lb.input_remainder(z))
+            factors = [extra.joint] + ([cc.readout.joint] if shared else [])
+            quads = None if memo is None else memo.quadratics(
+                i, z, factors, lambda fs, v: sparse_quadratics(fs, matrix, v, ends))
+            firsts = sparse_first_orders(factors, matrix, z, eps, ends, quads)
+            d = np.minimum(d, firsts[0] + lb.input_remainder(z, memo))
             readout_first = firsts[1] if shared else None
         if known is not None:
             d = np.minimum(d, known[i])

@@ -295,13 +295,23 @@ class BankRemainder:
         norms = np.array([np.linalg.norm(g, 2) + np.linalg.norm(e) for g, e in zip(self.coefficients, self.errors)])
         return float(with_allowance(float(np.dot(self.tails, norms)), float(np.dot(self.powers, norms))))
 
-    def inputs(self, x) -> np.ndarray:
-        """Per signal of ``x`` ``(B, N, F_in)``: ``sum_j t_j (||X g_j||_F + ||X||_F ||err_j||_F)``."""
+    def input_norms(self, x) -> np.ndarray:
+        """``||X g_j||_F`` per coefficient ``j`` and signal of ``x``
+        ``(B, N, F_in)``, ``(K, B)``: the eps-free part of :meth:`inputs`
+        (the coefficients do not depend on eps)."""
+        x = np.asarray(x, dtype=np.float64)
+        return np.stack([np.sqrt(np.sum(np.einsum("bnf,fg->bng", x, g) ** 2, axis=(1, 2)))
+                         for g in self.coefficients])
+
+    def inputs(self, x, norms=None) -> np.ndarray:
+        """Per signal of ``x`` ``(B, N, F_in)``: ``sum_j t_j (||X g_j||_F + ||X||_F ||err_j||_F)``;
+        ``norms``: :meth:`input_norms` of ``x`` for these coefficients, when already computed."""
         x = np.asarray(x, dtype=np.float64)
         xn = np.sqrt(np.sum(x**2, axis=(1, 2)))
+        norms = self.input_norms(x) if norms is None else norms
         out, scale = np.zeros(x.shape[0]), np.zeros(x.shape[0])
-        for t, p, g, e in zip(self.tails, self.powers, self.coefficients, self.errors):
-            term = np.sqrt(np.sum(np.einsum("bnf,fg->bng", x, g) ** 2, axis=(1, 2))) + xn * np.linalg.norm(e)
+        for t, p, gx, e in zip(self.tails, self.powers, norms, self.errors):
+            term = gx + xn * np.linalg.norm(e)
             out += t * term
             scale += p * term
         return with_allowance(out, scale)

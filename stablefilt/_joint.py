@@ -473,13 +473,31 @@ def input_first_order_sparse(factor: JointFactor, matrix, z, eps: float, interva
     return sparse_first_orders([factor], matrix, z, eps, interval)[0]
 
 
-def sparse_first_orders(factors, matrix, z, eps: float, interval) -> list[np.ndarray]:
+def sparse_first_orders(factors, matrix, z, eps: float, interval, quadratics=None) -> list[np.ndarray]:
     """:func:`input_first_order_sparse` for several banks on the same input
-    ``z``; banks with the same split interval and ``K_r`` share the sparse
-    products. Signals go in chunks of at most ``CHUNK_VALUES`` column values."""
+    ``z``; ``quadratics``: their :func:`sparse_quadratics` for ``z``, when
+    already computed (they do not depend on ``eps``)."""
     z = np.asarray(z, dtype=np.float64)
     zn = np.sqrt(np.sum(z**2, axis=(1, 2)))
-    out = [np.full(z.shape[0], np.inf) for _ in factors]
+    quads = quadratics if quadratics is not None else sparse_quadratics(factors, matrix, z, interval)
+    out = []
+    for f, q in zip(factors, quads):
+        if q is None:
+            out.append(np.full(z.shape[0], np.inf))
+            continue
+        val = np.sqrt(max(f.sup_a, 0.0)) * np.sqrt(q) + f.res * np.sqrt(f.k * f.kr) * zn
+        out.append(eps * val * (1 + REL_ALLOW))
+    return out
+
+
+def sparse_quadratics(factors, matrix, z, interval) -> list:
+    """Per bank, ``max(q + err, 0)`` per signal of ``z`` (:func:`gram_quadratic`),
+    or None where the factor's split interval does not hold ``interval``:
+    the eps-free part of :func:`sparse_first_orders`. Banks with the same
+    split interval and ``K_r`` share the sparse products; signals go in
+    chunks of at most ``CHUNK_VALUES`` column values."""
+    z = np.asarray(z, dtype=np.float64)
+    out: list = [None for _ in factors]
     groups: dict = {}
     for i, f in enumerate(factors):
         lo, hi = f.cover.split.interval
@@ -494,12 +512,9 @@ def sparse_first_orders(factors, matrix, z, eps: float, interval) -> list[np.nda
             for i in members:
                 parts[i].append(gram_quadratic(factors[i], matrix, z[b:b + step], cols))
         for i in members:
-            f = factors[i]
             quad = np.concatenate([q for q, _ in parts[i]])
             err = np.concatenate([e for _, e in parts[i]])
-            val = (np.sqrt(max(f.sup_a, 0.0)) * np.sqrt(np.maximum(quad + err, 0.0))
-                   + f.res * np.sqrt(f.k * f.kr) * zn)
-            out[i] = eps * val * (1 + REL_ALLOW)
+            out[i] = np.maximum(quad + err, 0.0)
     return out
 
 

@@ -184,16 +184,18 @@ class LayerBound(NamedTuple):
         """:meth:`remainder_choice`'s value."""
         return self.remainder_choice()[0]
 
-    def input_remainder(self, x) -> np.ndarray:
+    def input_remainder(self, x, memo=None) -> np.ndarray:
         """Per signal of ``x`` ``(B, N, F_in)``, the smallest of the per-filter
         remainders weighted by feature norms, the whole-bank form and the
-        second-order kernel form."""
+        second-order kernel form (``memo``: an
+        :class:`~stablefilt._memo.InputMemo` for ``x``, or None)."""
         feat = np.sqrt(np.sum(np.asarray(x, dtype=np.float64) ** 2, axis=1))
         out = np.linalg.norm(feat @ np.atleast_2d(self.remainder), axis=1) * (1 + REL_ALLOW)
         if self.bank is not None:
-            out = np.minimum(out, self.bank.inputs(x))
+            out = np.minimum(out, self.bank.inputs(x, None if memo is None else memo.norms(x, self.bank)))
         if self.second is not None:
-            out = np.minimum(out, self.second.inputs(x))
+            third = self.second.third
+            out = np.minimum(out, self.second.inputs(x, None if memo is None else memo.norms(x, third)))
         return out
 
     def spectral_remainder(self, x, lam, vecs, slack: float) -> np.ndarray:
@@ -387,7 +389,7 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
 
 def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterval, x, eps: float,
                    eigenvalues=None, eigenvectors=None, constants: ModelConstants | None = None,
-                   refine: int = 0) -> np.ndarray:
+                   refine: int = 0, memo=None) -> np.ndarray:
     """Input-specific certificate per signal: for ``x`` of shape
     ``(B, N, F_0)``, a bound on ``||Phi(S) x_b - Phi(S_hat) x_b||_F`` for each
     ``b``, using the measured per-feature norms of the unperturbed path
@@ -397,15 +399,25 @@ def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterva
     the :func:`model_constants` of these arguments, when already computed.
     ``refine``: that many signals with the largest bounds are bounded again
     with each bank's largest first-order change for their own input
-    (docs/theory.md 9.5; about a second per bank and signal)."""
+    (docs/theory.md 9.5; about a second per bank and signal). ``memo``: an
+    :class:`~stablefilt._memo.InputMemo` kept by the caller between calls
+    on the same ``x`` at other sizes (the eps-free parts are then computed
+    once), or None."""
     n = op_matrix.shape[0]
     if constants is None:
         constants = model_constants(params, spec, interval, n, eigenvalues, matrix=op_matrix)
     p = constants.params
-    z = np.asarray(x, dtype=np.float64)
+    z = x0 = _input_array(x, memo)
     diff = np.zeros(z.shape[0])
     use_spec = eigenvalues is not None and eigenvectors is not None
     bounds = layer_bounds(constants, eps)
+
+    def plain_layer(i, v):
+        return _layer(p, spec, op_matrix, i, v)
+
+    def forward_layer(i, v):
+        return plain_layer(i, v) if memo is None else memo.layer(i, v, plain_layer)
+
     contribs = []
     for i, lb in enumerate(bounds):
         feat = np.sqrt(np.sum(z**2, axis=1))  # (B, F_in) per-feature norms
@@ -416,7 +428,7 @@ def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterva
         contrib = with_allowance(np.linalg.norm(per.sum(axis=1), axis=1), 0.0)  # ||sum_f beta_fg n_f||_2 over g
         contribs.append(contrib)
         diff = contrib + lb.gain_perturbed * diff
-        z = _layer(p, spec, op_matrix, i, z)[1]
+        z = forward_layer(i, z)[1]
     old = with_allowance(constants.readout * diff, 0.0)
     # Each signal is also an input of norm at most its own norm: the
     # operator-level bounds at rho = ||x_b|| hold for it.
@@ -430,10 +442,18 @@ def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterva
         old[b] = min(old[b], cap)
     if comp is None:
         return old
-    new = composed_inputs(constants, comp, bounds, x, eps, eigenvectors=eigenvectors,
-                          forward_layer=lambda i, v: _layer(p, spec, op_matrix, i, v), known=contribs, changes=lc,
-                          refine=refine, matrix=op_matrix)
+    new = composed_inputs(constants, comp, bounds, x0, eps, eigenvectors=eigenvectors,
+                          forward_layer=forward_layer, known=contribs, changes=lc,
+                          refine=refine, matrix=op_matrix, memo=memo)
     return np.minimum(old, new)
+
+
+def _input_array(x, memo) -> np.ndarray:
+    """``x`` in float64; with a ``memo``, the same array object on every
+    call with the same ``x`` (what the memo's entries are checked against)."""
+    if memo is None:
+        return np.asarray(x, dtype=np.float64)
+    return memo.layer(-1, x, lambda _, v: np.asarray(v, dtype=np.float64))
 
 
 def _layer(p, spec: ModelSpec, matrix, i: int, z):

@@ -247,27 +247,33 @@ def run_predictions(run, rc, eps_list, *, radius_upper: float | None = None,
     input-specific bounds at ``eps_list``); with ``radius_upper``, the radii
     too, evaluating the input-specific bound without refinement (s.10.4)."""
     task = run.manifest.get("task", "classify")
-    plain = plain_bounds(run, rc)
+    from ._memo import InputMemo
+
+    memo = InputMemo()  # one for both constants: the layers' outputs are shared
+    plain = plain_bounds(run, rc, memo)
     bounds = {float(e): np.minimum(rc.signal_bounds[float(e)], plain(float(e))) for e in eps_list}
-    at = signal_bounds_at(run, rc, plain) if radius_upper is not None and task == "classify" else None
+    at = signal_bounds_at(run, rc, plain, memo) if radius_upper is not None and task == "classify" else None
     return certify_predictions(run_outputs(run), run.test_y, run.spec, task, eps_list, bounds,
                                "input-specific bound of each test signal, the smaller of those with rebalanced and "
                                "with plain factorisations (docs/theory.md s.5 item 6, s.9)", at, radius_upper, steps)
 
 
-def plain_bounds(run, rc) -> Callable[[float], np.ndarray]:
+def plain_bounds(run, rc, memo=None) -> Callable[[float], np.ndarray]:
     """``eps -> (signals,)``: the run's input-specific test bounds with the
     factorisations not rebalanced and no deployment assumption (Weyl's
     widening). Rebalancing (docs/theory.md 9.4) tightens the operator-level
     bound but not always each signal's, so both are kept and the smaller
-    used; each is sound."""
+    used; each is sound. ``memo``: the :class:`~stablefilt._memo.InputMemo`
+    of the test signals to use (a new one when None)."""
+    from ._memo import InputMemo
     from ._modelcert import certify_inputs, model_constants
 
     sp_ = rc.spectrum
     constants = model_constants(run.params, run.spec, sp_.interval, run.op.nodes, sp_.eigenvalues,
                                 matrix=run.op.matrix)
+    memo = InputMemo() if memo is None else memo  # the eps-free parts, computed at the first size
     return lambda e: certify_inputs(run.params, run.spec, run.op.matrix, sp_.interval, run.test_x, e,
-                                    sp_.eigenvalues, sp_.eigenvectors, constants)
+                                    sp_.eigenvalues, sp_.eigenvectors, constants, memo=memo)
 
 
 OPERATOR_BOUND = ("operator-level certificate, for every input with ||x||_F <= rho (docs/theory.md s.5 item 6, s.9), "
@@ -290,20 +296,25 @@ def training_predictions(params, spec: ModelSpec, matrix, x, y, task: str, cert,
     bounds = {b.eps: np.full(len(x), b.certified) for b in cert.bounds}
     how = OPERATOR_BOUND
     if constants is not None:
+        from ._memo import InputMemo
+
+        memo = InputMemo()  # the eps-free parts once for every size
         for e in eps:
             own = certify_inputs(params, spec, matrix, constants.interval, x, e, constants.eigenvalues, eigenvectors,
-                                 constants)
+                                 constants, memo=memo)
             bounds[e] = np.minimum(bounds[e], own)
         how = ("the smaller of the operator-level certificate and each signal's input-specific bound "
                "(docs/theory.md s.5 item 6, s.9)")
     return certify_predictions(out, y, spec, task, eps, bounds, how)
 
 
-def signal_bounds_at(run, rc, plain=None) -> Callable[[float], np.ndarray]:
+def signal_bounds_at(run, rc, plain=None, memo=None) -> Callable[[float], np.ndarray]:
     """``eps -> (signals,)``: the smaller of the run's input-specific test
     bounds with rebalanced factorisations (``rc.constants``, no per-signal
-    refinement) and with plain ones (:func:`plain_bounds`)."""
+    refinement) and with plain ones (:func:`plain_bounds`); ``memo`` as there."""
+    from ._memo import InputMemo
     from ._runcert import input_bounds
 
-    plain = plain or plain_bounds(run, rc)
-    return lambda e: np.minimum(input_bounds(run, rc.spectrum, e, rc.constants, refine=0), plain(e))
+    memo = InputMemo() if memo is None else memo  # one for both constants: the layers' outputs are shared
+    plain = plain or plain_bounds(run, rc, memo)
+    return lambda e: np.minimum(input_bounds(run, rc.spectrum, e, rc.constants, refine=0, memo=memo), plain(e))

@@ -59,11 +59,12 @@ REFINE = 8
 
 
 def input_bounds(run: Run, spectrum: RunSpectrum, eps: float, constants: ModelConstants | None = None,
-                 refine: int = REFINE) -> np.ndarray:
+                 refine: int = REFINE, memo=None) -> np.ndarray:
     """Input-specific bounds ``(signals,)`` of the run's test signals at
-    ``eps``; the largest are refined for their own inputs (at most ``refine``)."""
+    ``eps``; the largest are refined for their own inputs (at most ``refine``).
+    ``memo``: an :class:`~stablefilt._memo.InputMemo` kept between sizes, or None."""
     return certify_inputs(run.params, run.spec, run.op.matrix, spectrum.interval, run.test_x, eps,
-                          spectrum.eigenvalues, spectrum.eigenvectors, constants, refine=refine)
+                          spectrum.eigenvalues, spectrum.eigenvectors, constants, refine=refine, memo=memo)
 
 
 @dataclasses.dataclass(frozen=True)

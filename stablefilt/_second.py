@@ -188,10 +188,11 @@ class SecondOrder:
         """For every ``||X||_F <= 1``."""
         return float(with_allowance(self.quadratic + self.third.operator(), self.quadratic))
 
-    def inputs(self, x) -> np.ndarray:
-        """Per signal of ``x`` ``(B, N, F_in)``: ``eps^2 K b ||X||_F + sum_j t3_j ||X g_j||_F``."""
+    def inputs(self, x, norms=None) -> np.ndarray:
+        """Per signal of ``x`` ``(B, N, F_in)``: ``eps^2 K b ||X||_F + sum_j t3_j ||X g_j||_F``
+        (``norms``: the ``||X g_j||_F`` of ``self.third``, when already computed)."""
         x = np.asarray(x, dtype=np.float64)
-        return self._with_third(self.quadratic * np.sqrt(np.sum(x**2, axis=(1, 2))), self.third.inputs(x))
+        return self._with_third(self.quadratic * np.sqrt(np.sum(x**2, axis=(1, 2))), self.third.inputs(x, norms))
 
     @staticmethod
     def _with_third(quad, third):

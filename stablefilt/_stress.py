@@ -20,6 +20,7 @@ import numpy as np
 from ._attack import DENSE_ATTACK_LIMIT, attack
 from ._distance import sylvester_relative, sym_norm2
 from ._errors import StablefiltError
+from ._memo import InputMemo
 from ._model import forward_np
 from ._modelcert import certify_inputs, model_bounds
 from ._perturb import DENSE_LIMIT, diagonal, jitter, relabel, relative, scaling
@@ -242,13 +243,15 @@ def _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_ite
     clean = _metric(y0, y, task)
     rows = []
     cache = {}
+    memo = InputMemo()  # the bounds' eps-free parts, shared by every size
 
     def input_bound(e_used, refine=0):
         """Input-specific bounds of the test signals at ``e_used`` (cached);
         the ``refine`` largest refined for their own inputs."""
         key = (round(float(e_used), 15), refine)
         if key not in cache:
-            cache[key] = certify_inputs(run.params, run.spec, s, iv, x, e_used, lam, vecs, constants, refine=refine)
+            cache[key] = certify_inputs(run.params, run.spec, s, iv, x, e_used, lam, vecs, constants, refine=refine,
+                                        memo=memo)
         return cache[key]
 
     for eps in eps_list:
