@@ -140,27 +140,54 @@ def bank_change(taps, basis, eps: float, *, first_order, remainder, joint: float
 class BiasBank:
     """The previous layer's bias ``c = 1_N b^T`` through a bank: ``H(S) c =
     G(S) 1_N`` for the one-input bank ``G`` of taps ``beta_k = c_k^T b``
-    (docs/theory.md 9.3), so ``||(H - H_hat) c|| <= sqrt(N) Delta(G)``.
+    (docs/theory.md 9.3), so ``||(H - H_hat) c|| <= sqrt(N) Delta(G)``, and
+    ``<= eps J(1_N) + sqrt(N) r(G)`` for that one input.
 
     Attributes:
       taps: ``beta`` ``(K, 1, F_out)``.
       filters: its :class:`FilterConstants`.
       joint: its joint factorisation.
       rows: ``sqrt(N) = ||1_N||``.
+      ones_first: ``J(1_N)``, a bound on ``sup_{||E|| <= 1} ||L(E) 1_N||``
+        (first order, per unit eps), or None.
+      second: its second-order kernel (9.8), with eigenvalues, or None.
     """
 
     taps: np.ndarray
     filters: FilterConstants
     joint: JointFactor
     rows: float
+    ones_first: float | None = None
+    second: SecondKernel | None = None
 
 
-def _bias_bank(taps, bias, basis, interval, lam, cover, nodes: int, rebalance: bool) -> BiasBank | None:
+def ones_first_order(joint: JointFactor, taps, basis, matrix, interval, lam=None, vecs=None,
+                     slack: float = 0.0) -> float | None:
+    """``J(1_N)`` of a one-input bank (docs/theory.md 9.3): the input-specific
+    joint form of 9.2 by sparse products on ``matrix`` (``S`` in float64;
+    ``interval`` the certified one holding its spectrum), and with the
+    eigenpairs ``lam``, ``vecs`` also the concave bound of 9.5; the smaller,
+    or None without ``matrix`` (or when neither can be claimed)."""
+    from ._inputworst import input_worst
+
+    if matrix is None:
+        return None
+    ones = np.ones((1, matrix.shape[0], 1))
+    val = float(sparse_first_orders([joint], matrix, ones, 1.0, interval)[0][0])
+    if lam is not None and vecs is not None:
+        val = min(val, float(input_worst(taps, basis, lam, vecs, ones, slack)[0]) * (1 + REL_ALLOW))
+    return val if np.isfinite(val) else None
+
+
+def _bias_bank(taps, bias, basis, interval, lam, cover, nodes: int, rebalance: bool, matrix=None, vecs=None,
+               slack: float = 0.0) -> BiasBank | None:
     if bias is None:
         return None
     beta = np.einsum("kfg,f->kg", np.asarray(taps, dtype=np.float64), np.asarray(bias, dtype=np.float64))[:, None, :]
-    return BiasBank(beta, filter_constants(beta, basis, interval, lam, pairwise=False),
-                    joint_factor(beta, basis, cover, optimise=rebalance), float(np.sqrt(nodes)))
+    jf = joint_factor(beta, basis, cover, optimise=rebalance)
+    second = None if lam is None else second_kernel(beta, basis, eigen_cover(lam, slack), optimise=rebalance)
+    return BiasBank(beta, filter_constants(beta, basis, interval, lam, pairwise=False), jf, float(np.sqrt(nodes)),
+                    ones_first_order(jf, beta, basis, matrix, interval, lam, vecs, slack), second)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -240,12 +267,15 @@ def bias_cross(taps, basis, matrix, bias) -> float:
 
 
 def composition_constants(params, spec, interval, nodes: int, filters, eigenvalues=None, matrix=None, *,
-                          deployed=None, rebalance: bool = False) -> CompositionConstants:
+                          deployed=None, rebalance: bool = False, eigenvectors=None) -> CompositionConstants:
     """The eps-free constants of :func:`composed_bound` (``params`` in
-    float64 numpy; ``filters`` the layers' :class:`FilterConstants`)."""
+    float64 numpy; ``filters`` the layers' :class:`FilterConstants`;
+    ``eigenvectors`` of ``S``, with ``eigenvalues``, tighten the biases'
+    changes, docs/theory.md 9.3)."""
     a, b = interval.lower, interval.upper
     lam = None if eigenvalues is None else np.asarray(eigenvalues, dtype=np.float64)
     radius, slack = radius_and_slack(interval, lam)
+    vecs = None if lam is None or eigenvectors is None else np.asarray(eigenvectors, dtype=np.float64)
     cover0 = change_cover(lam, (a, b), slack)
     layers = params["layers"]
     # relu and leaky relu: sigma(v) = c_a v + c_b |v| (docs/theory.md 9.9), on a graph given as a matrix.
@@ -264,7 +294,7 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         cross = bias_cross(taps, spec.basis, matrix, bias) + 1e-9 * float(filters[i].bank_sup) * bias_norm \
             if (bias is not None and matrix is not None) else None
         bb = None if i == 0 else _bias_bank(taps, layers[i - 1].get("bias"), spec.basis, (a, b), lam, cover0, nodes,
-                                            rebalance)
+                                            rebalance, matrix, vecs, slack)
         left = None if i == 0 else left_constant(layers[i - 1]["taps"], taps, spec.basis, cover0)
         sg = None if i == 0 else sign_term(jf, previous[i - 1])
         extras.append(LayerExtra(jf, right, cross, bias_norm, bb, left, sg))
@@ -277,7 +307,7 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         jw = joint_factor(comp, spec.basis, cover0, optimise=rebalance)
         rw = None if len(layers) < 2 else schur_constant(comp, spec.basis, cover0, "gamma", True, right=layers[-2]["taps"])
         rb = None if len(layers) < 2 else _bias_bank(comp, layers[-2].get("bias"), spec.basis, (a, b), lam, cover0,
-                                                     nodes, rebalance)
+                                                     nodes, rebalance, matrix, vecs, slack)
         lw = None if len(layers) < 2 else left_constant(layers[-2]["taps"], comp, spec.basis, cover0)
         # The composite's second-order kernel (9.8) over the eigenvalues, as for the layers' banks.
         sw = None if lam is None else second_kernel(comp, spec.basis, eigen_cover(lam, slack), optimise=rebalance)
@@ -378,11 +408,16 @@ def gain_hat(taps, basis, wide, lam, pcover) -> float:
 
 
 def _bias_change(bb: BiasBank | None, spec, eps: float, interval, lam, pcover, wide, radius: float):
-    """``sqrt(N) Delta(G)`` for a :class:`BiasBank` at ``eps`` (docs/theory.md 9.3), or None."""
+    """The smaller of ``sqrt(N) Delta(G)`` and ``eps J(1_N) + sqrt(N) r(G)``
+    for a :class:`BiasBank` at ``eps`` (docs/theory.md 9.3), or None."""
     if bb is None:
         return None
-    ch = _composite_change(bb.taps, bb.filters, bb.joint, spec, eps, interval, lam, pcover, wide, radius)[0]
-    return float(bb.rows * ch.certified * (1 + REL_ALLOW))
+    ch, _, _, rem = _composite_change(bb.taps, bb.filters, bb.joint, spec, eps, interval, lam, pcover, wide, radius,
+                                      bb.second)
+    out = bb.rows * ch.certified
+    if bb.ones_first is not None:
+        out = min(out, eps * bb.ones_first + bb.rows * rem + ABS_ALLOW * bb.rows * ch.trivial)
+    return float(out * (1 + REL_ALLOW))
 
 
 def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChanges:

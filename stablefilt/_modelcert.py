@@ -126,7 +126,8 @@ def _bank_sup_eig(taps, basis, lam):
 
 
 def model_constants(params, spec: ModelSpec, interval: SpectralInterval, nodes: int,
-                    eigenvalues=None, *, matrix=None, deployed=None, rebalance: bool = False) -> ModelConstants:
+                    eigenvalues=None, *, matrix=None, deployed=None, rebalance: bool = False,
+                    eigenvectors=None) -> ModelConstants:
     """The eps-free constants of a model on a graph with spectrum in
     ``interval`` (and, when given, these ``eigenvalues``).
 
@@ -134,7 +135,9 @@ def model_constants(params, spec: ModelSpec, interval: SpectralInterval, nodes: 
     path; ``deployed`` is the interval holding the deployed graph's spectrum
     when it keeps its kind (docs/theory.md 9.1), else None (Weyl's widening);
     ``rebalance`` optimises the joint factorisations (slower, tighter;
-    docs/theory.md 9.4)."""
+    docs/theory.md 9.4); ``eigenvectors`` of ``S`` (with ``eigenvalues``)
+    tighten the previous layers' biases' changes (9.3, about a second per
+    bias at N = 120)."""
     p = _np(params)
     iv = (interval.lower, interval.upper)
     filters, gains, layers = [], [], []
@@ -146,7 +149,7 @@ def model_constants(params, spec: ModelSpec, interval: SpectralInterval, nodes: 
         kap = c.kernel if c.kernel_spectrum is None else np.minimum(c.kernel, c.kernel_spectrum)
         layers.append(LayerConstants(float(np.max(c.integral_lipschitz)), float(np.max(kap)), float(c.bank_sup)))
     comp = composition_constants(p, spec, interval, int(nodes), filters, eigenvalues, matrix, deployed=deployed,
-                                 rebalance=rebalance)
+                                 rebalance=rebalance, eigenvectors=eigenvectors)
     second = None
     if eigenvalues is not None:
         cover = eigen_cover(eigenvalues, eigenvalue_slack(eigenvalues))

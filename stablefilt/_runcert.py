@@ -50,7 +50,7 @@ def run_constants(run: Run, spectrum: RunSpectrum, deployed=None) -> ModelConsta
     factorisations, docs/theory.md 9.4); ``deployed`` as in
     :func:`stablefilt.model_constants`."""
     return model_constants(run.params, run.spec, spectrum.interval, run.op.nodes, spectrum.eigenvalues,
-                           matrix=run.op.matrix, deployed=deployed, rebalance=True)
+                           matrix=run.op.matrix, deployed=deployed, rebalance=True, eigenvectors=spectrum.eigenvectors)
 
 
 #: At most this many test signals get their input-specific bound refined
