@@ -37,8 +37,8 @@ from ._joint import (
     sparse_quadratics,
 )
 from ._kernel import eigenvalue_slack
-from ._second import SecondKernel, second_kernel, second_order, smallest_remainder
-from ._series import ABS_ALLOW, REL_ALLOW
+from ._second import SecondKernel, product_kernel, second_kernel, second_order, smallest_remainder
+from ._series import ABS_ALLOW, REL_ALLOW, with_allowance
 from ._signterm import SignTerm, previous_bank, sign_term
 
 #: Slopes of each nonlinearity lie in ``[alpha, 1]`` (relu and tanh: 0; leaky relu: 0.1; none: D = I).
@@ -205,6 +205,8 @@ class LayerExtra:
         9.3, the carried change), or None.
       sign: the sign term of a relu input through ``S``'s quadratic form
         (docs/theory.md 9.9), or None.
+      right_second: the second-order kernel of the bank after the previous
+        one (9.8, "Through the previous bank"), or None.
     """
 
     joint: JointFactor
@@ -214,6 +216,7 @@ class LayerExtra:
     bias_bank: BiasBank | None = None
     left: float | None = None
     sign: SignTerm | None = None
+    right_second: SecondKernel | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -228,6 +231,7 @@ class ReadoutExtra:
     left: float | None = None
     second: SecondKernel | None = None
     sign: SignTerm | None = None
+    right_second: SecondKernel | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -297,7 +301,11 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
                                             rebalance, matrix, vecs, slack)
         left = None if i == 0 else left_constant(layers[i - 1]["taps"], taps, spec.basis, cover0)
         sg = None if i == 0 else sign_term(jf, previous[i - 1])
-        extras.append(LayerExtra(jf, right, cross, bias_norm, bb, left, sg))
+        rs = None
+        if i > 0 and rebalance and lam is not None:
+            cov = eigen_cover(lam, slack)
+            rs = product_kernel(second_kernel(taps, spec.basis, cov), layers[i - 1]["taps"], spec.basis, cov, True)
+        extras.append(LayerExtra(jf, right, cross, bias_norm, bb, left, sg, rs))
     readout = None
     w = params.get("readout", {}).get("weight") if spec.readout != "none" else None
     wn = float(np.linalg.norm(np.asarray(w, dtype=np.float64), 2)) * (1 + REL_ALLOW) if w is not None else 1.0
@@ -312,7 +320,10 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         # The composite's second-order kernel (9.8) over the eigenvalues, as for the layers' banks.
         sw = None if lam is None else second_kernel(comp, spec.basis, eigen_cover(lam, slack), optimise=rebalance)
         sg = None if len(layers) < 2 else sign_term(jw, previous[-1])
-        readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw, sg)
+        rs = None
+        if len(layers) >= 2 and rebalance and sw is not None:
+            rs = product_kernel(sw, layers[-2]["taps"], spec.basis, eigen_cover(lam, slack), True)
+        readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw, sg, rs)
     alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
     return CompositionConstants(tuple(extras), readout, wn, alpha, None if deployed is None else tuple(deployed),
                                 float(radius), float(slack), bool(rebalance))
@@ -470,12 +481,15 @@ class ComposedBound:
     clean_norms: tuple[float, ...]
 
 
-def _through(i, delta, rem, right, cc, norms, gains, ca, cb, bias_change=None, sign=None, eps=0.0):
+def _through(i, delta, rem, right, cc, norms, gains, ca, cb, bias_change=None, sign=None, eps=0.0,
+             rem_right=None):
     """Bound on ``||(H_i - H_hat_i) x_{i-1}||`` over the inputs: ``Delta
     n_{i-1}``, or through the previous bank, with the previous bias apart
     when ``bias_change`` bounds ``||(H_i - H_hat_i) c||`` (docs/theory.md 9.3),
     and the sign term through ``S``'s quadratic form when ``sign`` (a
-    :class:`SignTerm`) is given (9.9)."""
+    :class:`SignTerm`) is given (9.9). ``rem_right``: a bound on the
+    remainder of ``(H_i - H_hat_i) H_{i-1}`` per unit input, when known
+    (9.8, "Through the previous bank"; else ``rem B_{i-1}``)."""
     plain = delta * norms[i]
     if i == 0 or (right is None and bias_change is None):
         return plain
@@ -484,13 +498,24 @@ def _through(i, delta, rem, right, cc, norms, gains, ca, cb, bias_change=None, s
     abs_part = delta * norms[i]
     if sign is not None:
         abs_part = min(abs_part, sign.bound(eps, norms[i - 1], norms[i], rem))
-    d_right = delta * gains[i - 1] if right is None else min(right + rem * gains[i - 1], delta * gains[i - 1])
+    rem_prod = rem * gains[i - 1] if rem_right is None else min(rem * gains[i - 1], rem_right)
+    d_right = delta * gains[i - 1] if right is None else min(right + rem_prod, delta * gains[i - 1])
     nested = ca * d_right * norms[i - 1] + cb * min(delta * gains[i - 1] * norms[i - 1], abs_part) \
         + delta * prev.bias_norm
     if bias_change is not None:
         nested = min(nested, ca * d_right * norms[i - 1] + ca * min(bias_change, delta * prev.bias_norm)
                      + cb * abs_part)
     return min(plain, nested)
+
+
+def product_remainder(kernel: SecondKernel, third, eps: float, gain_prev: float) -> float:
+    """A bound on the remainder of ``(H - H_hat) H'`` per unit input: the
+    second-order term through the product ``kernel`` plus the bank's words
+    with three or more factors (``third``, a
+    :class:`~stablefilt._filterbounds.BankRemainder`) times ``B' >= ||H'||``
+    (docs/theory.md 9.8, "Through the previous bank")."""
+    quad = float(with_allowance(eps * eps * kernel.operator, 0.0))
+    return float((quad + third.operator() * gain_prev) * (1 + REL_ALLOW))
 
 
 def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
@@ -511,7 +536,11 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
         rem = lb.bank_remainder()
         right = None if cc.layers[i].right is None else eps * cc.layers[i].right
         bias_ch = lc.bias_changes[i] if lc.bias_changes else None
-        d = _through(i, ch.certified, rem, right, cc, norms, gains, ca, cb, bias_ch, cc.layers[i].sign, eps)
+        rs = cc.layers[i].right_second
+        rem_right = None if (rs is None or lb.second is None) else product_remainder(rs, lb.second.third, eps,
+                                                                                   gains[i - 1])
+        d = _through(i, ch.certified, rem, right, cc, norms, gains, ca, cb, bias_ch, cc.layers[i].sign, eps,
+                     rem_right)
         deltas.append(d)
         rems.append(rem)
         if i < spec.depth - 1:
@@ -525,8 +554,13 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
         alpha_l = cc.slope_low if spec.final_nonlinearity else 1.0
         right = None if cc.readout.right is None else eps * cc.readout.right
         rem_w = combine(lc.readout_remainder) if lc.readout_bank_remainder is None else lc.readout_bank_remainder
+        rs, rem_right = cc.readout.right_second, None
+        if rs is not None and spec.depth >= 2:
+            third = second_order(cc.readout.taps, spec.basis, (mc.interval.lower, mc.interval.upper), eps,
+                                 cc.readout.second).third
+            rem_right = product_remainder(rs, third, eps, gains[spec.depth - 2])
         dw = _through(spec.depth - 1, lc.readout_change.certified, rem_w, right, cc, norms,
-                      gains, ca, cb, lc.readout_bias_change, cc.readout.sign, eps)
+                      gains, ca, cb, lc.readout_bias_change, cc.readout.sign, eps, rem_right)
         g = 0.0  # bound on ||G_hat e_{L-2}||, G = H_L W
         if spec.depth >= 2:
             k = spec.depth - 2

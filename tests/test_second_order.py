@@ -11,6 +11,9 @@
   Bhatia, "Matrix Analysis", 1997, Thm V.3.3) on networkx graphs, for
   random, eigenvector-pair and scaling ``E`` at eps from 1e-3 to 0.3; a
   tenth of it is exceeded, so the check can fail.
+- The product kernel of a bank after another (9.8, "Through the previous
+  bank") bounds the exact second-order term of ``H`` on ``H'(S) x`` (numpy,
+  as above), below the product of suprema it replaces.
 """
 
 from __future__ import annotations
@@ -22,10 +25,10 @@ import pytest
 
 from stablefilt import Basis, shift_operator, spectral_interval
 from stablefilt._exact import second_transform
-from stablefilt._filters import basis_values
+from stablefilt._filters import basis_values, frequency_response
 from stablefilt._joint import eigen_cover
 from stablefilt._kernel import eigenvalue_slack
-from stablefilt._second import second_kernel, second_order
+from stablefilt._second import product_kernel, second_kernel, second_order
 
 
 def _setting(name, kind, bkind):
@@ -152,3 +155,55 @@ def test_rebalanced_kernel_bounds_the_second_order_term():
         assert val <= kern.operator * (1 + 1e-9), (val, kern.operator)
         worst = max(worst, val)
     assert worst > k * kern.sup, (worst, k * kern.sup)
+
+
+def test_product_kernel_bounds_the_second_order_term_after_a_bank():
+    """The second-order term of ``H`` applied to ``H'(S) x`` (docs/theory.md
+    9.8, "Through the previous bank"), exact as above (the ``t^2``
+    coefficient of ``t -> H(S + t D) H'(S) x``, numpy), stays below
+    ``eps^2 operator ||x||`` of the product kernel, plain and scaled, for
+    random inputs and for ``E`` and ``x`` pushed up by alternating ascent;
+    the product of the two suprema it replaces (``K b B'``) is larger, and
+    the scaled middle factor with unscaled outer ones is exceeded, so the
+    check can fail."""
+    s, iv, basis = _setting("karate", "normalized-laplacian", "chebyshev")
+    n, k, kp = s.shape[0], 5, 4
+    rng = np.random.default_rng(5)
+    taps = rng.standard_normal((k, 2, 3)) * 0.5
+    prev = rng.standard_normal((kp, 2, 2)) * 0.5
+    lam, v = np.linalg.eigh(s)
+    cover = eigen_cover(lam, eigenvalue_slack(lam))
+    kern = second_kernel(taps, basis, cover)
+    plain = product_kernel(kern, prev, basis, cover)
+    scaled = product_kernel(kern, prev, basis, cover, optimise=True)
+    ts = np.linspace(-1.0, 1.0, k)
+    vander = np.linalg.inv(np.vander(ts, k, increasing=True))
+
+    def quad(e, x):
+        d = e @ s + s @ e
+        hx = H.bank_apply(s, prev, basis, x)
+        vals = np.stack([H.bank_apply(s + t * d, taps, basis, hx) for t in ts])
+        return (vander[2] @ vals.reshape(k, -1)).reshape(n, -1)
+
+    worst = 0.0
+    for trial in range(4):
+        e = H.random_error(rng, n, 1.0)
+        x = rng.standard_normal((n, 2))
+        for _ in range(3 if trial else 0):
+            cols = np.stack([quad(e, z.reshape(n, 2)).ravel() for z in np.eye(2 * n)], axis=1)
+            x = np.linalg.svd(cols)[2][0].reshape(n, 2)
+            g = np.zeros_like(e)
+            base = np.sum(quad(e, x) ** 2)
+            for i, j in zip(*np.triu_indices(n)):
+                de = np.zeros_like(e)
+                de[i, j] = de[j, i] = 1e-4
+                g[i, j] = g[j, i] = (np.sum(quad(e + de, x) ** 2) - base) / 1e-4
+            w, q = np.linalg.eigh(e + 0.5 * g / np.linalg.norm(g))
+            e = (q * np.clip(w, -1.0, 1.0)) @ q.T
+        val = np.linalg.norm(quad(e, x)) / np.linalg.norm(x)
+        assert val <= min(plain.operator, scaled.operator) * (1 + 1e-9), (val, plain.operator, scaled.operator)
+        worst = max(worst, val)
+    gain_prev = max(np.linalg.norm(h, 2) for h in frequency_response(prev, lam, basis))
+    assert min(plain.operator, scaled.operator) < kern.operator * gain_prev
+    # The scaled middle factor with unscaled outer ones (sqrt(K (K + K' - 1)) b'') is exceeded.
+    assert scaled.factor is not None and worst > scaled.sup * np.sqrt(k * (k + kp - 1)), (worst, scaled.sup)
