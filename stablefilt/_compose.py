@@ -207,6 +207,9 @@ class LayerExtra:
         (docs/theory.md 9.9), or None.
       right_second: the second-order kernel of the bank after the previous
         one (9.8, "Through the previous bank"), or None.
+      left_second: the same for the previous bank's transposed taps followed
+        by this bank's transposed: ``||H Q_prev(E)|| = ||Q_prev^T(E) H^T||``
+        (9.3, the carried change), or None.
     """
 
     joint: JointFactor
@@ -217,6 +220,7 @@ class LayerExtra:
     left: float | None = None
     sign: SignTerm | None = None
     right_second: SecondKernel | None = None
+    left_second: SecondKernel | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -232,6 +236,7 @@ class ReadoutExtra:
     second: SecondKernel | None = None
     sign: SignTerm | None = None
     right_second: SecondKernel | None = None
+    left_second: SecondKernel | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -301,11 +306,12 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
                                             rebalance, matrix, vecs, slack)
         left = None if i == 0 else left_constant(layers[i - 1]["taps"], taps, spec.basis, cover0)
         sg = None if i == 0 else sign_term(jf, previous[i - 1])
-        rs = None
+        rs, ls = None, None
         if i > 0 and rebalance and lam is not None:
             cov = eigen_cover(lam, slack)
             rs = product_kernel(second_kernel(taps, spec.basis, cov), layers[i - 1]["taps"], spec.basis, cov, True)
-        extras.append(LayerExtra(jf, right, cross, bias_norm, bb, left, sg, rs))
+            ls = left_kernel(layers[i - 1]["taps"], taps, spec.basis, cov)
+        extras.append(LayerExtra(jf, right, cross, bias_norm, bb, left, sg, rs, ls))
     readout = None
     w = params.get("readout", {}).get("weight") if spec.readout != "none" else None
     wn = float(np.linalg.norm(np.asarray(w, dtype=np.float64), 2)) * (1 + REL_ALLOW) if w is not None else 1.0
@@ -320,13 +326,26 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         # The composite's second-order kernel (9.8) over the eigenvalues, as for the layers' banks.
         sw = None if lam is None else second_kernel(comp, spec.basis, eigen_cover(lam, slack), optimise=rebalance)
         sg = None if len(layers) < 2 else sign_term(jw, previous[-1])
-        rs = None
+        rs, ls = None, None
         if len(layers) >= 2 and rebalance and sw is not None:
             rs = product_kernel(sw, layers[-2]["taps"], spec.basis, eigen_cover(lam, slack), True)
-        readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw, sg, rs)
+            ls = left_kernel(layers[-2]["taps"], comp, spec.basis, eigen_cover(lam, slack))
+        readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw, sg, rs, ls)
     alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
     return CompositionConstants(tuple(extras), readout, wn, alpha, None if deployed is None else tuple(deployed),
                                 float(radius), float(slack), bool(rebalance))
+
+
+def left_kernel(prev_taps, taps, basis, cover) -> SecondKernel:
+    """The product kernel bounding ``||H Q_prev(E)||`` (``Q_prev`` the
+    second-order term of the bank ``prev_taps``, ``H`` the bank ``taps``
+    after it): for ``S`` and ``E`` symmetric the adjoint of ``Q_prev(E)`` is
+    the second-order term of the bank with taps ``c_k^T`` (each word
+    ``S^a D S^b D S^c`` has its reverse in the same sum), so
+    ``||H Q_prev(E)|| = ||Q_prev^T(E) H^T||``, the product kernel of that bank
+    followed on the right by ``taps`` transposed (docs/theory.md 9.3, 9.8)."""
+    t = lambda z: np.swapaxes(np.asarray(z, dtype=np.float64), 1, 2)  # noqa: E731
+    return product_kernel(second_kernel(t(prev_taps), basis, cover), t(taps), basis, cover, True)
 
 
 def left_constant(prev_taps, taps, basis, cover) -> float:
@@ -340,7 +359,8 @@ def left_constant(prev_taps, taps, basis, cover) -> float:
 
 
 def carried(a_prev: float, d: float, n_prev: float, gain_hat: float, gain: float, change: float,
-            left: float | None, eps: float, rem_prev: float, change_prev: float, ca: float, cb: float) -> float:
+            left: float | None, eps: float, rem_prev: float, change_prev: float, ca: float, cb: float,
+            rem_left: float | None = None) -> float:
     """``a_l``, a bound on ``||H_hat e_l||`` for the bank ``H`` that follows
     layer ``l`` (docs/theory.md 9.3, the carried change)::
 
@@ -354,11 +374,15 @@ def carried(a_prev: float, d: float, n_prev: float, gain_hat: float, gain: float
       gain_hat, gain, change: ``B_hat``, ``B`` and ``Delta`` of the bank ``H``.
       left: ``K`` (:func:`left_constant`) of ``H`` after layer ``l``, or None.
       rem_prev, change_prev: ``r_l`` and ``Delta_l``, layer ``l``'s bank remainder and change.
+      rem_left: a bound on ``||H R_l(E)||`` (layer ``l``'s remainder followed by
+        ``H``; 9.8, "Through the previous bank", by transposition), or None
+        (then ``r_l B``).
     """
     plain = gain_hat * (d + a_prev)
     if left is None:
         return plain
-    kappa = min(eps * left + rem_prev * gain, change_prev * gain) + change * change_prev
+    rem_after = rem_prev * gain if rem_left is None else min(rem_prev * gain, rem_left)
+    kappa = min(eps * left + rem_after, change_prev * gain) + change * change_prev
     kappa = min(kappa, gain_hat * change_prev)
     return min(plain, ca * kappa * n_prev + cb * gain_hat * d + gain_hat * a_prev)
 
@@ -509,11 +533,11 @@ def _through(i, delta, rem, right, cc, norms, gains, ca, cb, bias_change=None, s
 
 
 def product_remainder(kernel: SecondKernel, third, eps: float, gain_prev: float) -> float:
-    """A bound on the remainder of ``(H - H_hat) H'`` per unit input: the
-    second-order term through the product ``kernel`` plus the bank's words
-    with three or more factors (``third``, a
-    :class:`~stablefilt._filterbounds.BankRemainder`) times ``B' >= ||H'||``
-    (docs/theory.md 9.8, "Through the previous bank")."""
+    """A bound on the remainder of ``(H - H_hat) H'`` per unit input (or, by
+    transposition, of ``H' (H - H_hat)``): the second-order term through the
+    product ``kernel`` plus the bank's words with three or more factors
+    (``third``, a :class:`~stablefilt._filterbounds.BankRemainder`) times
+    ``gain_prev >= ||H'||`` (docs/theory.md 9.8, "Through the previous bank")."""
     quad = float(with_allowance(eps * eps * kernel.operator, 0.0))
     return float((quad + third.operator() * gain_prev) * (1 + REL_ALLOW))
 
@@ -545,8 +569,11 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
         rems.append(rem)
         if i < spec.depth - 1:
             a_before = a
+            ls = cc.layers[i + 1].left_second
+            rem_left = None if (ls is None or lb.second is None) else product_remainder(ls, lb.second.third, eps,
+                                                                                      gains[i + 1])
             a = carried(a, d, norms[i], lc.gains_hat[i + 1], gains[i + 1], lc.changes[i + 1].certified,
-                        cc.layers[i + 1].left, eps, rem, ch.certified, ca, cb)
+                        cc.layers[i + 1].left, eps, rem, ch.certified, ca, cb, rem_left)
     e_last = deltas[-1] + a
     rf = mc.readout
     out = rf * e_last
@@ -564,8 +591,12 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
         g = 0.0  # bound on ||G_hat e_{L-2}||, G = H_L W
         if spec.depth >= 2:
             k = spec.depth - 2
-            g = carried(a_before, deltas[k], norms[k], lc.readout_gain_hat, float(cc.readout.filters.bank_sup),
-                        lc.readout_change.certified, cc.readout.left, eps, rems[k], lc.changes[k].certified, ca, cb)
+            ls, gain_w = cc.readout.left_second, float(cc.readout.filters.bank_sup)
+            rem_left = None if (ls is None or bounds[k].second is None) else product_remainder(
+                ls, bounds[k].second.third, eps, gain_w)
+            g = carried(a_before, deltas[k], norms[k], lc.readout_gain_hat, gain_w,
+                        lc.readout_change.certified, cc.readout.left, eps, rems[k], lc.changes[k].certified, ca, cb,
+                        rem_left)
         through = dw + g
         out = min(out, 0.5 * (1 + alpha_l) * through + 0.5 * (1 - alpha_l) * cc.weight_norm * e_last)
     trivial = rf * (norms[-1] + norms_hat[-1])

@@ -207,3 +207,50 @@ def test_product_kernel_bounds_the_second_order_term_after_a_bank():
     assert min(plain.operator, scaled.operator) < kern.operator * gain_prev
     # The scaled middle factor with unscaled outer ones (sqrt(K (K + K' - 1)) b'') is exceeded.
     assert scaled.factor is not None and worst > scaled.sup * np.sqrt(k * (k + kp - 1)), (worst, scaled.sup)
+
+
+def test_left_kernel_bounds_a_bank_after_the_second_order_term():
+    """``||H' Q(E) X|| <= eps^2 operator ||X||`` for the kernel of
+    ``_compose.left_kernel`` (docs/theory.md 9.3, 9.8): ``Q(E)^T`` is the
+    second-order term of the transposed bank, so ``||H' Q(E)|| = ||Q^T(E) H'^T||``.
+    The exact ``Q(E) X`` as above (numpy), then ``H'(S)`` by ``eigh``; ``E`` and
+    ``X`` pushed up by alternating ascent; the scaled middle factor with
+    unscaled outer ones is exceeded, so the check can fail."""
+    from stablefilt._compose import left_kernel
+
+    s, iv, basis = _setting("path", "laplacian", "chebyshev")
+    n, k, ka = s.shape[0], 4, 5
+    rng = np.random.default_rng(9)
+    taps = rng.standard_normal((k, 2, 3)) * 0.5  # the bank whose second-order term is taken
+    after = rng.standard_normal((ka, 3, 2)) * 0.5  # the bank applied after it
+    lam = np.linalg.eigvalsh(s)
+    cover = eigen_cover(lam, eigenvalue_slack(lam))
+    kern = left_kernel(taps, after, basis, cover)
+    ts = np.linspace(-1.0, 1.0, k)
+    vander = np.linalg.inv(np.vander(ts, k, increasing=True))
+
+    def quad(e, x):
+        d = e @ s + s @ e
+        vals = np.stack([H.bank_apply(s + t * d, taps, basis, x) for t in ts])
+        return H.bank_apply(s, after, basis, (vander[2] @ vals.reshape(k, -1)).reshape(n, -1))
+
+    worst = 0.0
+    for trial in range(4):
+        e = H.random_error(rng, n, 1.0)
+        x = rng.standard_normal((n, 2))
+        for _ in range(3 if trial else 0):
+            cols = np.stack([quad(e, z.reshape(n, 2)).ravel() for z in np.eye(2 * n)], axis=1)
+            x = np.linalg.svd(cols)[2][0].reshape(n, 2)
+            g = np.zeros_like(e)
+            base = np.sum(quad(e, x) ** 2)
+            for i, j in zip(*np.triu_indices(n)):
+                de = np.zeros_like(e)
+                de[i, j] = de[j, i] = 1e-4
+                g[i, j] = g[j, i] = (np.sum(quad(e + de, x) ** 2) - base) / 1e-4
+            w, q = np.linalg.eigh(e + 0.5 * g / np.linalg.norm(g))
+            e = (q * np.clip(w, -1.0, 1.0)) @ q.T
+        val = np.linalg.norm(quad(e, x)) / np.linalg.norm(x)
+        assert val <= kern.operator * (1 + 1e-9), (val, kern.operator)
+        worst = max(worst, val)
+    plain_outer = np.sqrt(k * (k + ka - 1)) * kern.sup
+    assert kern.factor is not None and worst > plain_outer, (worst, plain_outer, kern.operator)
