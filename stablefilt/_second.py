@@ -80,17 +80,8 @@ def second_kernel(taps, basis: Basis, cover: Cover, optimise: bool = False) -> S
     t_err = 2.0 * (k + 2) * UNIT * np.einsum("sbtj,jfg->fgsbt", np.abs(tr), np.abs(taps), optimize=True)
     plain = _beta_sup(t, t_err, cover)
     kern = SecondKernel(t, t_err, cover.split, plain, cover.description)
-    # Diagonal scalings per Chebyshev index (docs/theory.md 9.8, "Rebalanced");
-    # the float64 scaling adds two roundings per coefficient to the error bound.
-    d, e = _scalings(t, cover) if (optimise and plain > 0.0) else (np.ones(k), np.ones(k))
-    if np.any(d != 1.0) or np.any(e != 1.0):
-        de = d[None, None, :, None, None] * e[None, None, None, None, :]
-        ts = t / de
-        es = (t_err / de) * (1 + 4 * UNIT) + 4 * UNIT * np.abs(ts)
-        scaled = _beta_sup(ts, es, cover)
-        factor = float(np.sqrt(_weighted_sup(d, cover) * _weighted_sup(e, cover))) * (1 + 8 * UNIT)
-        if factor * scaled < k * plain:
-            kern = dataclasses.replace(kern, sup=scaled, factor=factor, scales=(d, e))
+    if optimise and plain > 0.0:
+        kern = _rescaled(kern, cover, k * plain)
     t.setflags(write=False)
     t_err.setflags(write=False)
     return kern
@@ -131,18 +122,29 @@ def product_kernel(kernel: SecondKernel, prev_taps, basis: Basis, cover: Cover, 
     factor = float(np.sqrt(_weighted_sup(np.ones(k), cover) * _weighted_sup(np.ones(ku), cover))) * (1 + 8 * UNIT)
     prod = SecondKernel(out, err, kernel.split, sup, cover.description, factor, None)
     if optimise and sup > 0.0:
-        # Diagonal scalings per Chebyshev index, as for the bank's own kernel ("Rebalanced").
-        d, e = _scalings(out, cover)
-        de = d[None, None, :, None, None] * e[None, None, None, None, :]
-        ts = out / de
-        es = (err / de) * (1 + 4 * UNIT) + 4 * UNIT * np.abs(ts)
-        scaled = _beta_sup(ts, es, cover)
-        fac = float(np.sqrt(_weighted_sup(d, cover) * _weighted_sup(e, cover))) * (1 + 8 * UNIT)
-        if fac * scaled < factor * sup:
-            prod = dataclasses.replace(prod, sup=scaled, factor=fac, scales=(d, e))
+        prod = _rescaled(prod, cover, factor * sup)
     out.setflags(write=False)
     err.setflags(write=False)
     return prod
+
+
+def _rescaled(kern: SecondKernel, cover: Cover, current: float) -> SecondKernel:
+    """``kern`` with the diagonal scalings per Chebyshev index of
+    docs/theory.md 9.8 ("Rebalanced") when its checked bound ``sqrt(l r) b'``
+    is below ``current`` (the operator bound without them), else ``kern``.
+    The float64 scaling adds two roundings per coefficient to the error bound."""
+    t, t_err = kern.coefficients, kern.errors
+    d, e = _scalings(t, cover)
+    if np.all(d == 1.0) and np.all(e == 1.0):
+        return kern
+    de = d[None, None, :, None, None] * e[None, None, None, None, :]
+    ts = t / de
+    es = (t_err / de) * (1 + 4 * UNIT) + 4 * UNIT * np.abs(ts)
+    scaled = _beta_sup(ts, es, cover)
+    factor = float(np.sqrt(_weighted_sup(d, cover) * _weighted_sup(e, cover))) * (1 + 8 * UNIT)
+    if factor * scaled < current:
+        return dataclasses.replace(kern, sup=scaled, factor=factor, scales=(d, e))
+    return kern
 
 
 #: Objective evaluations and points of the search for the diagonal scalings
