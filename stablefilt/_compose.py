@@ -539,7 +539,8 @@ def product_remainder(kernel: SecondKernel, third, eps: float, gain_prev: float)
     (``third``, a :class:`~stablefilt._filterbounds.BankRemainder`) times
     ``gain_prev >= ||H'||`` (docs/theory.md 9.8, "Through the previous bank")."""
     quad = float(with_allowance(eps * eps * kernel.operator, 0.0))
-    return float((quad + third.operator() * gain_prev) * (1 + REL_ALLOW))
+    val = float((quad + third.operator() * gain_prev) * (1 + REL_ALLOW))
+    return val if np.isfinite(val) else np.inf  # never a NaN: callers keep the smaller of two bounds
 
 
 def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
