@@ -286,6 +286,8 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
     radius, slack = radius_and_slack(interval, lam)
     vecs = None if lam is None or eigenvectors is None else np.asarray(eigenvectors, dtype=np.float64)
     cover0 = change_cover(lam, (a, b), slack)
+    kcover = None if lam is None else eigen_cover(lam, slack)  # the second-order kernels' (9.8)
+    products = rebalance and kcover is not None  # the product kernels of 9.8 for rebalanced constants
     layers = params["layers"]
     # relu and leaky relu: sigma(v) = c_a v + c_b |v| (docs/theory.md 9.9), on a graph given as a matrix.
     # previous[i]: what the sign term needs of layer i's bank and bias, shared by the banks that read
@@ -307,10 +309,9 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
         left = None if i == 0 else left_constant(layers[i - 1]["taps"], taps, spec.basis, cover0)
         sg = None if i == 0 else sign_term(jf, previous[i - 1])
         rs, ls = None, None
-        if i > 0 and rebalance and lam is not None:
-            cov = eigen_cover(lam, slack)
-            rs = product_kernel(second_kernel(taps, spec.basis, cov), layers[i - 1]["taps"], spec.basis, cov, True)
-            ls = left_kernel(layers[i - 1]["taps"], taps, spec.basis, cov)
+        if i > 0 and products:
+            rs = product_kernel(taps, layers[i - 1]["taps"], spec.basis, kcover, True)
+            ls = left_kernel(layers[i - 1]["taps"], taps, spec.basis, kcover)
         extras.append(LayerExtra(jf, right, cross, bias_norm, bb, left, sg, rs, ls))
     readout = None
     w = params.get("readout", {}).get("weight") if spec.readout != "none" else None
@@ -324,12 +325,12 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
                                                      nodes, rebalance, matrix, vecs, slack)
         lw = None if len(layers) < 2 else left_constant(layers[-2]["taps"], comp, spec.basis, cover0)
         # The composite's second-order kernel (9.8) over the eigenvalues, as for the layers' banks.
-        sw = None if lam is None else second_kernel(comp, spec.basis, eigen_cover(lam, slack), optimise=rebalance)
+        sw = None if lam is None else second_kernel(comp, spec.basis, kcover, optimise=rebalance)
         sg = None if len(layers) < 2 else sign_term(jw, previous[-1])
         rs, ls = None, None
-        if len(layers) >= 2 and rebalance and sw is not None:
-            rs = product_kernel(sw, layers[-2]["taps"], spec.basis, eigen_cover(lam, slack), True)
-            ls = left_kernel(layers[-2]["taps"], comp, spec.basis, eigen_cover(lam, slack))
+        if len(layers) >= 2 and products:
+            rs = product_kernel(comp, layers[-2]["taps"], spec.basis, kcover, True)
+            ls = left_kernel(layers[-2]["taps"], comp, spec.basis, kcover)
         readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw, sg, rs, ls)
     alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
     return CompositionConstants(tuple(extras), readout, wn, alpha, None if deployed is None else tuple(deployed),
@@ -345,7 +346,7 @@ def left_kernel(prev_taps, taps, basis, cover) -> SecondKernel:
     ``||H Q_prev(E)|| = ||Q_prev^T(E) H^T||``, the product kernel of that bank
     followed on the right by ``taps`` transposed (docs/theory.md 9.3, 9.8)."""
     t = lambda z: np.swapaxes(np.asarray(z, dtype=np.float64), 1, 2)  # noqa: E731
-    return product_kernel(second_kernel(t(prev_taps), basis, cover), t(taps), basis, cover, True)
+    return product_kernel(t(prev_taps), t(taps), basis, cover, True)
 
 
 def left_constant(prev_taps, taps, basis, cover) -> float:

@@ -72,12 +72,9 @@ def second_kernel(taps, basis: Basis, cover: Cover, optimise: bool = False) -> S
     if taps.ndim == 1:
         taps = taps[:, None, None]
     k, fin, fout = taps.shape
+    t, t_err = _kernel_coefficients(taps, basis, cover.split)
     if k < 3:  # degree <= 1: no second-order term
-        z = np.zeros((fin, fout, k, k, k))
-        return SecondKernel(z, z, cover.split, 0.0, cover.description)
-    tr = second_transform(k, basis, cover.split)  # (s, b, t, j)
-    t = np.einsum("sbtj,jfg->fgsbt", tr, taps, optimize=True)
-    t_err = 2.0 * (k + 2) * UNIT * np.einsum("sbtj,jfg->fgsbt", np.abs(tr), np.abs(taps), optimize=True)
+        return SecondKernel(t, t_err, cover.split, 0.0, cover.description)
     plain = _beta_sup(t, t_err, cover)
     kern = SecondKernel(t, t_err, cover.split, plain, cover.description)
     if optimise and plain > 0.0:
@@ -87,19 +84,32 @@ def second_kernel(taps, basis: Basis, cover: Cover, optimise: bool = False) -> S
     return kern
 
 
-def product_kernel(kernel: SecondKernel, prev_taps, basis: Basis, cover: Cover, optimise: bool = False) -> SecondKernel:
-    """The second-order kernel of a bank after the bank ``prev_taps``
-    (``H'``, ``(K', F_p, F_in)``): ``K''_pg(lam, mu, nu) = sum_f K_fg(lam, mu,
-    nu) h'_pf(nu)`` on ``kernel``'s split, so that ``||Q(H' x)||_F <= eps^2
-    operator ||x||_F`` with ``operator = sqrt(l r'') b''`` (docs/theory.md 9.8,
-    "Through the previous bank"). ``kernel``: the bank's
-    :class:`SecondKernel` (its unscaled ``coefficients`` and ``errors`` are
-    used); ``optimise`` adds diagonal scalings, kept when smaller."""
+def _kernel_coefficients(taps, basis: Basis, split: Basis) -> tuple[np.ndarray, np.ndarray]:
+    """``T_fg[s, b, t]`` of a bank ``(K, F_in, F_out)`` on the Chebyshev
+    ``split`` (``(F_in, F_out, K, K, K)``, float64) and an entrywise bound on
+    their error (docs/theory.md 9.8); zeros for degree at most 1."""
+    k, fin, fout = taps.shape
+    if k < 3:
+        z = np.zeros((fin, fout, k, k, k))
+        return z, z
+    tr = second_transform(k, basis, split)  # (s, b, t, j)
+    t = np.einsum("sbtj,jfg->fgsbt", tr, taps, optimize=True)
+    t_err = 2.0 * (k + 2) * UNIT * np.einsum("sbtj,jfg->fgsbt", np.abs(tr), np.abs(taps), optimize=True)
+    return t, t_err
+
+
+def product_kernel(taps, prev_taps, basis: Basis, cover: Cover, optimise: bool = False) -> SecondKernel:
+    """The second-order kernel of the bank ``taps`` (``(K, F_in, F_out)``,
+    ``K >= 3``) after the bank ``prev_taps`` (``H'``, ``(K', F_p, F_in)``):
+    ``K''_pg(lam, mu, nu) = sum_f K_fg(lam, mu, nu) h'_pf(nu)`` on ``cover``'s
+    split, so that ``||Q(H' x)||_F <= eps^2 operator ||x||_F`` with
+    ``operator = sqrt(l r'') b''`` (docs/theory.md 9.8, "Through the previous
+    bank"); ``optimise`` adds diagonal scalings, kept when smaller."""
     from ._joint import split_coefficients
 
-    t, t_err = kernel.coefficients, kernel.errors  # (F_in, F_out, K, K, K) [s, b, t]
+    t, t_err = _kernel_coefficients(np.asarray(taps, dtype=np.float64), basis, cover.split)  # [s, b, t]
     fin, fout, k = t.shape[:3]
-    c, dc = split_coefficients(prev_taps, basis, kernel.split)  # (K', F_p, F_in)
+    c, dc = split_coefficients(prev_taps, basis, cover.split)  # (K', F_p, F_in)
     kp, fp = c.shape[0], c.shape[1]
     ku = k + kp - 1
     out = np.zeros((fp, fout, k, k, ku))
@@ -120,7 +130,7 @@ def product_kernel(kernel: SecondKernel, prev_taps, basis: Basis, cover: Cover, 
     err = err + 2.0 * (2 * k * kp * fin + 2) * UNIT * size
     sup = _beta_sup(out, err, cover)
     factor = float(np.sqrt(_weighted_sup(np.ones(k), cover) * _weighted_sup(np.ones(ku), cover))) * (1 + 8 * UNIT)
-    prod = SecondKernel(out, err, kernel.split, sup, cover.description, factor, None)
+    prod = SecondKernel(out, err, cover.split, sup, cover.description, factor, None)
     if optimise and sup > 0.0:
         prod = _rescaled(prod, cover, factor * sup)
     out.setflags(write=False)

@@ -183,8 +183,8 @@ def test_product_kernel_bounds_the_second_order_term_after_a_bank():
     lam, v = np.linalg.eigh(s)
     cover = eigen_cover(lam, eigenvalue_slack(lam))
     kern = second_kernel(taps, basis, cover)
-    plain = product_kernel(kern, prev, basis, cover)
-    scaled = product_kernel(kern, prev, basis, cover, optimise=True)
+    plain = product_kernel(taps, prev, basis, cover)
+    scaled = product_kernel(taps, prev, basis, cover, optimise=True)
     ts = np.linspace(-1.0, 1.0, k)
     vander = np.linalg.inv(np.vander(ts, k, increasing=True))
 
