@@ -37,7 +37,7 @@ from ._joint import (
     sparse_quadratics,
 )
 from ._kernel import eigenvalue_slack
-from ._second import SecondKernel, product_kernel, second_kernel, second_order, smallest_remainder
+from ._second import SecondKernel, SecondOrder, product_kernel, second_kernel, second_order, smallest_remainder
 from ._series import ABS_ALLOW, REL_ALLOW, with_allowance
 from ._signterm import SignTerm, previous_bank, sign_term
 
@@ -402,8 +402,9 @@ def clean_norm(n_prev: float, gain: float, cross: float | None, bias_norm: float
 class LayerChanges:
     """Per-layer bank changes at one eps, the gains over ``spec S_hat``, and
     the readout composite's change, gain and per-filter remainders (or None),
-    the bias banks' changes, and the readout composite's remainder for every
-    unit-norm input (the smallest of per filter, 9.7 and 9.8), or None."""
+    the bias banks' changes, the readout composite's remainder for every
+    unit-norm input (the smallest of per filter, 9.7 and 9.8), or None, and
+    its second-order remainder (9.8) at this eps, or None."""
 
     changes: tuple[BankChange, ...]
     gains_hat: tuple[float, ...]
@@ -413,11 +414,12 @@ class LayerChanges:
     bias_changes: tuple = ()
     readout_bias_change: float | None = None
     readout_bank_remainder: float | None = None
+    readout_second: SecondOrder | None = None
 
 
 def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pcover, wide, radius: float,
                       kernel: SecondKernel | None = None):
-    """``(BankChange, B_hat, per-filter bounds, remainder)`` of a bank built
+    """``(BankChange, B_hat, per-filter bounds, remainder, SecondOrder or None)`` of a bank built
     from the model's (the readout composite, a bias bank) at ``eps``, from
     its eps-free ``filters``, ``joint`` constants and, when known, its
     second-order ``kernel``; ``remainder`` is the smallest of the per-filter,
@@ -430,7 +432,7 @@ def _composite_change(taps, filters, joint, spec, eps: float, interval, lam, pco
     ch = bank_change(taps, spec.basis, eps, first_order=fb.first_order, remainder=fb.remainder,
                      joint=joint.constant, radius=radius, path_cover=pcover,
                      gains=(float(filters.bank_sup), g_hat), bank_remainder=rem, remainder_form=form)
-    return ch, g_hat, fb, rem
+    return ch, g_hat, fb, rem, so
 
 
 def gain_hat(taps, basis, wide, lam, pcover) -> float:
@@ -448,7 +450,7 @@ def _bias_change(bb: BiasBank | None, spec, eps: float, interval, lam, pcover, w
     for a :class:`BiasBank` at ``eps`` (docs/theory.md 9.3), or None."""
     if bb is None:
         return None
-    ch, _, _, rem = _composite_change(bb.taps, bb.filters, bb.joint, spec, eps, interval, lam, pcover, wide, radius,
+    ch, _, _, rem, _ = _composite_change(bb.taps, bb.filters, bb.joint, spec, eps, interval, lam, pcover, wide, radius,
                                       bb.second)
     out = bb.rows * ch.certified
     if bb.ones_first is not None:
@@ -472,17 +474,17 @@ def layer_changes(mc, cc: CompositionConstants, bounds, eps: float) -> LayerChan
                                    remainder=lb.remainder, joint=extra.joint.constant, radius=cc.radius,
                                    path_cover=pcover, gains=(lb.gain, b_hat), bank_remainder=rem,
                                    remainder_form=form))
-    rc, rg, rr, rbr = None, None, None, None
+    rc, rg, rr, rbr, rso = None, None, None, None, None
     if cc.readout is not None:
         ro = cc.readout
-        rc, rg, fb, rbr = _composite_change(ro.taps, ro.filters, ro.joint, spec, eps, (a, b), lam, pcover, wide,
+        rc, rg, fb, rbr, rso = _composite_change(ro.taps, ro.filters, ro.joint, spec, eps, (a, b), lam, pcover, wide,
                                             cc.radius, ro.second)
         rr = np.asarray(fb.remainder)
     biases = tuple(_bias_change(extra.bias_bank, spec, eps, (a, b), lam, pcover, wide, cc.radius)
                    for extra in cc.layers)
     rbias = None if cc.readout is None else _bias_change(cc.readout.bias_bank, spec, eps, (a, b), lam, pcover, wide,
                                                          cc.radius)
-    return LayerChanges(tuple(changes), tuple(gains_hat), rc, rg, rr, biases, rbias, rbr)
+    return LayerChanges(tuple(changes), tuple(gains_hat), rc, rg, rr, biases, rbias, rbr, rso)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -533,14 +535,18 @@ def _through(i, delta, rem, right, cc, norms, gains, ca, cb, bias_change=None, s
     return min(plain, nested)
 
 
-def product_remainder(kernel: SecondKernel, third, eps: float, gain_prev: float) -> float:
+def product_remainder(kernel: SecondKernel | None, second: SecondOrder | None, eps: float,
+                      gain_prev: float) -> float | None:
     """A bound on the remainder of ``(H - H_hat) H'`` per unit input (or, by
     transposition, of ``H' (H - H_hat)``): the second-order term through the
-    product ``kernel`` plus the bank's words with three or more factors
-    (``third``, a :class:`~stablefilt._filterbounds.BankRemainder`) times
-    ``gain_prev >= ||H'||`` (docs/theory.md 9.8, "Through the previous bank")."""
+    product ``kernel`` plus the bank's words with three or more factors (the
+    ``third`` part of its :class:`~stablefilt._second.SecondOrder` at
+    ``eps``) times ``gain_prev >= ||H'||`` (docs/theory.md 9.8, "Through the
+    previous bank"); None when either is unknown."""
+    if kernel is None or second is None:
+        return None
     quad = float(with_allowance(eps * eps * kernel.operator, 0.0))
-    val = float((quad + third.operator() * gain_prev) * (1 + REL_ALLOW))
+    val = float((quad + second.third.operator() * gain_prev) * (1 + REL_ALLOW))
     return val if np.isfinite(val) else np.inf  # never a NaN: callers keep the smaller of two bounds
 
 
@@ -562,18 +568,14 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
         rem = lb.bank_remainder()
         right = None if cc.layers[i].right is None else eps * cc.layers[i].right
         bias_ch = lc.bias_changes[i] if lc.bias_changes else None
-        rs = cc.layers[i].right_second
-        rem_right = None if (rs is None or lb.second is None) else product_remainder(rs, lb.second.third, eps,
-                                                                                   gains[i - 1])
+        rem_right = None if i == 0 else product_remainder(cc.layers[i].right_second, lb.second, eps, gains[i - 1])
         d = _through(i, ch.certified, rem, right, cc, norms, gains, ca, cb, bias_ch, cc.layers[i].sign, eps,
                      rem_right)
         deltas.append(d)
         rems.append(rem)
         if i < spec.depth - 1:
             a_before = a
-            ls = cc.layers[i + 1].left_second
-            rem_left = None if (ls is None or lb.second is None) else product_remainder(ls, lb.second.third, eps,
-                                                                                      gains[i + 1])
+            rem_left = product_remainder(cc.layers[i + 1].left_second, lb.second, eps, gains[i + 1])
             a = carried(a, d, norms[i], lc.gains_hat[i + 1], gains[i + 1], lc.changes[i + 1].certified,
                         cc.layers[i + 1].left, eps, rem, ch.certified, ca, cb, rem_left)
     e_last = deltas[-1] + a
@@ -583,19 +585,15 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
         alpha_l = cc.slope_low if spec.final_nonlinearity else 1.0
         right = None if cc.readout.right is None else eps * cc.readout.right
         rem_w = combine(lc.readout_remainder) if lc.readout_bank_remainder is None else lc.readout_bank_remainder
-        rs, rem_right = cc.readout.right_second, None
-        if rs is not None and spec.depth >= 2:
-            third = second_order(cc.readout.taps, spec.basis, (mc.interval.lower, mc.interval.upper), eps,
-                                 cc.readout.second).third
-            rem_right = product_remainder(rs, third, eps, gains[spec.depth - 2])
+        rem_right = None if spec.depth < 2 else product_remainder(cc.readout.right_second, lc.readout_second, eps,
+                                                                  gains[spec.depth - 2])
         dw = _through(spec.depth - 1, lc.readout_change.certified, rem_w, right, cc, norms,
                       gains, ca, cb, lc.readout_bias_change, cc.readout.sign, eps, rem_right)
         g = 0.0  # bound on ||G_hat e_{L-2}||, G = H_L W
         if spec.depth >= 2:
             k = spec.depth - 2
-            ls, gain_w = cc.readout.left_second, float(cc.readout.filters.bank_sup)
-            rem_left = None if (ls is None or bounds[k].second is None) else product_remainder(
-                ls, bounds[k].second.third, eps, gain_w)
+            gain_w = float(cc.readout.filters.bank_sup)
+            rem_left = product_remainder(cc.readout.left_second, bounds[k].second, eps, gain_w)
             g = carried(a_before, deltas[k], norms[k], lc.readout_gain_hat, gain_w,
                         lc.readout_change.certified, cc.readout.left, eps, rems[k], lc.changes[k].certified, ca, cb,
                         rem_left)
