@@ -385,15 +385,15 @@ class PathBound:
     cover: str
 
 
-def path_bound(taps, basis: Basis, eps: float, radius: float, cover: Cover, optimise: bool = False) -> PathBound:
+def path_bound(taps, basis: Basis, eps: float, radius: float, cover: Cover) -> PathBound:
     """The whole-path bound of a filter or bank for ``||E||_2 <= eps``,
     ``radius >= ||S||_2``, with ``cover`` covering a set holding the spectrum
     of every ``S + t (E S + S E)``, ``t in [0, 1]``."""
     taps = np.asarray(taps, dtype=np.float64)
     out = []
     for joint in (True, False):
-        g = np.asarray(schur_constant(taps, basis, cover, "gamma", joint, optimise=optimise))
-        d = np.asarray(schur_constant(taps, basis, cover, "divided", joint, optimise=optimise))
+        g = np.asarray(schur_constant(taps, basis, cover, "gamma", joint))
+        d = np.asarray(schur_constant(taps, basis, cover, "divided", joint))
         first = eps * g
         second = 2.0 * eps * eps * radius * d
         if not joint and taps.ndim == 3:

@@ -18,6 +18,7 @@ from typing import Callable
 
 import numpy as np
 
+from ._memo import InputMemo
 from ._model import ModelSpec
 from ._modelcert import eps_key
 
@@ -247,8 +248,6 @@ def run_predictions(run, rc, eps_list, *, radius_upper: float | None = None,
     input-specific bounds at ``eps_list``); with ``radius_upper``, the radii
     too, evaluating the input-specific bound without refinement (s.10.4)."""
     task = run.manifest.get("task", "classify")
-    from ._memo import InputMemo
-
     memo = InputMemo()  # one for both constants: the layers' outputs are shared
     plain = plain_bounds(run, rc, memo)
     bounds = {float(e): np.minimum(rc.signal_bounds[float(e)], plain(float(e))) for e in eps_list}
@@ -265,7 +264,6 @@ def plain_bounds(run, rc, memo=None) -> Callable[[float], np.ndarray]:
     bound but not always each signal's, so both are kept and the smaller
     used; each is sound. ``memo``: the :class:`~stablefilt._memo.InputMemo`
     of the test signals to use (a new one when None)."""
-    from ._memo import InputMemo
     from ._modelcert import certify_inputs, model_constants
 
     sp_ = rc.spectrum
@@ -296,8 +294,6 @@ def training_predictions(params, spec: ModelSpec, matrix, x, y, task: str, cert,
     bounds = {b.eps: np.full(len(x), b.certified) for b in cert.bounds}
     how = OPERATOR_BOUND
     if constants is not None:
-        from ._memo import InputMemo
-
         memo = InputMemo()  # the eps-free parts once for every size
         for e in eps:
             own = certify_inputs(params, spec, matrix, constants.interval, x, e, constants.eigenvalues, eigenvectors,
@@ -312,7 +308,6 @@ def signal_bounds_at(run, rc, plain=None, memo=None) -> Callable[[float], np.nda
     """``eps -> (signals,)``: the smaller of the run's input-specific test
     bounds with rebalanced factorisations (``rc.constants``, no per-signal
     refinement) and with plain ones (:func:`plain_bounds`); ``memo`` as there."""
-    from ._memo import InputMemo
     from ._runcert import input_bounds
 
     memo = InputMemo() if memo is None else memo  # one for both constants: the layers' outputs are shared
