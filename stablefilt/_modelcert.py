@@ -454,9 +454,7 @@ def certify_inputs(params, spec: ModelSpec, op_matrix, interval: SpectralInterva
 def _input_array(x, memo) -> np.ndarray:
     """``x`` in float64; with a ``memo``, the same array object on every
     call with the same ``x`` (what the memo's entries are checked against)."""
-    if memo is None:
-        return np.asarray(x, dtype=np.float64)
-    return memo.layer(-1, x, lambda _, v: np.asarray(v, dtype=np.float64))
+    return np.asarray(x, dtype=np.float64) if memo is None else memo.array(x)
 
 
 def _layer(p, spec: ModelSpec, matrix, i: int, z):

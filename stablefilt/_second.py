@@ -25,7 +25,7 @@ import numpy as np
 from ._exact import UNIT, second_transform
 from ._filterbounds import BankRemainder, bank_remainder, combine
 from ._filters import Basis, basis_values
-from ._joint import Cover, _sup_lambda_max
+from ._joint import Cover, _sup_lambda_max, split_coefficients
 from ._series import with_allowance
 
 
@@ -105,8 +105,6 @@ def product_kernel(taps, prev_taps, basis: Basis, cover: Cover, optimise: bool =
     split, so that ``||Q(H' x)||_F <= eps^2 operator ||x||_F`` with
     ``operator = sqrt(l r'') b''`` (docs/theory.md 9.8, "Through the previous
     bank"); ``optimise`` adds diagonal scalings, kept when smaller."""
-    from ._joint import split_coefficients
-
     t, t_err = _kernel_coefficients(np.asarray(taps, dtype=np.float64), basis, cover.split)  # [s, b, t]
     fin, fout, k = t.shape[:3]
     c, dc = split_coefficients(prev_taps, basis, cover.split)  # (K', F_p, F_in)
