@@ -213,7 +213,11 @@ def _scalings(t, cover: Cover) -> tuple[np.ndarray, np.ndarray]:
         b = b.reshape(len(pts), fout * k, fin * kt)
         if not np.all(np.isfinite(b)):
             return np.inf
-        mid = np.max(np.linalg.svd(b, compute_uv=False)[:, 0])
+        # The largest singular value from the smaller Gram matrix's largest
+        # eigenvalue: the same figure to rounding, at about half an SVD's cost
+        # (measured on the shapes of the demo banks).
+        gram = b @ b.transpose(0, 2, 1) if b.shape[1] <= b.shape[2] else b.transpose(0, 2, 1) @ b
+        mid = np.sqrt(max(float(np.max(np.linalg.eigvalsh(gram)[:, -1])), 0.0))
         val = 0.5 * np.log(left * right) + np.log(max(mid, 1e-300))
         return val if np.isfinite(val) else np.inf
 
