@@ -7,6 +7,7 @@ interval, and its per-eps bounds under a relative perturbation
 from __future__ import annotations
 
 import dataclasses
+import functools
 from math import comb
 from typing import NamedTuple
 
@@ -290,9 +291,15 @@ class BankRemainder:
     errors: np.ndarray
     powers: np.ndarray
 
+    @functools.cached_property
+    def _coefficient_norms(self) -> np.ndarray:
+        """``||g_j||_2 + ||err_j||_F`` per ``j``: eps-free, computed once per
+        record (the certificates of many signals and radii ask for it)."""
+        return np.array([np.linalg.norm(g, 2) + np.linalg.norm(e) for g, e in zip(self.coefficients, self.errors)])
+
     def operator(self) -> float:
         """``sum_j t_j (||g_j||_2 + ||err_j||_F)``: for every ``||X||_F <= 1``."""
-        norms = np.array([np.linalg.norm(g, 2) + np.linalg.norm(e) for g, e in zip(self.coefficients, self.errors)])
+        norms = self._coefficient_norms
         return float(with_allowance(float(np.dot(self.tails, norms)), float(np.dot(self.powers, norms))))
 
     def input_norms(self, x) -> np.ndarray:

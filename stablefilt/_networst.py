@@ -194,7 +194,12 @@ def _unit_sups(setup: _Setup, top: int, stacked) -> np.ndarray:
     for lo in range(0, stacked.shape[0], 64):
         t = stacked[lo:lo + 64]
         pc = np.einsum("uis,ia->uisa", t, phi, optimize=True).reshape(t.shape[0], setup.n, -1) @ c
-        ev = np.linalg.eigvalsh(np.einsum("uic,uid->ucd", pc, pc, optimize=True))
+        # ||pc||_* from the smaller Gram matrix: the same nonzero eigenvalues,
+        # and the allowance below (for the larger) covers either.
+        if pc.shape[1] < pc.shape[2]:
+            ev = np.linalg.eigvalsh(np.matmul(pc, np.swapaxes(pc, 1, 2)))
+        else:
+            ev = np.linalg.eigvalsh(np.einsum("uic,uid->ucd", pc, pc, optimize=True))
         top_ev = np.abs(ev).max(axis=1, keepdims=True)
         out[lo:lo + 64] = np.sum(np.sqrt(np.maximum(ev, 0.0)), axis=1) * (1 + 64 * c.shape[1] * UNIT) \
             + c.shape[1] * np.sqrt(64 * c.shape[1] * UNIT * top_ev[:, 0])
