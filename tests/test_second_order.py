@@ -28,7 +28,7 @@ from stablefilt._exact import second_transform
 from stablefilt._filters import basis_values, frequency_response
 from stablefilt._joint import eigen_cover
 from stablefilt._kernel import eigenvalue_slack
-from stablefilt._second import product_kernel, second_kernel, second_order
+from stablefilt._second import _largest_top, product_kernel, second_kernel, second_order
 
 
 def _setting(name, kind, bkind):
@@ -235,3 +235,23 @@ def test_left_kernel_bounds_a_bank_after_the_second_order_term():
     worst = max(vals)
     plain_outer = np.sqrt(k * (k + ka - 1)) * kern.sup
     assert kern.factor is not None and worst > plain_outer, (worst, plain_outer, kern.operator)
+
+
+def test_largest_top_equals_the_largest_eigenvalue_over_every_point():
+    """The scalings' objective skips points by their Frobenius norm (an upper
+    bound on lambda_max, handbook fact: Horn and Johnson, "Matrix Analysis",
+    5.6); the value must still be numpy's largest eigenvalue over every
+    point, including a point whose lambda_max is the largest while another
+    point's Frobenius norm is larger (rank one 10 against 6 I_4: norms 10 and 12)."""
+    rng = np.random.default_rng(3)
+    n = 4
+    u = rng.standard_normal(n)
+    tricky = np.stack([6.0 * np.eye(n), 10.0 * np.outer(u, u) / (u @ u), 0.5 * np.eye(n)])
+    cases = [tricky]
+    for _ in range(20):
+        a = rng.standard_normal((int(rng.integers(1, 9)), n, int(rng.integers(1, 7))))
+        a *= rng.uniform(0.1, 3.0, size=(a.shape[0], 1, 1))
+        cases.append(a @ a.transpose(0, 2, 1))
+    for g in cases:
+        assert _largest_top(g) == float(np.max(np.linalg.eigvalsh(g)[:, -1]))
+    assert _largest_top(tricky) == pytest.approx(10.0, rel=1e-12)
