@@ -31,7 +31,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from ._freeattack import block_ascent, free_starts
+from ._freeattack import POLISH_LIMIT, POLISH_STEPS, block_ascent, free_starts, polish
 from ._graph import ShiftOperator
 from ._lowrank import LowRankE, apply_e, finalise, orthonormalise, split_budget
 from ._model import ModelSpec, forward, forward_np
@@ -307,6 +307,29 @@ def _refine(params, spec, op, sop, best: AttackResult, eps, iters, progress=None
     return best
 
 
+def polish_steps(nodes: int, iters: int) -> int:
+    """Adam steps :func:`attack` adds to polish its winner on a graph of
+    ``nodes`` nodes with ``iters`` iterations per restart: twice ``iters``,
+    at most ``POLISH_STEPS``, none above ``POLISH_LIMIT`` nodes."""
+    return min(POLISH_STEPS, 2 * iters) if nodes <= POLISH_LIMIT else 0
+
+
+def _polished(params, spec, op, sop, best: AttackResult, eps, iters, progress=None) -> AttackResult:
+    """The winner moved on by Adam inside the ball (stablefilt._freeattack.polish,
+    the input too when it is free), on graphs of at most ``POLISH_LIMIT``
+    nodes; kept only if its float64 change is larger."""
+    steps = polish_steps(op.nodes, iters)
+    rho = float(np.linalg.norm(best.x))
+    if steps == 0 or rho == 0.0:
+        return best
+    e, xb = polish(params, spec, sop, best.e, best.x, eps, rho, steps, move_input=best.free_input,
+                   progress=progress)
+    val = measure(params, spec, op, e, xb)
+    if val > best.change:
+        return dataclasses.replace(best, change=val, e=e, x=xb, start=best.start + ", Adam-polished")
+    return best
+
+
 def _final_input(x, xc, free_input, rho):
     if free_input:
         x_np = np.asarray(xc, dtype=np.float64)
@@ -434,12 +457,15 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
         (any norm; rescaled to ``rho``), given to the restarts that have no
         input direction of their own after ``x`` itself, in turn.
       progress: called with a count of iterations done (``restarts *
-        iters`` per ascent, and ``iters`` more for the polish of a fixed
-        input's winner), or None.
+        iters`` per ascent, ``iters`` more for the polish of a fixed
+        input's winner, and ``polish_steps(N, iters)`` for the Adam polish
+        of the winner), or None.
 
     With a fixed input, the dense or diagonal winner is polished by at most
     ``iters`` perturbation moves of stablefilt._freeattack, kept only if
-    the change grows. With ``free_input`` the dense and diagonal searches are
+    the change grows. Every winner is then moved on by Adam inside the ball
+    (stablefilt._freeattack.polish, ``polish_steps(N, iters)`` steps, graphs
+    of at most ``POLISH_LIMIT`` nodes), kept only if the change grows. With ``free_input`` the dense and diagonal searches are
     the block ascent
     of stablefilt._freeattack (``iters`` evaluations per restart at most;
     ``projection`` does not apply); the low-rank one keeps its projected
@@ -470,6 +496,7 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
         best = _ascent(params, spec, op, sop, x, x0, y0, eps, dense, free_input, rho, starts, iters, projection,
                        progress)
         best = _refine(params, spec, op, sop, best, eps, iters, progress)
+    best = _polished(params, spec, op, sop, best, eps, iters, progress)
     if mode == "lowrank":
         low = _lowrank_ascent(params, spec, op, sop, x, x0, y0, eps, free_input, rho, best, rank, restarts, iters,
                               rng, progress)

@@ -17,7 +17,7 @@ import time
 
 import numpy as np
 
-from ._attack import DENSE_ATTACK_LIMIT, attack
+from ._attack import DENSE_ATTACK_LIMIT, attack, polish_steps
 from ._distance import sylvester_relative, sym_norm2
 from ._errors import StablefiltError
 from ._memo import InputMemo
@@ -165,7 +165,9 @@ def stress_run(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_
     eig = None if spectrum.eigenvectors is None else (spectrum.eigenvalues, spectrum.eigenvectors)
     f_restarts, f_iters = free_budget(_attack_mode(run, attack_kind), attack_iters)
     # Each fixed-input attack: its restarts, then the polish of its winner.
-    per_attack = attack_signals * (ATTACK_RESTARTS + 1) * attack_iters + f_restarts * f_iters
+    # The Adam polish of every winner adds polish_steps(N, iters) each.
+    per_attack = (attack_signals * ((ATTACK_RESTARTS + 1) * attack_iters + polish_steps(run.op.nodes, attack_iters))
+                  + f_restarts * f_iters + polish_steps(run.op.nodes, f_iters))
     total = len(eps_list) * (len(kinds) * samples + per_attack * bool(attack_signals))
     with bar(total, "stress", unit="step") as pb:
         return _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_iters,
