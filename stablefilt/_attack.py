@@ -435,7 +435,7 @@ def _lowrank_ascent(params, spec, op, sop, x, x0, y0, eps, free_input, rho, diag
 
 def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: str = "auto", free_input: bool = False,
            rho: float | None = None, restarts: int = 5, iters: int = 40, seed: int = 0, projection: str = "clip",
-           rank: int = LOWRANK_RANK, inputs=None, progress=None) -> AttackResult:
+           rank: int = LOWRANK_RANK, inputs=None, polish: bool = False, progress=None) -> AttackResult:
     """Strongest relative perturbation found for one input ``x`` (``(N, F)``).
 
     Args:
@@ -456,14 +456,15 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
       inputs: with ``free_input``, more starting signals ``(M, N, F)``
         (any norm; rescaled to ``rho``), given to the restarts that have no
         input direction of their own after ``x`` itself, in turn.
+      polish: move the winner on by Adam inside the ball (below).
       progress: called with a count of iterations done (``restarts *
         iters`` per ascent, ``iters`` more for the polish of a fixed
-        input's winner, and ``polish_steps(N, iters)`` for the Adam polish
-        of the winner), or None.
+        input's winner, and with ``polish`` ``polish_steps(N, iters)`` for
+        the Adam polish of the winner), or None.
 
     With a fixed input, the dense or diagonal winner is polished by at most
     ``iters`` perturbation moves of stablefilt._freeattack, kept only if
-    the change grows. Every winner is then moved on by Adam inside the ball
+    the change grows. With ``polish`` the winner is then moved on by Adam inside the ball
     (stablefilt._freeattack.polish, ``polish_steps(N, iters)`` steps, graphs
     of at most ``POLISH_LIMIT`` nodes), kept only if the change grows. With ``free_input`` the dense and diagonal searches are
     the block ascent
@@ -496,7 +497,8 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
         best = _ascent(params, spec, op, sop, x, x0, y0, eps, dense, free_input, rho, starts, iters, projection,
                        progress)
         best = _refine(params, spec, op, sop, best, eps, iters, progress)
-    best = _polished(params, spec, op, sop, best, eps, iters, progress)
+    if polish:
+        best = _polished(params, spec, op, sop, best, eps, iters, progress)
     if mode == "lowrank":
         low = _lowrank_ascent(params, spec, op, sop, x, x0, y0, eps, free_input, rho, best, rank, restarts, iters,
                               rng, progress)

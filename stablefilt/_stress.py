@@ -301,14 +301,14 @@ def _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_ite
                                    refine=len(order))
             for i, c_i in zip(order, c_att):
                 r = attack(run.params, run.spec, run.op, x[i], eps, mode=mode, iters=attack_iters, seed=seed,
-                           restarts=ATTACK_RESTARTS, progress=pb.update)
+                           restarts=ATTACK_RESTARTS, polish=True, progress=pb.update)
                 # The largest change / certificate, multiplied out: a certificate can be 0.
                 if best is None or r.change * best_c > best.change * float(c_i):
                     best, best_c = r, float(c_i)
             pool = np.argsort(-c_in)[:FREE_INPUTS]
             f_restarts, f_iters = free_budget(mode, attack_iters)
             free = attack(run.params, run.spec, run.op, x[pool[0]], eps, mode=mode, free_input=True, rho=rho,
-                          iters=f_iters, seed=seed, restarts=f_restarts, inputs=x[pool[1:]],
+                          iters=f_iters, seed=seed, restarts=f_restarts, inputs=x[pool[1:]], polish=True,
                           progress=pb.update).change
             linear = linear_free_attack(run, eps, rho, seed)
             free = free if linear is None else max(free, linear)
