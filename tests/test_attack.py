@@ -348,6 +348,16 @@ def _previous_free_search(params, spec, op, x, eps, rho, restarts, iters, seed):
     return atk._ascent(params, spec, op, sop, x, x0, y0, eps, True, True, rho, starts, iters, "clip")
 
 
+def _karate_relu_case():
+    """A 2-layer relu model on the karate club's normalised Laplacian
+    (networkx), one signal, ``rho = 1.5``, and the graph's dense matrix and
+    certified interval: the free-input attacks' common case."""
+    op = OPS["karate-normalized"]
+    spec, params = _model(op, "chebyshev", 2, 7)
+    x = _signals(op.nodes, 2, 1, 8)[0]
+    return op, spec, params, op.dense(), x, 1.5, sf.spectral_interval(op)
+
+
 def test_free_block_ascent_beats_previous_search_and_stays_certified():
     """On the same budget (restarts x iterations, one objective-and-gradient
     evaluation each), the block ascent's free-input change is at least the
@@ -357,12 +367,7 @@ def test_free_block_ascent_beats_previous_search_and_stays_certified():
     and ``||x||_F = rho``; and both stay below the operator-level
     certificate ``certify_model(...).certified`` for inputs of norm at most
     rho (a change above it is a bug: the certificate is an upper bound)."""
-    op = OPS["karate-normalized"]
-    spec, params = _model(op, "chebyshev", 2, 7)
-    s = op.dense()
-    x = _signals(op.nodes, 2, 1, 8)[0]
-    rho = 1.5
-    iv = sf.spectral_interval(op)
+    op, spec, params, s, x, rho, iv = _karate_relu_case()
     for eps in (1e-3, 1e-2):
         old = _previous_free_search(params, spec, op, x, eps, rho, 4, 15, 0)
         new = st.attack(params, spec, op, x, eps, mode="dense", free_input=True, rho=rho, restarts=4, iters=15,
@@ -413,12 +418,7 @@ def test_adam_polish_stays_in_the_ball_and_only_raises_the_change():
     reference's, it is never below the unpolished change, it is above it on
     at least one eps here (a polish that never moves would fail), and
     neither exceeds the operator-level certificate."""
-    op = OPS["karate-normalized"]
-    spec, params = _model(op, "chebyshev", 2, 7)
-    s = op.dense()
-    x = _signals(op.nodes, 2, 1, 8)[0]
-    rho = 1.5
-    iv = sf.spectral_interval(op)
+    op, spec, params, s, x, rho, iv = _karate_relu_case()
     gains = []
     for eps in (1e-3, 1e-2):
         new = st.attack(params, spec, op, x, eps, mode="dense", free_input=True, rho=rho, restarts=3, iters=20,
