@@ -31,7 +31,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from ._freeattack import POLISH_LIMIT, POLISH_STEPS, block_ascent, free_starts, polish
+from ._freeattack import POLISH_LIMIT, POLISH_STEPS, block_ascent, free_starts
+from ._freeattack import polish as adam_polish
 from ._graph import ShiftOperator
 from ._lowrank import LowRankE, apply_e, finalise, orthonormalise, split_budget
 from ._model import ModelSpec, forward, forward_np
@@ -322,8 +323,8 @@ def _polished(params, spec, op, sop, best: AttackResult, eps, iters, progress=No
     rho = float(np.linalg.norm(best.x))
     if steps == 0 or rho == 0.0:
         return best
-    e, xb = polish(params, spec, sop, best.e, best.x, eps, rho, steps, move_input=best.free_input,
-                   progress=progress)
+    e, xb = adam_polish(params, spec, sop, best.e, best.x, eps, rho, steps, move_input=best.free_input,
+                        progress=progress)
     val = measure(params, spec, op, e, xb)
     if val > best.change:
         return dataclasses.replace(best, change=val, e=e, x=xb, start=best.start + ", Adam-polished")
@@ -464,13 +465,14 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
 
     With a fixed input, the dense or diagonal winner is polished by at most
     ``iters`` perturbation moves of stablefilt._freeattack, kept only if
-    the change grows. With ``polish`` the winner is then moved on by Adam inside the ball
-    (stablefilt._freeattack.polish, ``polish_steps(N, iters)`` steps, graphs
-    of at most ``POLISH_LIMIT`` nodes), kept only if the change grows. With ``free_input`` the dense and diagonal searches are
-    the block ascent
-    of stablefilt._freeattack (``iters`` evaluations per restart at most;
-    ``projection`` does not apply); the low-rank one keeps its projected
-    gradient ascent, with the gradient in ``x`` of the whole change.
+    the change grows. With ``free_input`` the dense and diagonal searches
+    are the block ascent of stablefilt._freeattack (``iters`` evaluations
+    per restart at most; ``projection`` does not apply); the low-rank one
+    keeps its projected gradient ascent, with the gradient in ``x`` of the
+    whole change. With ``polish``, the dense or diagonal winner is then
+    moved on by Adam inside the ball (stablefilt._freeattack.polish,
+    ``polish_steps(N, iters)`` steps, graphs of at most ``POLISH_LIMIT``
+    nodes), kept only if the change grows.
     """
     if mode not in MODES:
         raise ValueError(f"unknown attack mode {mode!r}; expected one of {', '.join(MODES)}.")

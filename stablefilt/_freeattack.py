@@ -182,20 +182,21 @@ POLISH_LIMIT = 600
 POLISH_INSET = 0.98
 
 
-@functools.partial(jax.jit, static_argnames=("spec", "dense", "move_input"))
-def _polish_value_grad(params, sop: JaxShift, m, theta, z, eps, rho, spec: ModelSpec, dense: bool,
-                       move_input: bool):
+@functools.partial(jax.jit, static_argnames=("spec", "dense"))
+def _polish_value_grad(params, sop: JaxShift, m, theta, z, eps, rho, free, spec: ModelSpec, dense: bool):
     """Minus the squared change, and its gradient, at ``E = eps Q diag(sin
     theta) Q^T`` (``Q`` the orthogonal factor of ``m``; diagonal ``E = eps
-    sin(theta)`` when not ``dense``) and ``x = rho z / ||z||``: every point
-    of the parametrisation lies in the ball, so Adam needs no projection."""
+    sin(theta)`` when not ``dense``) and ``x = rho z / ||z||`` (``x = z``
+    when ``free`` is 0, a traced flag so that fixed and free inputs share one
+    compilation): every point of the parametrisation lies in the ball, so
+    Adam needs no projection."""
     def obj(m, theta, z):
         if dense:
             q, _ = jnp.linalg.qr(m)
             e = (q * (eps * jnp.sin(theta))) @ q.T
         else:
             e = eps * jnp.sin(theta)
-        x = rho * z / jnp.linalg.norm(z) if move_input else z
+        x = free * (rho * z / jnp.linalg.norm(z)) + (1 - free) * z
 
         def mv(v):
             return relative_product(functools.partial(shift_product, sop), e, v)
@@ -238,8 +239,8 @@ def polish(params, spec: ModelSpec, sop: JaxShift, e, x, eps: float, rho: float,
     state = opt.init(params_j)
     best_val, best = np.inf, params_j
     for used in range(1, steps + 1):
-        val, grads = _polish_value_grad(params, sop, *params_j, jnp.float32(eps), jnp.float32(rho), spec, dense,
-                                        move_input)
+        val, grads = _polish_value_grad(params, sop, *params_j, jnp.float32(eps), jnp.float32(rho),
+                                        jnp.float32(move_input), spec, dense)
         if progress is not None:
             progress(1)
         val = float(val)
