@@ -60,15 +60,18 @@ STEPS = (1.0, 0.5, 0.25)
 def free_value_grad(params, sop: JaxShift, e, x, spec: ModelSpec):
     """``||Phi(S + E S + S E) x - Phi(S) x||_F^2`` and its gradient in
     ``(E, x)``; ``E`` dense ``(N, N)`` or diagonal ``(N,)``, ``x`` ``(N, F)``."""
-    def obj(e, x):
-        def mv(v):
-            return relative_product(functools.partial(shift_product, sop), e, v)
+    return jax.value_and_grad(lambda e, x: _squared_change(params, sop, e, x, spec), argnums=(0, 1))(e, x)
 
-        y = forward(params, mv, x[None], spec)
-        y0 = forward(params, sop, x[None], spec)
-        return jnp.sum((y - y0) ** 2)
 
-    return jax.value_and_grad(obj, argnums=(0, 1))(e, x)
+def _squared_change(params, sop: JaxShift, e, x, spec: ModelSpec):
+    """``||Phi(S + E S + S E) x - Phi(S) x||_F^2`` (JAX, traceable), ``E``
+    dense or its diagonal, ``x`` ``(N, F)``."""
+    def mv(v):
+        return relative_product(functools.partial(shift_product, sop), e, v)
+
+    y = forward(params, mv, x[None], spec)
+    y0 = forward(params, sop, x[None], spec)
+    return jnp.sum((y - y0) ** 2)
 
 
 def extreme_point(g, eps: float) -> np.ndarray:
@@ -197,13 +200,7 @@ def _polish_value_grad(params, sop: JaxShift, m, theta, z, eps, rho, free, spec:
         else:
             e = eps * jnp.sin(theta)
         x = free * (rho * z / jnp.linalg.norm(z)) + (1 - free) * z
-
-        def mv(v):
-            return relative_product(functools.partial(shift_product, sop), e, v)
-
-        y = forward(params, mv, x[None], spec)
-        y0 = forward(params, sop, x[None], spec)
-        return -jnp.sum((y - y0) ** 2)
+        return -_squared_change(params, sop, e, x, spec)
 
     return jax.value_and_grad(obj, argnums=(0, 1, 2))(m, theta, z)
 
