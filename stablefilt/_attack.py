@@ -31,6 +31,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from ._adamattack import random_starts
+from ._adamattack import search as adam_search
 from ._freeattack import POLISH_LIMIT, POLISH_STEPS, block_ascent, free_starts
 from ._freeattack import polish as adam_polish
 from ._graph import ShiftOperator
@@ -211,6 +213,9 @@ CLIP_EVERY = 2
 #: Modes of :func:`attack` (``auto``: dense up to ``DENSE_ATTACK_LIMIT``
 #: nodes, low-rank beyond).
 MODES = ("auto", "dense", "diagonal", "lowrank")
+#: Searches of the free-input attack: block ascent, or the multi-start Adam
+#: search over the smoothed model (stablefilt._adamattack).
+SEARCHES = ("ascent", "adam")
 
 #: Rank of the low-rank part of a ``lowrank`` attack.
 LOWRANK_RANK = 8
@@ -331,6 +336,40 @@ def _polished(params, spec, op, sop, best: AttackResult, eps, iters, progress=No
     return best
 
 
+#: The Adam search's first stage: block ascent from the structured starts
+#: (scaling both ways, two eigenvector pairs, the first bank's own search; at
+#: most ``SHAPED_STARTS``), each at most ``min(iters, SHAPED_ITERS)``
+#: evaluations. On small untrained relu models (the karate club, 3 layers of
+#: 6 features) these starts found up to 1.5 times what the Adam search from
+#: random points did; on the trained demo runs the Adam search found more.
+SHAPED_STARTS = 5
+SHAPED_ITERS = 150
+
+
+def adam_evaluations(restarts: int, iters: int) -> int:
+    """Progress count of :func:`attack` with ``search="adam"``."""
+    return SHAPED_STARTS * min(iters, SHAPED_ITERS) + restarts * iters
+
+
+def _adam_free(params, spec, op, x, inputs, eps, dense, rho, restarts, iters, rng, progress=None) -> AttackResult:
+    """The free-input attack with ``search="adam"``: block ascent from the
+    structured starts, then the Adam search of stablefilt._adamattack from
+    its winner and ``restarts - 1`` random points inside the ball; the larger
+    float64 change of the two."""
+    pool = [np.asarray(z, dtype=np.float64) for z in (x, *(() if inputs is None else inputs))]
+    shaped = [st for st in _starts(op, params, spec, eps, dense, 0, rng) if st[0] != "random"][:SHAPED_STARTS]
+    first_iters = min(iters, SHAPED_ITERS)
+    first = _free_search(params, spec, op, jax_operator(op), eps, dense, rho, shaped, pool, first_iters, progress)
+    if progress is not None and len(shaped) < SHAPED_STARTS:
+        progress((SHAPED_STARTS - len(shaped)) * first_iters)  # the count promised to the caller's bar
+    initial = [(first.e, first.x)] + random_starts(restarts - 1, op.nodes, spec.features[0], eps, dense, pool, rng)
+    e, xb = adam_search(params, spec, op.dense(), eps, rho, initial, steps=iters, dense=dense, progress=progress)
+    val = measure(params, spec, op, e, xb)
+    if val > first.change:
+        return AttackResult(val, e, xb, "dense" if dense else "diagonal", True, "smoothed Adam", ())
+    return first
+
+
 def _final_input(x, xc, free_input, rho):
     if free_input:
         x_np = np.asarray(xc, dtype=np.float64)
@@ -436,7 +475,8 @@ def _lowrank_ascent(params, spec, op, sop, x, x0, y0, eps, free_input, rho, diag
 
 def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: str = "auto", free_input: bool = False,
            rho: float | None = None, restarts: int = 5, iters: int = 40, seed: int = 0, projection: str = "clip",
-           rank: int = LOWRANK_RANK, inputs=None, polish: bool = False, progress=None) -> AttackResult:
+           rank: int = LOWRANK_RANK, inputs=None, polish: bool = False, search: str = "ascent",
+           progress=None) -> AttackResult:
     """Strongest relative perturbation found for one input ``x`` (``(N, F)``).
 
     Args:
@@ -458,6 +498,14 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
         (any norm; rescaled to ``rho``), given to the restarts that have no
         input direction of their own after ``x`` itself, in turn.
       polish: move the winner on by Adam inside the ball (below).
+      search: ``ascent``, or ``adam`` for the free-input search of
+        stablefilt._adamattack in place of the block ascent (dense or
+        diagonal ``E``, graphs of at most ``POLISH_LIMIT`` nodes):
+        block ascent from the structured starts (``SHAPED_STARTS``), then
+        ``iters`` Adam steps from its winner and ``restarts - 1`` random
+        points inside the ball, run together, over the model with its relus
+        smoothed and annealed back (progress count
+        :func:`adam_evaluations`); no polish follows.
       progress: called with a count of iterations done (``restarts *
         iters`` per ascent, ``iters`` more for the polish of a fixed
         input's winner, and with ``polish`` ``polish_steps(N, iters)`` for
@@ -478,11 +526,19 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
         raise ValueError(f"unknown attack mode {mode!r}; expected one of {', '.join(MODES)}.")
     if projection not in PROJECTIONS:
         raise ValueError(f"unknown projection {projection!r}; expected one of {', '.join(PROJECTIONS)}.")
+    if search not in SEARCHES:
+        raise ValueError(f"unknown search {search!r}; expected one of {', '.join(SEARCHES)}.")
     n = op.nodes
     if mode == "auto":
         mode = "dense" if n <= DENSE_ATTACK_LIMIT else "lowrank"
     dense = mode == "dense"
     rng = np.random.default_rng(seed)
+    if search == "adam":
+        if not free_input or mode == "lowrank" or n > POLISH_LIMIT:
+            raise ValueError(f"the Adam search needs a free input, a dense or diagonal E and at most {POLISH_LIMIT} "
+                             f"nodes; got free_input={free_input}, mode {mode!r}, {n} nodes.")
+        rho = float(rho if rho is not None else np.linalg.norm(x))
+        return _adam_free(params, spec, op, x, inputs, eps, dense, rho, restarts, iters, rng, progress)
     sop = jax_operator(op)
     x0 = jnp.asarray(x, jnp.float32)
     if free_input:

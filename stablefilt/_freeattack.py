@@ -185,6 +185,16 @@ POLISH_LIMIT = 600
 POLISH_INSET = 0.98
 
 
+def in_ball(m, theta, eps, dense: bool, xp=jnp):
+    """The point ``E = eps Q diag(sin theta) Q^T`` of the ball (``Q`` the
+    orthogonal factor of ``m``), or the diagonal ``eps sin(theta)`` when not
+    ``dense``: ``||E||_2 <= eps`` for every ``(m, theta)`` (up to rounding)."""
+    if not dense:
+        return eps * xp.sin(theta)
+    q, _ = xp.linalg.qr(m)
+    return (q * (eps * xp.sin(theta))) @ q.T
+
+
 @functools.partial(jax.jit, static_argnames=("spec", "dense"))
 def _polish_value_grad(params, sop: JaxShift, m, theta, z, eps, rho, free, spec: ModelSpec, dense: bool):
     """Minus the squared change, and its gradient, at ``E = eps Q diag(sin
@@ -194,11 +204,7 @@ def _polish_value_grad(params, sop: JaxShift, m, theta, z, eps, rho, free, spec:
     compilation): every point of the parametrisation lies in the ball, so
     Adam needs no projection."""
     def obj(m, theta, z):
-        if dense:
-            q, _ = jnp.linalg.qr(m)
-            e = (q * (eps * jnp.sin(theta))) @ q.T
-        else:
-            e = eps * jnp.sin(theta)
+        e = in_ball(m, theta, eps, dense)
         x = free * (rho * z / jnp.linalg.norm(z)) + (1 - free) * z
         return -_squared_change(params, sop, e, x, spec)
 
@@ -252,10 +258,7 @@ def polish(params, spec: ModelSpec, sop: JaxShift, e, x, eps: float, rho: float,
         updates, state = opt.update(grads, state, params_j)
         params_j = optax.apply_updates(params_j, updates)
     m, theta, z = (np.asarray(a, dtype=np.float64) for a in best)
-    if dense:
-        q, _ = np.linalg.qr(m)
-        e_out = project_ball((q * (eps * np.sin(theta))) @ q.T, eps)
-    else:
-        e_out = np.clip(eps * np.sin(theta), -eps, eps)
+    e_out = in_ball(m, theta, eps, dense, xp=np)
+    e_out = project_ball(e_out, eps) if dense else np.clip(e_out, -eps, eps)
     z = z if move_input else x
     return e_out, z * (rho / np.linalg.norm(z))

@@ -129,7 +129,7 @@ def init_params(spec: ModelSpec, seed: int | jax.Array) -> dict:
     return params
 
 
-def forward(params: dict, op, x, spec: ModelSpec, xp=jnp):
+def forward(params: dict, op, x, spec: ModelSpec, xp=jnp, activation=None):
     """Model output: ``(B, N, C)`` for node readouts, ``(B, C)`` for pooled
     and flat readouts, ``(B, N, F_L)`` without a readout, for ``x`` of shape
     ``(B, N, F_0)``.
@@ -139,7 +139,9 @@ def forward(params: dict, op, x, spec: ModelSpec, xp=jnp):
     operator, say). ``xp=jnp`` is the float32 training path; ``xp=np`` runs
     the same model in float64 numpy (the certification path; tests check the
     two agree). The batch is folded into the feature axis of the sparse
-    products (vmap would fall back to a slow kernel)."""
+    products (vmap would fall back to a slow kernel). ``activation``: a
+    function used in place of the spec's nonlinearity (a smoothed relu, say),
+    or None."""
     if xp is np:
         params = jax.tree_util.tree_map(lambda a: np.asarray(a, dtype=np.float64), params)
         x = np.asarray(x, dtype=np.float64)
@@ -156,7 +158,7 @@ def forward(params: dict, op, x, spec: ModelSpec, xp=jnp):
         if "bias" in layer:
             z = z + layer["bias"]
         if i < last or spec.final_nonlinearity:
-            z = spec.activation(z, xp)
+            z = spec.activation(z, xp) if activation is None else activation(z)
     return apply_readout(params, xp.swapaxes(z, 0, 1), spec, xp)
 
 
