@@ -84,10 +84,11 @@ def _stages(run, eps: float):
                                                            iters=30, seed=0, restarts=ATTACK_RESTARTS)
                                             for i in order])
     pool = np.argsort(-c_in)[:FREE_INPUTS]
-    restarts, iters = free_budget(mode, 30)
+    restarts, iters, search = free_budget(mode, 30, run.op.nodes)
     free = clock("free attack", lambda: _attack.attack(run.params, run.spec, run.op, x[pool[0]], eps, mode=mode,
                                                        free_input=True, rho=rho, iters=iters, seed=0,
-                                                       restarts=restarts, inputs=x[pool[1:]]))
+                                                       restarts=restarts, inputs=x[pool[1:]], polish=True,
+                                                       search=search))
     linear = clock("linear free", lambda: linear_free_attack(run, eps, rho, 0))
     out["certified"] = bound.certified
     out["fixed"] = max(r.change for r in fixed)

@@ -17,7 +17,7 @@ import time
 
 import numpy as np
 
-from ._attack import DENSE_ATTACK_LIMIT, attack, polish_steps
+from ._attack import DENSE_ATTACK_LIMIT, POLISH_LIMIT, adam_evaluations, attack, polish_steps
 from ._distance import sylvester_relative, sym_norm2
 from ._errors import StablefiltError
 from ._memo import InputMemo
@@ -43,6 +43,17 @@ ATTACK_RESTARTS = 5
 FREE_RESTARTS = 24
 FREE_ITERS = 150
 FREE_INPUTS = 4
+
+#: The free-input attack on graphs of at most ``POLISH_LIMIT`` nodes with
+#: dense or diagonal ``E``: the multi-start Adam search over the smoothed
+#: model (stablefilt._adamattack), starts and steps. Measured on the 40-epoch
+#: demo runs (docs/theory.md 9; float64 re-measured changes at eps 1e-3 and
+#: 1e-2): 3 layers, block ascent with its polish 2.785 and 29.17, Adam 8 x 400
+#: 3.060 and 31.33, 16 x 400 3.139 and 31.37 (17 and 13 s), 16 x 600 3.191
+#: and 31.70, 32 x 600 3.187 and 31.94 (46 and 50 s); 2 layers 1.3355 and
+#: 13.314 against 8 x 400's 1.3377 and 13.335.
+FREE_STARTS = 16
+FREE_STEPS = 300
 
 
 def inapplicable(run: Run, kind: str, have_vectors: bool) -> str | None:
@@ -163,11 +174,14 @@ def stress_run(run: Run, eps_list, *, kinds=KINDS[:4], samples: int = 5, attack_
     skip = dict(skipped_kinds(run, kinds, spectrum.eigenvectors is not None))
     kinds = [k for k in kinds if k not in skip]
     eig = None if spectrum.eigenvectors is None else (spectrum.eigenvalues, spectrum.eigenvectors)
-    f_restarts, f_iters = free_budget(_attack_mode(run, attack_kind), attack_iters)
+    f_restarts, f_iters, f_search = free_budget(_attack_mode(run, attack_kind), attack_iters, run.op.nodes)
     # Each fixed-input attack: its restarts, then the polish of its winner.
-    # The Adam polish of every winner adds polish_steps(N, iters) each.
+    # The Adam polish of every winner adds polish_steps(N, iters) each; the
+    # Adam search has none.
+    f_count = (f_restarts * f_iters + polish_steps(run.op.nodes, f_iters) if f_search == "ascent"
+               else adam_evaluations(f_restarts, f_iters))
     per_attack = (attack_signals * ((ATTACK_RESTARTS + 1) * attack_iters + polish_steps(run.op.nodes, attack_iters))
-                  + f_restarts * f_iters + polish_steps(run.op.nodes, f_iters))
+                  + f_count)
     total = len(eps_list) * (len(kinds) * samples + per_attack * bool(attack_signals))
     with bar(total, "stress", unit="step") as pb:
         return _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_iters,
@@ -180,15 +194,18 @@ def _attack_mode(run: Run, attack_kind: str) -> str:
     return "dense" if run.op.nodes <= DENSE_ATTACK_LIMIT else "lowrank"
 
 
-def free_budget(mode: str, attack_iters: int) -> tuple[int, int]:
-    """``(restarts, iterations per restart)`` of the free-input attack: the
-    block ascent's ``FREE_RESTARTS``, ``FREE_ITERS`` for dense and diagonal
-    ``E``; the fixed-input attacks' budget in low-rank mode (graphs beyond the
-    dense limit, where each iteration is costlier and the diagonal and
-    low-rank searches both run)."""
+def free_budget(mode: str, attack_iters: int, nodes: int) -> tuple[int, int, str]:
+    """``(restarts, iterations per restart, search)`` of the free-input
+    attack: the Adam search's ``FREE_STARTS``, ``FREE_STEPS`` for dense and
+    diagonal ``E`` on graphs of at most ``POLISH_LIMIT`` nodes; else the block
+    ascent's ``FREE_RESTARTS``, ``FREE_ITERS``; the fixed-input attacks'
+    budget in low-rank mode (graphs beyond the dense limit, where each
+    iteration is costlier and the diagonal and low-rank searches both run)."""
     if mode == "lowrank":
-        return ATTACK_RESTARTS, attack_iters
-    return FREE_RESTARTS, FREE_ITERS
+        return ATTACK_RESTARTS, attack_iters, "ascent"
+    if nodes <= POLISH_LIMIT:
+        return FREE_STARTS, FREE_STEPS, "adam"
+    return FREE_RESTARTS, FREE_ITERS, "ascent"
 
 
 #: Largest graph for the direct operator search of a linear model's free-input attack.
@@ -306,10 +323,10 @@ def _stress_rows(run, eps_list, kinds, samples, attack_signals, seed, attack_ite
                 if best is None or r.change * best_c > best.change * float(c_i):
                     best, best_c = r, float(c_i)
             pool = np.argsort(-c_in)[:FREE_INPUTS]
-            f_restarts, f_iters = free_budget(mode, attack_iters)
+            f_restarts, f_iters, f_search = free_budget(mode, attack_iters, run.op.nodes)
             free = attack(run.params, run.spec, run.op, x[pool[0]], eps, mode=mode, free_input=True, rho=rho,
                           iters=f_iters, seed=seed, restarts=f_restarts, inputs=x[pool[1:]], polish=True,
-                          progress=pb.update).change
+                          search=f_search, progress=pb.update).change
             linear = linear_free_attack(run, eps, rho, seed)
             free = free if linear is None else max(free, linear)
             t_att = time.perf_counter() - t_att
