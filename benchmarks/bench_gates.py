@@ -7,8 +7,9 @@ For each eps, on a run directory:
 - ``certified``: the operator-level certificate for every input with
   ``||x||_F <= rho`` (``stablefilt certify``'s, rebalanced constants);
 - ``attack``: the strongest change found on the model itself, the
-  free-input attack of ``stablefilt stress --attack`` (dense ``E``), a
-  lower bound on the true worst case;
+  free-input attack of ``stablefilt stress --attack`` (dense ``E``; the
+  Adam search over the relu-smoothed model), a lower bound on the true
+  worst case;
 - ``gated``: the strongest change found on the *gated relaxation*: every
   nonlinearity replaced by a gate ``D`` in ``[0, 1]`` per node and feature,
   chosen freely (the same gate on the clean and the perturbed path, so no
@@ -116,7 +117,7 @@ def main(argv=None) -> int:
     from stablefilt._modelcert import model_bounds
     from stablefilt._runcert import run_constants, run_spectrum
     from stablefilt._runs import open_run
-    from stablefilt._stress import FREE_INPUTS, FREE_ITERS, FREE_RESTARTS
+    from stablefilt._stress import FREE_INPUTS, free_budget
 
     run = open_run(args.run)
     spec = run.spec
@@ -133,8 +134,9 @@ def main(argv=None) -> int:
     for eps in eps_list:
         cert = model_bounds(mc, eps, rho=sp.rho).certified
         t = time.perf_counter()
+        restarts, iters, search = free_budget("dense", 30, run.op.nodes)
         found = attack(run.params, spec, run.op, x[pool[0]], eps, mode="dense", free_input=True, rho=sp.rho,
-                       iters=FREE_ITERS, restarts=FREE_RESTARTS, inputs=x[pool[1:]]).change
+                       iters=iters, restarts=restarts, inputs=x[pool[1:]], polish=True, search=search).change
         t_att = time.perf_counter() - t
         t = time.perf_counter()
         gated = gated_search(run, eps, sp.rho, args.starts, args.moves)

@@ -37,6 +37,7 @@ from ._joint import (
     sparse_quadratics,
 )
 from ._kernel import eigenvalue_slack
+from ._relunorm import relu_norm
 from ._second import SecondKernel, SecondOrder, product_kernel, second_kernel, second_order, smallest_remainder
 from ._series import ABS_ALLOW, REL_ALLOW, with_allowance
 from ._signterm import SignTerm, previous_bank, sign_term
@@ -251,6 +252,10 @@ class CompositionConstants:
       deployed: the deployed graph's interval when it keeps its kind, or None.
       radius, slack: ``R >= ||S||`` and the eigenvalues' float64 error.
       balanced: whether factorisations were rebalanced.
+      relu_norms: per layer, its output norm through the relu
+        (:class:`~stablefilt._relunorm.ReluNorm`, docs/theory.md 9.10), or
+        None (another nonlinearity, no relu after the layer, no matrix or
+        eigenvalues, or above its size limit); empty when none is known.
     """
 
     layers: tuple[LayerExtra, ...]
@@ -261,6 +266,7 @@ class CompositionConstants:
     radius: float
     slack: float
     balanced: bool
+    relu_norms: tuple = ()
 
 
 def bias_cross(taps, basis, matrix, bias) -> float:
@@ -333,8 +339,14 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
             ls = left_kernel(layers[-2]["taps"], comp, spec.basis, kcover)
         readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw, sg, rs, ls)
     alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
+    # 9.10: ||x_l|| through the relu, for every layer whose output passes one.
+    relus = ()
+    if spec.nonlinearity == "relu" and matrix is not None and lam is not None:
+        relus = tuple(relu_norm(layer["taps"], layer.get("bias"), spec.basis, matrix)
+                      if (i < len(layers) - 1 or spec.final_nonlinearity) else None
+                      for i, layer in enumerate(layers))
     return CompositionConstants(tuple(extras), readout, wn, alpha, None if deployed is None else tuple(deployed),
-                                float(radius), float(slack), bool(rebalance))
+                                float(radius), float(slack), bool(rebalance), relus)
 
 
 def left_kernel(prev_taps, taps, basis, cover) -> SecondKernel:
@@ -559,7 +571,9 @@ def composed_bound(mc, cc: CompositionConstants, bounds, eps: float, rho: float,
     gains = [lb.gain for lb in bounds]
     norms, norms_hat = [float(rho)], [float(rho)]
     for lb, extra, g_hat in zip(bounds, cc.layers, lc.gains_hat):
-        norms.append(clean_norm(norms[-1], lb.gain, extra.cross, extra.bias_norm))
+        relu = cc.relu_norms[len(norms) - 1] if cc.relu_norms else None
+        n_next = clean_norm(norms[-1], lb.gain, extra.cross, extra.bias_norm)
+        norms.append(n_next if relu is None else min(n_next, relu.bound(norms[-1])))  # through the relu (9.10)
         norms_hat.append(g_hat * norms_hat[-1] + extra.bias_norm)
     ca, cb = 0.5 * (1 + cc.slope_low), 0.5 * (1 - cc.slope_low)
     deltas, rems = [], []
