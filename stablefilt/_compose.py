@@ -339,12 +339,12 @@ def composition_constants(params, spec, interval, nodes: int, filters, eigenvalu
             ls = left_kernel(layers[-2]["taps"], comp, spec.basis, kcover)
         readout = ReadoutExtra(comp, cw, jw, rw, rb, lw, sw, sg, rs, ls)
     alpha = SLOPE_LOW.get(spec.nonlinearity, 0.0)
-    # 9.10: ||x_l|| through the relu, for every layer whose output passes one.
+    # 9.10: ||x_l|| through the relu, for every layer but the last (whose
+    # output norm enters the trivial bound only).
     relus = ()
     if spec.nonlinearity == "relu" and matrix is not None and lam is not None:
-        relus = tuple(relu_norm(layer["taps"], layer.get("bias"), spec.basis, matrix)
-                      if (i < len(layers) - 1 or spec.final_nonlinearity) else None
-                      for i, layer in enumerate(layers))
+        relus = tuple(relu_norm(layer["taps"], layer.get("bias"), spec.basis, matrix) if i < len(layers) - 1
+                      else None for i, layer in enumerate(layers))
     return CompositionConstants(tuple(extras), readout, wn, alpha, None if deployed is None else tuple(deployed),
                                 float(radius), float(slack), bool(rebalance), relus)
 

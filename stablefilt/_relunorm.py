@@ -40,13 +40,15 @@ class ReluNorm:
     """Collatz-Wielandt ratios for :func:`relu_norm`'s bound.
 
     Attributes:
-      a: ``(Y, U)``, ``(A' y)_i / y_i`` per tried ``y``, with ``A' >= A``
-        covering the round-off of ``A`` (``U = N F_1``).
-      q: ``(Y, U)``, ``(u^T y) u_i / y_i``.
+      points: per tried ``y``, an ``(m, 2)`` array of the pairs
+        ``(a_i, q_i)``, ``a_i = (A' y)_i / y_i`` (``A' >= A`` covering the
+        round-off of ``A``) and ``q_i = (u^T y) u_i / y_i``, keeping only the
+        pairs on the upper-right part of their convex hull (the others never
+        attain the maximum over ``i`` of a combination with non-negative
+        weights; :func:`maximal_pairs`).
     """
 
-    a: np.ndarray
-    q: np.ndarray
+    points: tuple
 
     def bound(self, rho: float) -> float:
         """``sup ||relu(H x + c)||`` over ``||x||_F <= rho``, bounded above
@@ -54,12 +56,42 @@ class ReluNorm:
         r2 = float(rho) ** 2
         t = T_GRID[:, None]
         best = np.inf
-        for a, q in zip(self.a, self.q):
+        for pts in self.points:
+            a, q = pts[:, 0], pts[:, 1]
             vals = np.max((1 + t) * r2 * a[None, :] + (1 + 1 / t) * q[None, :], axis=1)
             best = min(best, float(np.min(vals)))
             if not np.any(q):  # no positive bias: t -> 0 is the limit
                 best = min(best, r2 * float(np.max(a)))
         return float(np.sqrt(max(best, 0.0)) * (1 + REL_ALLOW))
+
+
+def maximal_pairs(a: np.ndarray, q: np.ndarray) -> np.ndarray:
+    """The pairs ``(a_i, q_i)`` on the upper-right part of their convex hull,
+    as an ``(m, 2)`` array: for weights ``w_a, w_q >= 0``,
+    ``max_i w_a a_i + w_q q_i`` is attained among them (a linear function's
+    maximum over a finite set is attained at a vertex of its hull, and with
+    non-negative weights at one no other point exceeds in both coordinates).
+    First the pairs no other exceeds in both, then Andrew's monotone chain
+    (a handbook algorithm) over them; the cross products' rounding can drop
+    a point above a chord by a relative ``1e-16``, which the bound's ``1e-9``
+    allowance covers."""
+    order = np.lexsort((-q, -a))  # a descending, then q descending
+    keep, top = [], -np.inf
+    for i in order:
+        if q[i] > top:
+            keep.append(i)
+            top = q[i]
+    pts = np.stack([a[keep], q[keep]], axis=1)[::-1]  # a ascending, q descending
+    hull: list = []
+    for p in pts:
+        while len(hull) >= 2:
+            o, m = hull[-2], hull[-1]
+            if (m[0] - o[0]) * (p[1] - o[1]) - (m[1] - o[1]) * (p[0] - o[0]) >= 0:
+                hull.pop()  # m lies on or below the chord from o to p
+            else:
+                break
+        hull.append(p)
+    return np.asarray(hull)
 
 
 def bank_matrix(taps, basis, matrix) -> np.ndarray:
@@ -76,18 +108,20 @@ def bank_matrix(taps, basis, matrix) -> np.ndarray:
     return np.ascontiguousarray(np.transpose(out, (0, 2, 1)).reshape(n * f_out, n * f_in))
 
 
-def _perron(mat: np.ndarray) -> np.ndarray:
-    """A positive approximation of the Perron vector of a symmetric
-    non-negative matrix (Lanczos, floored)."""
-    from scipy.sparse.linalg import eigsh
+def _perron(amat: np.ndarray, u: np.ndarray, weight: float) -> np.ndarray:
+    """A positive approximation of the Perron vector of the symmetric
+    non-negative matrix ``A + weight u u^T`` (Lanczos on its product, floored)."""
+    from scipy.sparse.linalg import LinearOperator, eigsh
 
+    n = amat.shape[0]
+    op = LinearOperator((n, n), matvec=lambda v: amat @ v + weight * u * (u @ v), dtype=np.float64)
     try:
-        _, v = eigsh(mat, k=1, which="LA", tol=1e-4, maxiter=20 * mat.shape[0])
+        _, v = eigsh(op, k=1, which="LA", tol=1e-4, maxiter=20 * n, v0=np.ones(n))  # a fixed start: same figures every run
         y = np.abs(v[:, 0])
     except Exception:  # no convergence: the all-ones vector is a valid (looser) choice
-        y = np.ones(mat.shape[0])
+        y = np.ones(n)
     if not np.all(np.isfinite(y)) or np.max(y) <= 0:
-        y = np.ones(mat.shape[0])
+        y = np.ones(n)
     return np.maximum(y, FLOOR * np.max(y))
 
 
@@ -111,11 +145,9 @@ def relu_norm(taps, bias, basis, matrix) -> ReluNorm | None:
     u = np.maximum(np.tile(b, n), 0.0)
     lam_a = float(np.max(amat @ np.ones(units)) / 1.0)  # a Collatz-Wielandt bound, for the scale only
     uu = float(u @ u)
-    rows_a, rows_q = [], []
-    candidates = [_perron(amat + (s * lam_a / uu) * np.outer(u, u) if s > 0 else amat)
-                  for s in (SCALES if uu > 0 else (0.0,))]
+    points = []
+    candidates = [_perron(amat, u, s * lam_a / uu if s > 0 else 0.0) for s in (SCALES if uu > 0 else (0.0,))]
     for y in candidates + [np.ones(units)]:  # all ones: the row sums, never undone by a poor Perron vector
         ay = amat @ y + gamma * (habs @ (habs.T @ y))  # A' y with A' = fl(A) + gamma |H| |H|^T >= A
-        rows_a.append(ay / y)
-        rows_q.append(float(u @ y) * u / y)
-    return ReluNorm(np.asarray(rows_a), np.asarray(rows_q))
+        points.append(maximal_pairs(ay / y, float(u @ y) * u / y))
+    return ReluNorm(tuple(points))

@@ -124,3 +124,24 @@ def test_relu_norm_refuses_above_its_size_limit(monkeypatch):
     s, taps, bias, basis = _case("karate", "monomial", 1, seed=0)
     monkeypatch.setattr(_relunorm, "LIMIT", 5 * s.shape[0] - 1)
     assert relu_norm(taps, bias, basis, sp.csr_matrix(s)) is None
+
+
+def test_maximal_pairs_keep_every_maximum_of_non_negative_combinations():
+    """The pairs kept by ``maximal_pairs`` (the upper-right hull) attain
+    ``max_i w_a a_i + w_q q_i`` for every ``w_a, w_q >= 0`` (checked against
+    the maximum over all pairs, numpy), none of them is exceeded in both
+    coordinates by another, and they are few (400 random pairs keep fewer
+    than 15; a version that kept every point would pass the first check but
+    fail this one)."""
+    from stablefilt._relunorm import maximal_pairs
+
+    rng = np.random.default_rng(5)
+    a, q = rng.random(400), rng.random(400)
+    a[:50] = a[50:100]  # ties in a
+    kept = maximal_pairs(a, q)
+    assert len(kept) < 15
+    for w in rng.random((500, 2)):
+        assert np.max(kept @ w) == pytest.approx(np.max(w[0] * a + w[1] * q), rel=1e-14)
+    for i in range(len(kept)):
+        others = np.delete(kept, i, axis=0)
+        assert not np.any((others[:, 0] >= kept[i, 0]) & (others[:, 1] >= kept[i, 1]))
