@@ -382,7 +382,10 @@ def certify_model(params, spec: ModelSpec, interval: SpectralInterval, nodes: in
                        "previous bank with its bias apart, into the next bank through its composite with the "
                        "previous change (s.9.3, the carried change) and through the readout by averaging, capped by "
                        "the trivial bound (theory s.9)"
-                       + ("; joint factorisations rebalanced (s.9.4)" if comp is not None and comp.balanced else ""),
+                       + ("; joint factorisations rebalanced (s.9.4)" if comp is not None and comp.balanced else "")
+                       + ("; clean-path norms through the relu (s.9.10) for layers "
+                          + ", ".join(str(i + 1) for i, r in enumerate(comp.relu_norms) if r is not None)
+                          if comp is not None and any(r is not None for r in comp.relu_norms) else ""),
         "deployed_graph": deployed_text(None if comp is None else comp.deployed),
         "published": f"2 C (1 + delta sqrt(N)) L F^(L-1) eps rho ||readout||, delta = {delta:g}, first order, "
                      "assumes |h| <= 1 (Gama, Bruna, Ribeiro 2020, Thm 4; form from memory); reference only",

@@ -145,3 +145,40 @@ def test_maximal_pairs_keep_every_maximum_of_non_negative_combinations():
     for i in range(len(kept)):
         others = np.delete(kept, i, axis=0)
         assert not np.any((others[:, 0] >= kept[i, 0]) & (others[:, 1] >= kept[i, 1]))
+
+
+def test_model_certificate_uses_the_relu_norm_records_it_and_holds(monkeypatch):
+    """A 2-layer relu model on the karate club's normalised Laplacian
+    (networkx): with the eigenvalues at hand the operator-level certificate
+    records 9.10 for layer 1 in its assumptions, is never above the one
+    without it (the module's size limit set to 0), and stays above the
+    largest change over random inputs of norm rho and random perturbations,
+    measured by the dense float64 reference (a change above it is a bug)."""
+    from stablefilt import _relunorm
+
+    op = sf.shift_operator(nx.to_numpy_array(nx.karate_club_graph(), weight=None), "normalized-laplacian")
+    spec = sf.ModelSpec((1, 6, 6), taps=4, basis=sf.Basis("chebyshev", (0.0, 2.0)), nonlinearity="relu",
+                        readout="node", outputs=2)
+    params = sf.init_params(spec, 2)
+    iv = sf.spectral_interval(op)
+    rho, eps = 1.5, 1e-2
+    with_relu = sf.certify_model(params, spec, iv, op.nodes, [eps], rho=rho, eigenvalues=iv.eigenvalues,
+                                 matrix=op.matrix)
+    assert "s.9.10) for layers 1" in with_relu.assumptions["composition"]
+    monkeypatch.setattr(_relunorm, "LIMIT", 0)
+    without = sf.certify_model(params, spec, iv, op.nodes, [eps], rho=rho, eigenvalues=iv.eigenvalues,
+                               matrix=op.matrix)
+    assert "s.9.10" not in without.assumptions["composition"]
+    assert with_relu.at(eps).certified <= without.at(eps).certified
+    s = op.dense()
+    rng = np.random.default_rng(3)
+    worst = 0.0
+    for _ in range(30):
+        e = rng.standard_normal(s.shape)
+        e = eps * (e + e.T) / np.linalg.norm(e + e.T, 2)
+        x = rng.standard_normal((1, op.nodes, 1))
+        x *= rho / np.linalg.norm(x)
+        y0 = H.ref_forward(params, spec, s, x)
+        y1 = H.ref_forward(params, spec, s + e @ s + s @ e, x)
+        worst = max(worst, float(np.linalg.norm(y1 - y0)))
+    assert 0 < worst <= with_relu.at(eps).certified
