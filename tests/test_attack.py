@@ -458,16 +458,17 @@ def _karate_three_layer_relu(seed):
 def test_adam_search_stays_in_the_ball_beats_block_ascent_and_stays_certified():
     """The free-input Adam search over the smoothed model
     (stablefilt._adamattack, ``search="adam"``) against the block ascent
-    with the same starts count and iterations, on two 3-layer relu models:
+    with the same starts count and iterations, on a 3-layer relu model:
     its point is in the ball (numpy's ``||E||_2``) with ``||x||_F = rho``,
     its change is the independent dense float64 reference's, it is never
-    below the block ascent's (measured: 1.07-1.41 times on these models and
-    eps), and above it by 5% somewhere (a search that only returned its first
+    below the block ascent's (measured: 1.41 and 1.06 times at the two eps;
+    1.02-1.07 on a second model, seed 7, left out for the suite's time), and
+    above it by 5% somewhere (a search that only returned its first
     stage would fail), it stays below the operator-level certificate, and
     the progress count is :func:`adam_evaluations`' promise."""
     rho = 1.5
     gains = []
-    for seed in (3, 7):
+    for seed in (3,):
         op, spec, params = _karate_three_layer_relu(seed)
         s, iv = op.dense(), sf.spectral_interval(op)
         x = _signals(op.nodes, 2, 1, 8)[0]
