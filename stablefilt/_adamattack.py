@@ -36,9 +36,9 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from ._freeattack import POLISH_INSET, in_ball
-from ._model import ModelSpec, forward
-from ._perturb import project_ball, relative_product
+from ._freeattack import angles, in_ball, squared_change
+from ._model import ModelSpec
+from ._perturb import project_ball
 
 #: First and last sharpness ``beta`` of the smoothed relu. Measured on the
 #: 3-layer demo run (40 epochs, eps 1e-3, 16 starts of 600 steps): starting
@@ -66,12 +66,8 @@ def _smooth(spec: ModelSpec, beta):
 
 def _change(params, s, m, theta, z, eps, rho, beta, spec: ModelSpec, dense: bool, smooth: bool):
     """Squared change at one start's point (``s`` the dense shift)."""
-    e = in_ball(m, theta, eps, dense)
     x = rho * z / jnp.linalg.norm(z)
-    act = _smooth(spec, beta) if smooth else None
-    y = forward(params, lambda v: relative_product(s, e, v), x[None], spec, activation=act)
-    y0 = forward(params, lambda v: s @ v, x[None], spec, activation=act)
-    return jnp.sum((y - y0) ** 2)
+    return squared_change(params, s, in_ball(m, theta, eps, dense), x, spec, _smooth(spec, beta) if smooth else None)
 
 
 @functools.partial(jax.jit, static_argnames=("spec", "dense"))
@@ -99,22 +95,10 @@ def _batch_value(params, s, m, theta, z, eps, rho, spec: ModelSpec, dense: bool)
 def start_points(initial, eps: float, n: int, features: int, dense: bool):
     """``(M, theta, Z)`` of the starts ``initial``, a list of ``(E0, X0)``
     (``E0`` in the ball, dense ``(N, N)`` or diagonal ``(N,)``; ``X0`` any
-    non-zero norm): ``M`` the eigenvectors of ``E0`` and ``theta`` the
-    angles of its eigenvalues, pulled inside by ``POLISH_INSET`` (at
-    ``+-pi/2`` ``sin`` is flat and an eigenvalue could not move)."""
-    m = np.zeros((len(initial), n, n) if dense else (len(initial), 1, 1))
-    theta = np.zeros((len(initial), n))
-    z = np.zeros((len(initial), n, features))
-    for k, (e0, x0) in enumerate(initial):
-        e0 = np.asarray(e0, dtype=np.float64)
-        if dense:
-            e0 = np.diag(e0) if e0.ndim == 1 else 0.5 * (e0 + e0.T)
-            w, m[k] = np.linalg.eigh(e0)
-        else:
-            w = np.diag(e0) if e0.ndim == 2 else e0
-        theta[k] = np.arcsin(np.clip(w / eps, -1.0, 1.0)) * POLISH_INSET
-        z[k] = np.asarray(x0, dtype=np.float64).reshape(n, features)
-    return m, theta, z
+    non-zero norm), ``(M, theta)`` by :func:`stablefilt._freeattack.angles`."""
+    pairs = [angles(e0, eps, dense) for e0, _ in initial]
+    z = np.stack([np.asarray(x0, dtype=np.float64).reshape(n, features) for _, x0 in initial])
+    return np.stack([m for m, _ in pairs]), np.stack([t for _, t in pairs]), z
 
 
 def random_starts(count: int, n: int, features: int, eps: float, dense: bool, inputs, rng):
@@ -189,6 +173,4 @@ def search(params, spec: ModelSpec, s_dense, eps: float, rho: float, initial, *,
     check(pts)
     i = int(np.argmax(best_val))
     m, theta, z = (np.asarray(b[i], dtype=np.float64) for b in best)
-    e = np.asarray(in_ball(m, theta, eps, dense, xp=np))
-    e = project_ball(0.5 * (e + e.T), eps) if dense else np.clip(e, -eps, eps)
-    return e, z * (rho / np.linalg.norm(z))
+    return project_ball(in_ball(m, theta, eps, dense, xp=np), eps), z * (rho / np.linalg.norm(z))

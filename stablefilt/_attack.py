@@ -351,12 +351,11 @@ def adam_evaluations(restarts: int, iters: int) -> int:
     return SHAPED_STARTS * min(iters, SHAPED_ITERS) + restarts * iters
 
 
-def _adam_free(params, spec, op, x, inputs, eps, dense, rho, restarts, iters, rng, progress=None) -> AttackResult:
+def _adam_free(params, spec, op, pool, eps, dense, rho, restarts, iters, rng, progress=None) -> AttackResult:
     """The free-input attack with ``search="adam"``: block ascent from the
     structured starts, then the Adam search of stablefilt._adamattack from
     its winner and ``restarts - 1`` random points inside the ball; the larger
-    float64 change of the two."""
-    pool = [np.asarray(z, dtype=np.float64) for z in (x, *(() if inputs is None else inputs))]
+    float64 change of the two. ``pool``: the signals the starts may take."""
     shaped = [st for st in _starts(op, params, spec, eps, dense, 0, rng) if st[0] != "random"][:SHAPED_STARTS]
     first_iters = min(iters, SHAPED_ITERS)
     first = _free_search(params, spec, op, jax_operator(op), eps, dense, rho, shaped, pool, first_iters, progress)
@@ -533,23 +532,23 @@ def attack(params, spec: ModelSpec, op: ShiftOperator, x, eps: float, *, mode: s
         mode = "dense" if n <= DENSE_ATTACK_LIMIT else "lowrank"
     dense = mode == "dense"
     rng = np.random.default_rng(seed)
+    pool = None  # with a free input: the signals its starts may take, x first
+    if free_input:
+        rho = float(rho if rho is not None else np.linalg.norm(x))
+        pool = [np.asarray(z, dtype=np.float64) for z in (x, *(() if inputs is None else inputs))]
     if search == "adam":
         if not free_input or mode == "lowrank" or n > POLISH_LIMIT:
             raise ValueError(f"the Adam search needs a free input, a dense or diagonal E and at most {POLISH_LIMIT} "
                              f"nodes; got free_input={free_input}, mode {mode!r}, {n} nodes.")
-        rho = float(rho if rho is not None else np.linalg.norm(x))
-        return _adam_free(params, spec, op, x, inputs, eps, dense, rho, restarts, iters, rng, progress)
+        return _adam_free(params, spec, op, pool, eps, dense, rho, restarts, iters, rng, progress)
     sop = jax_operator(op)
     x0 = jnp.asarray(x, jnp.float32)
     if free_input:
-        rho = float(rho if rho is not None else np.linalg.norm(x))
         x0 = x0 * (rho / jnp.maximum(jnp.linalg.norm(x0), 1e-30))
     y0 = _forward(params, sop, x0[None], spec)
     fixed = None if free_input else np.asarray(x, dtype=np.float64)
     starts = _starts(op, params, spec, eps, dense, restarts, rng, fixed)
     if free_input:
-        more = () if inputs is None else inputs
-        pool = [np.asarray(z, dtype=np.float64) for z in (x, *more)]
         best = _free_search(params, spec, op, sop, eps, dense, rho, starts, pool, iters, progress)
     else:
         best = _ascent(params, spec, op, sop, x, x0, y0, eps, dense, free_input, rho, starts, iters, projection,

@@ -46,7 +46,7 @@ import numpy as np
 
 from ._model import ModelSpec, forward
 from ._perturb import project_ball, relative_product
-from ._sparse import JaxShift, shift_product
+from ._sparse import JaxShift
 
 #: Input moves per perturbation move (measured on 120-node two- and
 #: three-layer models: 1 and 3 found about the same, 8 less).
@@ -60,17 +60,15 @@ STEPS = (1.0, 0.5, 0.25)
 def free_value_grad(params, sop: JaxShift, e, x, spec: ModelSpec):
     """``||Phi(S + E S + S E) x - Phi(S) x||_F^2`` and its gradient in
     ``(E, x)``; ``E`` dense ``(N, N)`` or diagonal ``(N,)``, ``x`` ``(N, F)``."""
-    return jax.value_and_grad(lambda e, x: _squared_change(params, sop, e, x, spec), argnums=(0, 1))(e, x)
+    return jax.value_and_grad(lambda e, x: squared_change(params, sop, e, x, spec), argnums=(0, 1))(e, x)
 
 
-def _squared_change(params, sop: JaxShift, e, x, spec: ModelSpec):
-    """``||Phi(S + E S + S E) x - Phi(S) x||_F^2`` (JAX, traceable), ``E``
-    dense or its diagonal, ``x`` ``(N, F)``."""
-    def mv(v):
-        return relative_product(functools.partial(shift_product, sop), e, v)
-
-    y = forward(params, mv, x[None], spec)
-    y0 = forward(params, sop, x[None], spec)
+def squared_change(params, s, e, x, spec: ModelSpec, activation=None):
+    """``||Phi(S + E S + S E) x - Phi(S) x||_F^2`` (JAX, traceable), ``S`` a
+    :class:`JaxShift` or a dense array, ``E`` dense or its diagonal, ``x``
+    ``(N, F)``; ``activation`` in place of the spec's nonlinearity, or None."""
+    y = forward(params, lambda v: relative_product(s, e, v), x[None], spec, activation=activation)
+    y0 = forward(params, s, x[None], spec, activation=activation)
     return jnp.sum((y - y0) ** 2)
 
 
@@ -185,6 +183,19 @@ POLISH_LIMIT = 600
 POLISH_INSET = 0.98
 
 
+def angles(e, eps: float, dense: bool):
+    """``(M, theta)`` of a point ``E`` of the ball for :func:`in_ball`: its
+    eigenvectors and the angles of its eigenvalues, pulled inside by
+    ``POLISH_INSET`` (at ``+-pi/2`` ``sin`` is flat and an eigenvalue could
+    not move); ``E`` dense or its diagonal (``M`` unused when not ``dense``)."""
+    e = np.asarray(e, dtype=np.float64)
+    if dense:
+        w, m = np.linalg.eigh(np.diag(e) if e.ndim == 1 else 0.5 * (e + e.T))
+    else:
+        w, m = (np.diag(e) if e.ndim == 2 else e), np.zeros((1, 1))
+    return m, np.arcsin(np.clip(w / eps, -1.0, 1.0)) * POLISH_INSET
+
+
 def in_ball(m, theta, eps, dense: bool, xp=jnp):
     """The point ``E = eps Q diag(sin theta) Q^T`` of the ball (``Q`` the
     orthogonal factor of ``m``), or the diagonal ``eps sin(theta)`` when not
@@ -206,7 +217,7 @@ def _polish_value_grad(params, sop: JaxShift, m, theta, z, eps, rho, free, spec:
     def obj(m, theta, z):
         e = in_ball(m, theta, eps, dense)
         x = free * (rho * z / jnp.linalg.norm(z)) + (1 - free) * z
-        return -_squared_change(params, sop, e, x, spec)
+        return -squared_change(params, sop, e, x, spec)
 
     return jax.value_and_grad(obj, argnums=(0, 1, 2))(m, theta, z)
 
@@ -229,13 +240,8 @@ def polish(params, spec: ModelSpec, sop: JaxShift, e, x, eps: float, rho: float,
     """
     import optax
 
-    e = np.asarray(e, dtype=np.float64)
-    dense = e.ndim == 2
-    if dense:
-        w, q = np.linalg.eigh(0.5 * (e + e.T))
-    else:
-        w, q = e, np.zeros((1, 1))
-    theta = np.arcsin(np.clip(w / eps, -1.0, 1.0)) * POLISH_INSET
+    dense = np.ndim(e) == 2
+    q, theta = angles(e, eps, dense)
     x = np.asarray(x, dtype=np.float64)
     params_j = (jnp.asarray(q, jnp.float32), jnp.asarray(theta, jnp.float32), jnp.asarray(x, jnp.float32))
     opt = optax.adam(optax.cosine_decay_schedule(POLISH_RATE, max(steps, 1)))
@@ -258,7 +264,6 @@ def polish(params, spec: ModelSpec, sop: JaxShift, e, x, eps: float, rho: float,
         updates, state = opt.update(grads, state, params_j)
         params_j = optax.apply_updates(params_j, updates)
     m, theta, z = (np.asarray(a, dtype=np.float64) for a in best)
-    e_out = in_ball(m, theta, eps, dense, xp=np)
-    e_out = project_ball(e_out, eps) if dense else np.clip(e_out, -eps, eps)
+    e_out = project_ball(in_ball(m, theta, eps, dense, xp=np), eps)
     z = z if move_input else x
     return e_out, z * (rho / np.linalg.norm(z))

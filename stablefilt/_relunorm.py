@@ -143,7 +143,7 @@ def relu_norm(taps, bias, basis, matrix) -> ReluNorm | None:
     amat = np.maximum(h @ h.T, 0.0)
     b = np.zeros(taps.shape[2]) if bias is None else np.asarray(bias, dtype=np.float64).reshape(-1)
     u = np.maximum(np.tile(b, n), 0.0)
-    lam_a = float(np.max(amat @ np.ones(units)) / 1.0)  # a Collatz-Wielandt bound, for the scale only
+    lam_a = float(np.max(amat @ np.ones(units)))  # a Collatz-Wielandt bound (row sums), for the scale only
     uu = float(u @ u)
     points = []
     candidates = [_perron(amat, u, s * lam_a / uu if s > 0 else 0.0) for s in (SCALES if uu > 0 else (0.0,))]
